@@ -1,0 +1,335 @@
+#include "core/model/ensemble.h"
+
+#include <cmath>
+
+#include "absl/strings/str_format.h"
+#include "core/util/random.h"
+#include "core/util/status_macros.h"
+
+namespace foray::model {
+namespace {
+
+constexpr double kHalfLog2Pi = 0.91893853320467274178;  // 0.5 * ln(2 pi)
+
+// softplus(x) = ln(1 + e^x), evaluated without overflow.
+template <typename Derived>
+auto Softplus(const Eigen::ArrayBase<Derived>& x) {
+  using S = typename Derived::Scalar;
+  return x.max(S(0)) + (-(x.abs())).exp().log1p();
+}
+
+template <typename Derived>
+auto Sigmoid(const Eigen::ArrayBase<Derived>& x) {
+  using S = typename Derived::Scalar;
+  return S(1) / (S(1) + (-x).exp());
+}
+
+// In place: z <- act(z).
+template <typename Matrix>
+void ApplyActivation(Activation activation, Matrix* z) {
+  using S = typename Matrix::Scalar;
+  auto a = z->array();
+  switch (activation) {
+    case Activation::kSilu:
+      a = a / (S(1) + (-a).exp());
+      break;
+    case Activation::kRelu:
+      a = a.max(S(0));
+      break;
+    case Activation::kTanh:
+      a = a.tanh();
+      break;
+  }
+}
+
+// d act(z) / dz, elementwise.
+template <typename Matrix>
+Matrix ActivationDerivative(Activation activation, const Matrix& z) {
+  using S = typename Matrix::Scalar;
+  switch (activation) {
+    case Activation::kSilu: {
+      const auto s = Sigmoid(z.array()).eval();
+      return (s * (S(1) + z.array() * (S(1) - s))).matrix();
+    }
+    case Activation::kRelu:
+      return (z.array() > S(0)).template cast<S>().matrix();
+    case Activation::kTanh:
+      return (S(1) - z.array().tanh().square()).matrix();
+  }
+  return Matrix();
+}
+
+}  // namespace
+
+absl::Status EnsembleOptions::Validate() const {
+  if (ensemble_size < 1 || ensemble_size > 32) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("ensemble_size is %d, expected 1..32", ensemble_size));
+  }
+  if (hidden_widths.empty() || hidden_widths.size() > 8) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "hidden_widths has %d layers, expected 1..8", hidden_widths.size()));
+  }
+  for (size_t i = 0; i < hidden_widths.size(); ++i) {
+    if (hidden_widths[i] < 1 || hidden_widths[i] > 2048) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "hidden_widths[%d] is %d, expected 1..2048", i, hidden_widths[i]));
+    }
+  }
+  if (activation != Activation::kSilu && activation != Activation::kRelu &&
+      activation != Activation::kTanh) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("activation is %d, expected 1 (SiLU), 2 (ReLU) or 3 (tanh)",
+                        static_cast<int>(activation)));
+  }
+  if (!std::isfinite(initial_max_log_var) || !std::isfinite(initial_min_log_var) ||
+      initial_min_log_var >= initial_max_log_var) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "initial log-variance bounds are [%g, %g], expected finite with min < max",
+        initial_min_log_var, initial_max_log_var));
+  }
+  return absl::OkStatus();
+}
+
+std::vector<int> MemberParamOffsets(const std::vector<int>& widths) {
+  std::vector<int> offsets;
+  int offset = 0;
+  for (size_t l = 0; l + 1 < widths.size(); ++l) {
+    offsets.push_back(offset);
+    offset += widths[l] * widths[l + 1];
+    offsets.push_back(offset);
+    offset += widths[l + 1];
+  }
+  offsets.push_back(offset);
+  return offsets;
+}
+
+template <typename Scalar>
+absl::StatusOr<EnsembleT<Scalar>> EnsembleT<Scalar>::Create(int state_dim, int action_dim,
+                                                            const EnsembleOptions& options,
+                                                            uint64_t seed) {
+  FORAY_RETURN_IF_ERROR(options.Validate());
+  if (state_dim < 1 || state_dim > 1024 || action_dim < 1 || action_dim > 1024) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "state_dim is %d and action_dim is %d, expected each in 1..1024", state_dim,
+        action_dim));
+  }
+  EnsembleT e;
+  e.state_dim_ = state_dim;
+  e.action_dim_ = action_dim;
+  e.activation_ = options.activation;
+  e.hidden_widths_ = options.hidden_widths;
+  std::vector<int> widths = {state_dim + action_dim};
+  widths.insert(widths.end(), options.hidden_widths.begin(), options.hidden_widths.end());
+  widths.push_back(2 * (state_dim + 1));
+  e.offsets_ = MemberParamOffsets(widths);
+  e.params_ = Matrix::Zero(e.num_member_params(), options.ensemble_size);
+  Rng rng(seed);
+  for (int b = 0; b < options.ensemble_size; ++b) {
+    for (int l = 0; l < e.num_layers(); ++l) {
+      const double std = 1.0 / (2.0 * std::sqrt(static_cast<double>(e.layer_fan_in(l))));
+      const int count = e.layer_fan_in(l) * e.layer_fan_out(l);
+      for (int i = 0; i < count; ++i) {
+        double z = rng.Normal();
+        while (std::abs(z) > 2.0) z = rng.Normal();  // truncated at two standard deviations
+        e.params_(e.weight_offset(l) + i, b) = static_cast<Scalar>(z * std);
+      }
+    }
+  }
+  e.max_log_var_ = Vector::Constant(e.output_dim(), static_cast<Scalar>(options.initial_max_log_var));
+  e.min_log_var_ = Vector::Constant(e.output_dim(), static_cast<Scalar>(options.initial_min_log_var));
+  e.input_normalizer_ = Normalizer<Scalar>(e.input_dim());
+  e.output_normalizer_ = Normalizer<Scalar>(e.output_dim());
+  return e;
+}
+
+template <typename Scalar>
+int EnsembleT<Scalar>::layer_fan_in(int layer) const {
+  return layer == 0 ? input_dim() : hidden_widths_[layer - 1];
+}
+
+template <typename Scalar>
+int EnsembleT<Scalar>::layer_fan_out(int layer) const {
+  return layer == num_layers() - 1 ? 2 * output_dim() : hidden_widths_[layer];
+}
+
+template <typename Scalar>
+void EnsembleT<Scalar>::MemberForward(int member, const Matrix& x, Matrix* mean,
+                                      Matrix* log_var) const {
+  FORAY_CHECK(member >= 0 && member < size(), "member index out of range");
+  FORAY_CHECK(x.cols() == input_dim(), "input has the wrong number of columns");
+  const Scalar* p = params_.col(member).data();
+  Matrix h = x;
+  for (int l = 0; l < num_layers(); ++l) {
+    const Eigen::Map<const Matrix> w(p + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
+    const Eigen::Map<const Vector> bias(p + bias_offset(l), layer_fan_out(l));
+    Matrix z = h * w;
+    z.rowwise() += bias.transpose();
+    if (l + 1 < num_layers()) ApplyActivation(activation_, &z);
+    h.swap(z);
+  }
+  const int d = output_dim();
+  *mean = h.leftCols(d);
+  const auto raw = h.rightCols(d).array();
+  const auto max_lv = max_log_var_.transpose().array();
+  const auto min_lv = min_log_var_.transpose().array();
+  const auto upper = (-Softplus((max_lv.replicate(raw.rows(), 1) - raw).eval()) +
+                      max_lv.replicate(raw.rows(), 1))
+                         .eval();
+  *log_var = (Softplus((upper - min_lv.replicate(raw.rows(), 1)).eval()) +
+              min_lv.replicate(raw.rows(), 1))
+                 .matrix();
+}
+
+template <typename Scalar>
+Scalar EnsembleT<Scalar>::MemberLoss(int member, const Matrix& x, const Matrix& y) const {
+  FORAY_CHECK(y.cols() == output_dim() && y.rows() == x.rows(), "target shape mismatch");
+  Matrix mean, log_var;
+  MemberForward(member, x, &mean, &log_var);
+  const auto err2 = (mean - y).array().square();
+  const double sum =
+      (Scalar(0.5) * (err2 * (-log_var.array()).exp() + log_var.array())).template cast<double>().sum();
+  return static_cast<Scalar>(sum / static_cast<double>(y.size()) + kHalfLog2Pi);
+}
+
+template <typename Scalar>
+Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, const Matrix& y,
+                                                Scalar* grad_params, Vector* grad_max_log_var,
+                                                Vector* grad_min_log_var) const {
+  FORAY_CHECK(member >= 0 && member < size(), "member index out of range");
+  FORAY_CHECK(x.cols() == input_dim(), "input has the wrong number of columns");
+  FORAY_CHECK(y.cols() == output_dim() && y.rows() == x.rows(), "target shape mismatch");
+  const Scalar* p = params_.col(member).data();
+  const int layers = num_layers();
+
+  // Forward, keeping each layer's input h_{l} and hidden pre-activation z_l.
+  std::vector<Matrix> inputs(layers);
+  std::vector<Matrix> pre(layers);
+  inputs[0] = x;
+  Matrix out;
+  for (int l = 0; l < layers; ++l) {
+    const Eigen::Map<const Matrix> w(p + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
+    const Eigen::Map<const Vector> bias(p + bias_offset(l), layer_fan_out(l));
+    Matrix z = inputs[l] * w;
+    z.rowwise() += bias.transpose();
+    if (l + 1 < layers) {
+      pre[l] = z;
+      ApplyActivation(activation_, &z);
+      inputs[l + 1] = std::move(z);
+    } else {
+      out = std::move(z);
+    }
+  }
+  const int d = output_dim();
+  const Eigen::Index rows = x.rows();
+  const auto mean = out.leftCols(d).array();
+  const auto raw = out.rightCols(d).array();
+  const auto max_lv = max_log_var_.transpose().array().replicate(rows, 1).eval();
+  const auto min_lv = min_log_var_.transpose().array().replicate(rows, 1).eval();
+  const auto u = (max_lv - raw).eval();              // max_lv - raw
+  const auto upper = (max_lv - Softplus(u)).eval();  // first bound
+  const auto v = (upper - min_lv).eval();
+  const auto log_var = (min_lv + Softplus(v)).eval();
+  const auto inv_var = (-log_var).exp().eval();
+  const auto err = (mean - y.array()).eval();
+
+  const double loss =
+      (Scalar(0.5) * (err.square() * inv_var + log_var)).template cast<double>().sum() /
+          static_cast<double>(y.size()) +
+      kHalfLog2Pi;
+
+  // Backward. dL/dmu = err * inv_var / N; dL/dlv = 0.5 (1 - err^2 inv_var) / N.
+  const Scalar inv_n = Scalar(1) / static_cast<Scalar>(y.size());
+  const auto d_lv = (Scalar(0.5) * inv_n * (Scalar(1) - err.square() * inv_var)).eval();
+  const auto sig_u = Sigmoid(u).eval();
+  const auto sig_v = Sigmoid(v).eval();
+  Matrix d_out(rows, 2 * d);
+  d_out.leftCols(d) = (err * inv_var * inv_n).matrix();
+  d_out.rightCols(d) = (d_lv * sig_v * sig_u).matrix();
+  *grad_max_log_var += (d_lv * sig_v * (Scalar(1) - sig_u)).matrix().colwise().sum().transpose();
+  *grad_min_log_var += (d_lv * (Scalar(1) - sig_v)).matrix().colwise().sum().transpose();
+
+  Matrix delta = std::move(d_out);
+  for (int l = layers - 1; l >= 0; --l) {
+    Eigen::Map<Matrix> gw(grad_params + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
+    Eigen::Map<Vector> gb(grad_params + bias_offset(l), layer_fan_out(l));
+    gw.noalias() = inputs[l].transpose() * delta;
+    gb = delta.colwise().sum().transpose();
+    if (l > 0) {
+      const Eigen::Map<const Matrix> w(p + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
+      Matrix back = delta * w.transpose();
+      delta = (back.array() * ActivationDerivative(activation_, pre[l - 1]).array()).matrix();
+    }
+  }
+  return static_cast<Scalar>(loss);
+}
+
+template <typename Scalar>
+absl::Status EnsembleT<Scalar>::CheckRows(const Matrix& states, const Matrix& actions) const {
+  if (states.cols() != state_dim_) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "states have %d columns, the model expects state_dim %d", states.cols(), state_dim_));
+  }
+  if (actions.cols() != action_dim_) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "actions have %d columns, the model expects action_dim %d", actions.cols(),
+        action_dim_));
+  }
+  if (states.rows() != actions.rows()) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "states have %d rows but actions have %d", states.rows(), actions.rows()));
+  }
+  return absl::OkStatus();
+}
+
+template <typename Scalar>
+typename EnsembleT<Scalar>::Matrix EnsembleT<Scalar>::NormalizedInput(
+    const Matrix& states, const Matrix& actions) const {
+  Matrix x(states.rows(), input_dim());
+  x << states, actions;
+  return input_normalizer_.Apply(x);
+}
+
+template <typename Scalar>
+void EnsembleT<Scalar>::DenormalizeOutput(const Matrix& mean_z, const Matrix& log_var_z,
+                                          Matrix* mean, Matrix* variance) const {
+  *mean = output_normalizer_.Invert(mean_z);
+  const auto scale2 = output_normalizer_.std().array().square().transpose();
+  *variance = (log_var_z.array().exp().rowwise() * scale2).matrix();
+}
+
+template <typename Scalar>
+absl::Status EnsembleT<Scalar>::Predict(const Matrix& states, const Matrix& actions,
+                                        std::vector<Matrix>* means,
+                                        std::vector<Matrix>* variances) const {
+  FORAY_RETURN_IF_ERROR(CheckRows(states, actions));
+  const Matrix x = NormalizedInput(states, actions);
+  means->resize(size());
+  variances->resize(size());
+  Matrix mean_z, log_var_z;
+  for (int b = 0; b < size(); ++b) {
+    MemberForward(b, x, &mean_z, &log_var_z);
+    DenormalizeOutput(mean_z, log_var_z, &(*means)[b], &(*variances)[b]);
+  }
+  return absl::OkStatus();
+}
+
+template <typename Scalar>
+absl::Status EnsembleT<Scalar>::PredictMember(int member, const Matrix& states,
+                                              const Matrix& actions, Matrix* mean,
+                                              Matrix* variance) const {
+  FORAY_RETURN_IF_ERROR(CheckRows(states, actions));
+  if (member < 0 || member >= size()) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("member is %d, the ensemble has %d members", member, size()));
+  }
+  Matrix mean_z, log_var_z;
+  MemberForward(member, NormalizedInput(states, actions), &mean_z, &log_var_z);
+  DenormalizeOutput(mean_z, log_var_z, mean, variance);
+  return absl::OkStatus();
+}
+
+template class EnsembleT<float>;
+template class EnsembleT<double>;
+
+}  // namespace foray::model

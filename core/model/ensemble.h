@@ -1,0 +1,157 @@
+// An ensemble of B probabilistic MLPs that model a robot's dynamics and reward.
+// A const ensemble may be evaluated from several threads at once; changing it is not
+// thread-safe (training works on its own copy and publishes the result).
+//
+// Member b maps a normalised input x = norm([state, action]) to a diagonal Gaussian over the
+// normalised target y = norm([next_state - state, reward]) (Chua et al. 2018, "Deep
+// Reinforcement Learning in a Handful of Trials using Probabilistic Dynamics Models"):
+//   h_0 = x,  h_l = act(h_{l-1} W_l + b_l)  for the hidden layers,
+//   [mu, raw] = h_L W_out + b_out,           mu and raw each (output_dim),
+//   lv = max_lv - softplus(max_lv - raw),  lv = min_lv + softplus(lv - min_lv),
+// with the log-variance bounds max_lv, min_lv learned and shared by all members.
+//
+//   auto ensemble = Ensemble::Create(/*state_dim=*/4, /*action_dim=*/1, EnsembleOptions{}, 7);
+//   std::vector<Eigen::MatrixXf> means, variances;
+//   ensemble->Predict(states, actions, &means, &variances);
+#ifndef FORAY_CORE_MODEL_ENSEMBLE_H_
+#define FORAY_CORE_MODEL_ENSEMBLE_H_
+
+#include <cstdint>
+#include <vector>
+
+#include "Eigen/Core"
+#include "absl/status/status.h"
+#include "absl/status/statusor.h"
+#include "core/model/normalizer.h"
+
+namespace foray::model {
+
+enum class Activation { kSilu = 1, kRelu = 2, kTanh = 3 };
+
+// Architecture of an ensemble.
+struct EnsembleOptions {
+  // Number of members B. Range 1..32.
+  int ensemble_size = 5;
+  // Widths of the hidden layers. 1..8 layers, each 1..2048 wide.
+  std::vector<int> hidden_widths = {64, 64, 64};
+  Activation activation = Activation::kSilu;
+  // Initial log-variance bounds, in normalised output units (nats of log variance). The values
+  // are those of Chua et al. 2018's reference setup (common practice, quoted from memory).
+  double initial_max_log_var = 0.5;
+  double initial_min_log_var = -10.0;
+
+  absl::Status Validate() const;
+};
+
+template <typename Scalar>
+class EnsembleT {
+ public:
+  // Matrices are column-major; a "row per sample" matrix has one sample per row.
+  using Matrix = Eigen::Matrix<Scalar, Eigen::Dynamic, Eigen::Dynamic>;
+  using Vector = Eigen::Matrix<Scalar, Eigen::Dynamic, 1>;
+
+  // Copyable and movable: a copy is an independent model.
+  EnsembleT() = default;
+
+  // A new ensemble with weights drawn from a truncated normal of standard deviation
+  // 1 / (2 sqrt(fan_in)) and zero biases (common practice for these models), identity
+  // normalisers and the initial log-variance bounds. InvalidArgument on bad dimensions/options.
+  static absl::StatusOr<EnsembleT> Create(int state_dim, int action_dim,
+                                          const EnsembleOptions& options, uint64_t seed);
+
+  int state_dim() const { return state_dim_; }
+  int action_dim() const { return action_dim_; }
+  int input_dim() const { return state_dim_ + action_dim_; }
+  // Outputs are the state delta then the reward: state_dim + 1.
+  int output_dim() const { return state_dim_ + 1; }
+  int size() const { return static_cast<int>(params_.cols()); }
+  Activation activation() const { return activation_; }
+  const std::vector<int>& hidden_widths() const { return hidden_widths_; }
+
+  // Parameter layout of one member: for each layer l (hidden layers, then the output layer of
+  // width 2 * output_dim), the weights W_l as a column-major (fan_in, fan_out) block, then the
+  // bias (fan_out). Column b of params() holds member b.
+  int num_layers() const { return static_cast<int>(hidden_widths_.size()) + 1; }
+  int layer_fan_in(int layer) const;
+  int layer_fan_out(int layer) const;
+  int weight_offset(int layer) const { return offsets_[2 * layer]; }
+  int bias_offset(int layer) const { return offsets_[2 * layer + 1]; }
+  int num_member_params() const { return offsets_.empty() ? 0 : offsets_.back(); }
+
+  // (num_member_params, B).
+  const Matrix& params() const { return params_; }
+  Matrix& mutable_params() { return params_; }
+  // (output_dim) each, normalised units.
+  const Vector& max_log_var() const { return max_log_var_; }
+  const Vector& min_log_var() const { return min_log_var_; }
+  Vector& mutable_max_log_var() { return max_log_var_; }
+  Vector& mutable_min_log_var() { return min_log_var_; }
+  // Over [state, action] (input_dim) and over [state delta, reward] (output_dim).
+  const Normalizer<Scalar>& input_normalizer() const { return input_normalizer_; }
+  const Normalizer<Scalar>& output_normalizer() const { return output_normalizer_; }
+  Normalizer<Scalar>& mutable_input_normalizer() { return input_normalizer_; }
+  Normalizer<Scalar>& mutable_output_normalizer() { return output_normalizer_; }
+
+  // Version number given when the model is published; 0 for a model never published.
+  uint64_t version() const { return version_; }
+  void set_version(uint64_t version) { version_ = version; }
+
+  // --- Normalised space ------------------------------------------------------------------
+
+  // Member `member` on x (rows, input_dim), normalised inputs. Writes mean and bounded
+  // log-variance, each (rows, output_dim), normalised outputs. Aborts on a shape mismatch
+  // (internal entry point; the raw-unit entry points below validate).
+  void MemberForward(int member, const Matrix& x, Matrix* mean, Matrix* log_var) const;
+
+  // Mean Gaussian negative log-likelihood per element of member `member` on (x, y):
+  //   L = 1/(rows * output_dim) * sum 0.5 * [ (mu - y)^2 exp(-lv) + lv + ln(2 pi) ],
+  // x: (rows, input_dim), y: (rows, output_dim), normalised. Writes dL/dparams of the member
+  // to grad_params (num_member_params scalars, overwritten) and adds dL/dmax_lv and dL/dmin_lv
+  // to *grad_max_log_var and *grad_min_log_var (output_dim each). Returns L.
+  Scalar MemberLossAndGradient(int member, const Matrix& x, const Matrix& y,
+                               Scalar* grad_params, Vector* grad_max_log_var,
+                               Vector* grad_min_log_var) const;
+
+  // L of MemberLossAndGradient without the gradient.
+  Scalar MemberLoss(int member, const Matrix& x, const Matrix& y) const;
+
+  // --- Robot units -----------------------------------------------------------------------
+
+  // Every member at every row. states: (rows, state_dim), actions: (rows, action_dim), robot
+  // units, a row per sample. Resizes means and variances to B matrices of (rows, output_dim):
+  // the Gaussian over [next_state - state, reward] in robot units.
+  absl::Status Predict(const Matrix& states, const Matrix& actions, std::vector<Matrix>* means,
+                       std::vector<Matrix>* variances) const;
+
+  // Member `member` only, same shapes as Predict for one member.
+  absl::Status PredictMember(int member, const Matrix& states, const Matrix& actions,
+                             Matrix* mean, Matrix* variance) const;
+
+ private:
+  absl::Status CheckRows(const Matrix& states, const Matrix& actions) const;
+  Matrix NormalizedInput(const Matrix& states, const Matrix& actions) const;
+  void DenormalizeOutput(const Matrix& mean_z, const Matrix& log_var_z, Matrix* mean,
+                         Matrix* variance) const;
+
+  int state_dim_ = 0;
+  int action_dim_ = 0;
+  Activation activation_ = Activation::kSilu;
+  std::vector<int> hidden_widths_;
+  std::vector<int> offsets_;  // weight and bias offset per layer, then the total
+  Matrix params_;
+  Vector max_log_var_;
+  Vector min_log_var_;
+  Normalizer<Scalar> input_normalizer_;
+  Normalizer<Scalar> output_normalizer_;
+  uint64_t version_ = 0;
+};
+
+using Ensemble = EnsembleT<float>;
+
+// Builds the parameter offsets of a member for the given layer widths
+// ([input, hidden..., 2 * output]); exposed for serialisation.
+std::vector<int> MemberParamOffsets(const std::vector<int>& widths);
+
+}  // namespace foray::model
+
+#endif  // FORAY_CORE_MODEL_ENSEMBLE_H_

@@ -1,0 +1,293 @@
+#include "core/model/trainer.h"
+
+#include <algorithm>
+#include <cmath>
+#include <utility>
+
+#include "absl/strings/str_format.h"
+#include "core/util/status_macros.h"
+
+namespace foray::model {
+namespace {
+
+absl::Status CheckShape(const char* name, Eigen::Index rows, Eigen::Index cols, Eigen::Index want_rows,
+                        Eigen::Index want_cols) {
+  if (rows != want_rows || cols != want_cols) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "%s is (%d, %d), expected (%d, %d)", name, rows, cols, want_rows, want_cols));
+  }
+  return absl::OkStatus();
+}
+
+template <typename Derived>
+absl::Status CheckFinite(const char* name, const Eigen::DenseBase<Derived>& values) {
+  for (Eigen::Index j = 0; j < values.cols(); ++j) {
+    for (Eigen::Index i = 0; i < values.rows(); ++i) {
+      if (!std::isfinite(values(i, j))) {
+        return absl::InvalidArgumentError(absl::StrFormat(
+            "%s[%d][%d] is %g, expected a finite number", name, i, j, values(i, j)));
+      }
+    }
+  }
+  return absl::OkStatus();
+}
+
+Eigen::MatrixXf GatherRows(const Eigen::MatrixXf& m, const int* rows, int count) {
+  Eigen::MatrixXf out(count, m.cols());
+  for (Eigen::Index c = 0; c < m.cols(); ++c) {
+    const float* src = m.col(c).data();
+    float* dst = out.col(c).data();
+    for (int i = 0; i < count; ++i) dst[i] = src[rows[i]];
+  }
+  return out;
+}
+
+}  // namespace
+
+absl::Status TransitionData::Validate(int state_dim, int action_dim) const {
+  const Eigen::Index n = states.rows();
+  FORAY_RETURN_IF_ERROR(CheckShape("states", states.rows(), states.cols(), n, state_dim));
+  FORAY_RETURN_IF_ERROR(CheckShape("actions", actions.rows(), actions.cols(), n, action_dim));
+  FORAY_RETURN_IF_ERROR(
+      CheckShape("next_states", next_states.rows(), next_states.cols(), n, state_dim));
+  FORAY_RETURN_IF_ERROR(CheckShape("rewards", rewards.rows(), 1, n, 1));
+  FORAY_RETURN_IF_ERROR(CheckFinite("states", states));
+  FORAY_RETURN_IF_ERROR(CheckFinite("actions", actions));
+  FORAY_RETURN_IF_ERROR(CheckFinite("next_states", next_states));
+  FORAY_RETURN_IF_ERROR(CheckFinite("rewards", rewards));
+  return absl::OkStatus();
+}
+
+absl::Status TrainingOptions::Validate() const {
+  if (batch_size < 1 || batch_size > 65536) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("batch_size is %d, expected 1..65536", batch_size));
+  }
+  if (max_epochs < 1 || max_epochs > 10000) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("max_epochs is %d, expected 1..10000", max_epochs));
+  }
+  if (!(learning_rate > 0 && learning_rate < 1)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("learning_rate is %g, expected in (0, 1)", learning_rate));
+  }
+  if (!(weight_decay >= 0 && weight_decay < 1)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("weight_decay is %g, expected in [0, 1)", weight_decay));
+  }
+  if (!(adam_beta1 >= 0 && adam_beta1 < 1) || !(adam_beta2 >= 0 && adam_beta2 < 1) ||
+      !(adam_epsilon > 0)) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "Adam settings are beta1 %g, beta2 %g, epsilon %g; expected betas in [0, 1) and "
+        "epsilon > 0",
+        adam_beta1, adam_beta2, adam_epsilon));
+  }
+  if (!(log_var_bound_penalty >= 0 && std::isfinite(log_var_bound_penalty))) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "log_var_bound_penalty is %g, expected finite and >= 0", log_var_bound_penalty));
+  }
+  if (!(holdout_fraction >= 0 && holdout_fraction <= 0.5)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("holdout_fraction is %g, expected in [0, 0.5]", holdout_fraction));
+  }
+  if (patience < 1 || patience > 10000) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("patience is %d, expected 1..10000", patience));
+  }
+  return absl::OkStatus();
+}
+
+EnsembleTrainer::EnsembleTrainer(Ensemble start, const TrainingOptions& options)
+    : options_(options), current_(std::move(start)), rng_(options.seed) {}
+
+absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
+    Ensemble start, const TransitionData& data, const TrainingOptions& options) {
+  FORAY_RETURN_IF_ERROR(options.Validate());
+  FORAY_RETURN_IF_ERROR(data.Validate(start.state_dim(), start.action_dim()));
+  const int n = data.size();
+  if (n < 2) {
+    return absl::FailedPreconditionError(
+        absl::StrFormat("training needs at least 2 transitions, got %d", n));
+  }
+  std::unique_ptr<EnsembleTrainer> t(new EnsembleTrainer(std::move(start), options));
+  Ensemble& model = t->current_;
+
+  Eigen::MatrixXf inputs(n, model.input_dim());
+  inputs << data.states, data.actions;
+  Eigen::MatrixXf targets(n, model.output_dim());
+  targets << (data.next_states - data.states), data.rewards;
+
+  // Holdout split on a random permutation.
+  std::vector<int> order(n);
+  for (int i = 0; i < n; ++i) order[i] = i;
+  for (int i = n - 1; i > 0; --i) {
+    std::swap(order[i], order[t->rng_.UniformInt(static_cast<uint64_t>(i) + 1)]);
+  }
+  int holdout = static_cast<int>(std::floor(options.holdout_fraction * n));
+  holdout = std::min(holdout, n - 1);
+  t->holdout_rows_.assign(order.begin(), order.begin() + holdout);
+  t->train_rows_.assign(order.begin() + holdout, order.end());
+  std::sort(t->holdout_rows_.begin(), t->holdout_rows_.end());
+  std::sort(t->train_rows_.begin(), t->train_rows_.end());
+
+  if (options.refit_normalizers) {
+    const Eigen::MatrixXf train_in =
+        GatherRows(inputs, t->train_rows_.data(), static_cast<int>(t->train_rows_.size()));
+    const Eigen::MatrixXf train_out =
+        GatherRows(targets, t->train_rows_.data(), static_cast<int>(t->train_rows_.size()));
+    FORAY_RETURN_IF_ERROR(model.mutable_input_normalizer().Fit(train_in));
+    FORAY_RETURN_IF_ERROR(model.mutable_output_normalizer().Fit(train_out));
+  }
+  t->x_ = model.input_normalizer().Apply(inputs);
+  t->y_ = model.output_normalizer().Apply(targets);
+  const std::vector<int>& eval_rows = holdout > 0 ? t->holdout_rows_ : t->train_rows_;
+  t->holdout_x_ = GatherRows(t->x_, eval_rows.data(), static_cast<int>(eval_rows.size()));
+  t->holdout_y_ = GatherRows(t->y_, eval_rows.data(), static_cast<int>(eval_rows.size()));
+
+  const int n_train = static_cast<int>(t->train_rows_.size());
+  t->member_rows_.resize(model.size());
+  for (int b = 0; b < model.size(); ++b) {
+    std::vector<int>& rows = t->member_rows_[b];
+    if (options.bootstrap) {
+      rows.resize(n_train);
+      for (int i = 0; i < n_train; ++i) {
+        rows[i] = t->train_rows_[t->rng_.UniformInt(static_cast<uint64_t>(n_train))];
+      }
+    } else {
+      rows = t->train_rows_;
+    }
+  }
+
+  const Eigen::Index p = model.num_member_params();
+  const Eigen::Index d = model.output_dim();
+  t->grad_ = Eigen::MatrixXf::Zero(p, model.size());
+  t->m_ = Eigen::MatrixXf::Zero(p, model.size());
+  t->v_ = Eigen::MatrixXf::Zero(p, model.size());
+  for (Eigen::VectorXf* vec : {&t->grad_max_, &t->m_max_, &t->v_max_, &t->grad_min_,
+                               &t->m_min_, &t->v_min_}) {
+    *vec = Eigen::VectorXf::Zero(d);
+  }
+  t->best_ = t->current_;
+  t->best_holdout_nll_ = t->HoldoutNll(t->current_);
+  return t;
+}
+
+double EnsembleTrainer::HoldoutNll(const Ensemble& model) const {
+  double sum = 0;
+  for (int b = 0; b < model.size(); ++b) sum += model.MemberLoss(b, holdout_x_, holdout_y_);
+  return sum / model.size();
+}
+
+void EnsembleTrainer::AdamStep() {
+  ++step_;
+  const float b1 = static_cast<float>(options_.adam_beta1);
+  const float b2 = static_cast<float>(options_.adam_beta2);
+  const float eps = static_cast<float>(options_.adam_epsilon);
+  const double bc1 = 1.0 - std::pow(options_.adam_beta1, static_cast<double>(step_));
+  const double bc2 = 1.0 - std::pow(options_.adam_beta2, static_cast<double>(step_));
+  const float step_size = static_cast<float>(options_.learning_rate / bc1);
+  const float inv_sqrt_bc2 = static_cast<float>(1.0 / std::sqrt(bc2));
+  const float decay = static_cast<float>(1.0 - options_.learning_rate * options_.weight_decay);
+
+  // Same order of operations as a decoupled-decay Adam: decay, moments, update.
+  auto update = [&](auto& param, auto& grad, auto& m, auto& v, float decay_factor) {
+    param.array() *= decay_factor;
+    m.array() = b1 * m.array() + (1 - b1) * grad.array();
+    v.array() = b2 * v.array() + (1 - b2) * grad.array().square();
+    param.array() -= step_size * m.array() / (v.array().sqrt() * inv_sqrt_bc2 + eps);
+  };
+  update(current_.mutable_params(), grad_, m_, v_, decay);
+  update(current_.mutable_max_log_var(), grad_max_, m_max_, v_max_, 1.0f);
+  update(current_.mutable_min_log_var(), grad_min_, m_min_, v_min_, 1.0f);
+}
+
+bool EnsembleTrainer::RunEpoch() {
+  if (done_) return true;
+  const int members = current_.size();
+  for (std::vector<int>& rows : member_rows_) {
+    for (int i = static_cast<int>(rows.size()) - 1; i > 0; --i) {
+      std::swap(rows[i], rows[rng_.UniformInt(static_cast<uint64_t>(i) + 1)]);
+    }
+  }
+  const int rows_per_member = static_cast<int>(member_rows_[0].size());
+  const int batch = options_.batch_size;
+  const int steps = (rows_per_member + batch - 1) / batch;
+  const float penalty = static_cast<float>(options_.log_var_bound_penalty);
+  double nll_sum = 0;
+  for (int s = 0; s < steps; ++s) {
+    const int begin = s * batch;
+    const int count = std::min(batch, rows_per_member - begin);
+    grad_max_.setZero();
+    grad_min_.setZero();
+    for (int b = 0; b < members; ++b) {
+      const int* rows = member_rows_[b].data() + begin;
+      const Eigen::MatrixXf xb = GatherRows(x_, rows, count);
+      const Eigen::MatrixXf yb = GatherRows(y_, rows, count);
+      nll_sum += current_.MemberLossAndGradient(b, xb, yb, grad_.col(b).data(), &grad_max_,
+                                                &grad_min_);
+    }
+    grad_max_.array() += penalty;
+    grad_min_.array() -= penalty;
+    AdamStep();
+  }
+  last_train_nll_ = nll_sum / (static_cast<double>(steps) * members);
+  ++epoch_;
+
+  const double holdout_nll = HoldoutNll(current_);
+  if (holdout_nll < best_holdout_nll_) {
+    best_holdout_nll_ = holdout_nll;
+    best_ = current_;
+    best_epoch_ = epoch_;
+    epochs_since_best_ = 0;
+  } else {
+    ++epochs_since_best_;
+  }
+  done_ = epochs_since_best_ >= options_.patience || epoch_ >= options_.max_epochs;
+  return done_;
+}
+
+TrainingReport EnsembleTrainer::Report() const {
+  TrainingReport r;
+  r.epochs = epoch_;
+  r.best_epoch = best_epoch_;
+  r.transitions = static_cast<int>(x_.rows());
+  r.train_rows = static_cast<int>(train_rows_.size());
+  r.holdout_rows = static_cast<int>(holdout_rows_.size());
+  r.train_nll = last_train_nll_;
+  r.holdout_nll = best_holdout_nll_;
+
+  // Moment-matched mixture of the members: mean of means; mean of variances plus the
+  // variance of the means.
+  const Eigen::Index rows = holdout_x_.rows();
+  const Eigen::Index d = best_.output_dim();
+  Eigen::ArrayXXd mix_mean = Eigen::ArrayXXd::Zero(rows, d);
+  Eigen::ArrayXXd second = Eigen::ArrayXXd::Zero(rows, d);
+  Eigen::MatrixXf mean, log_var;
+  for (int b = 0; b < best_.size(); ++b) {
+    best_.MemberForward(b, holdout_x_, &mean, &log_var);
+    const Eigen::ArrayXXd m = mean.cast<double>().array();
+    mix_mean += m;
+    second += log_var.cast<double>().array().exp() + m.square();
+  }
+  mix_mean /= best_.size();
+  const Eigen::ArrayXXd mix_var = (second / best_.size() - mix_mean.square()).max(0.0);
+  const Eigen::ArrayXXd err = (holdout_y_.cast<double>().array() - mix_mean).abs();
+  r.holdout_mse = err.square().mean();
+  const Eigen::ArrayXXd sigma = mix_var.sqrt();
+  for (Eigen::Index k = 0; k < d; ++k) {
+    r.within_1sigma.push_back((err.col(k) <= sigma.col(k)).cast<double>().mean());
+    r.within_2sigma.push_back((err.col(k) <= 2.0 * sigma.col(k)).cast<double>().mean());
+  }
+  return r;
+}
+
+absl::StatusOr<std::pair<Ensemble, TrainingReport>> TrainEnsemble(
+    Ensemble start, const TransitionData& data, const TrainingOptions& options) {
+  FORAY_ASSIGN_OR_RETURN(std::unique_ptr<EnsembleTrainer> trainer,
+                         EnsembleTrainer::Create(std::move(start), data, options));
+  while (!trainer->RunEpoch()) {
+  }
+  return std::make_pair(trainer->best(), trainer->Report());
+}
+
+}  // namespace foray::model

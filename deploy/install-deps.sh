@@ -1,0 +1,55 @@
+#!/usr/bin/env bash
+# Installs every Debian package Foray needs to build, run and test. Idempotent: when all
+# packages are present it only checks and exits. Works as root or through sudo.
+set -euo pipefail
+
+PACKAGES=(
+  build-essential        # g++ 12 (C++20) and make
+  cmake                  # build system (3.22 or newer)
+  ninja-build            # fast parallel builds
+  pkg-config             # library lookup
+  libgrpc++-dev          # gRPC C++ (server, client library, health, reflection)
+  protobuf-compiler      # protoc
+  protobuf-compiler-grpc # grpc_cpp_plugin and grpc_python_plugin
+  libprotobuf-dev        # Protocol Buffers C++ runtime
+  libabsl-dev            # Abseil: status, flags, strings, synchronisation
+  libeigen3-dev          # Eigen: the linear algebra of the models and planner
+  libsqlite3-dev         # SQLite: the embedded store
+  libgtest-dev           # GoogleTest: C++ unit tests
+  libgmock-dev           # GoogleMock
+  libbenchmark-dev       # Google Benchmark
+  python3                # /usr/bin/python3, the interpreter that sees Debian's Python packages
+  python3-grpcio         # Python gRPC: client package and loopback tests
+  python3-protobuf       # Python protobuf runtime for the generated modules
+  python3-numpy          # reference arrays in tests
+  python3-scipy          # reference integrators and statistics in tests
+  python3-torch          # reference network computations and benchmarks
+  python3-pytest         # Python test runner
+)
+
+missing=()
+for pkg in "${PACKAGES[@]}"; do
+  if ! dpkg-query -W -f='${Status}' "$pkg" 2>/dev/null | grep -q "install ok installed"; then
+    missing+=("$pkg")
+  fi
+done
+
+if [ ${#missing[@]} -eq 0 ]; then
+  echo "install-deps: all ${#PACKAGES[@]} packages present"
+  exit 0
+fi
+
+SUDO=""
+if [ "$(id -u)" -ne 0 ]; then
+  if command -v sudo >/dev/null 2>&1; then
+    SUDO="sudo"
+  else
+    echo "install-deps: need root or sudo to install: ${missing[*]}" >&2
+    exit 1
+  fi
+fi
+
+echo "install-deps: installing ${missing[*]}"
+$SUDO env DEBIAN_FRONTEND=noninteractive apt-get update -qq
+$SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends "${missing[@]}"
+echo "install-deps: done"

@@ -1,0 +1,60 @@
+"""Starts a real forayd on a loopback port for a test and stops it afterwards."""
+
+import os
+import re
+import signal
+import subprocess
+import tempfile
+import time
+
+import pytest
+
+
+class Forayd:
+    def __init__(self, data_dir):
+        self.data_dir = data_dir
+        self.log_path = os.path.join(data_dir, "forayd.log")
+        self.log = open(self.log_path, "w+")
+        self.process = subprocess.Popen(
+            [os.environ["FORAYD"], "--listen=127.0.0.1:0", f"--data_dir={data_dir}"],
+            stdout=self.log, stderr=subprocess.STDOUT)
+        self.port = self._wait_for_port(timeout_s=20)
+        self.address = f"127.0.0.1:{self.port}"
+
+    def _wait_for_port(self, timeout_s):
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            with open(self.log_path) as f:
+                match = re.search(r"\(port (\d+)\)", f.read())
+            if match:
+                return int(match.group(1))
+            if self.process.poll() is not None:
+                break
+            time.sleep(0.05)
+        with open(self.log_path) as f:
+            raise RuntimeError(f"forayd did not start:\n{f.read()}")
+
+    def stop(self, sig=signal.SIGTERM, timeout_s=15):
+        if self.process.poll() is None:
+            self.process.send_signal(sig)
+            try:
+                self.process.wait(timeout=timeout_s)
+            except subprocess.TimeoutExpired:
+                self.process.kill()
+                self.process.wait()
+        self.log.close()
+        return self.process.returncode
+
+    def output(self):
+        with open(self.log_path) as f:
+            return f.read()
+
+
+@pytest.fixture
+def forayd():
+    with tempfile.TemporaryDirectory(prefix="foray-test-") as data_dir:
+        server = Forayd(data_dir)
+        try:
+            yield server
+        finally:
+            server.stop()
