@@ -1,0 +1,70 @@
+// A read-only, inference-optimised copy of an ensemble for the planner's hot path: weights
+// re-laid row-major and padded to the SIMD width, each layer's product, bias and activation
+// fused in one pass over register tiles (AVX-512 where the build has it, Eigen otherwise).
+// Built once per published model version. Const methods are safe from several threads, each
+// with its own Workspace.
+//
+//   InferenceEnsemble fast(ensemble);
+//   InferenceEnsemble::Workspace ws;
+//   fast.ForwardMember(b, x.data(), rows, mean.data(), log_var.data(), &ws);
+#ifndef FORAY_CORE_MODEL_INFERENCE_H_
+#define FORAY_CORE_MODEL_INFERENCE_H_
+
+#include <vector>
+
+#include "core/model/ensemble.h"
+
+namespace foray::model {
+
+class InferenceEnsemble {
+ public:
+  // Row-major float matrix storage used by the fast path.
+  using RowMatrix = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+
+  // Per-thread scratch buffers; grow on first use and are reused afterwards.
+  struct Workspace {
+    std::vector<float> a, b;
+  };
+
+  // Copyable and movable.
+  explicit InferenceEnsemble(const Ensemble& ensemble);
+
+  int size() const { return members_; }
+  int input_dim() const { return input_dim_; }
+  int output_dim() const { return output_dim_; }
+  const Ensemble& source() const { return source_; }
+
+  // Member `member` at `rows` normalised inputs. x: (rows, input_dim) row-major, contiguous.
+  // Writes mean and bounded log-variance, each (rows, output_dim) row-major, normalised
+  // outputs: the same numbers as Ensemble::MemberForward up to float rounding.
+  void ForwardMember(int member, const float* x, int rows, float* mean, float* log_var,
+                     Workspace* workspace) const;
+
+  // Floating-point operations of one member on one row (multiply-adds count two).
+  double FlopsPerMemberRow() const;
+
+ private:
+  struct Layer {
+    int fan_in = 0;       // real input width
+    int fan_in_pad = 0;   // stride of the input rows
+    int fan_out = 0;      // real output width
+    int fan_out_pad = 0;  // multiple of 16
+    RowMatrix weights;    // (fan_in, fan_out_pad), zero-padded columns
+    Eigen::VectorXf bias; // (fan_out_pad)
+  };
+
+  Ensemble source_;
+  int members_ = 0;
+  int input_dim_ = 0;
+  int output_dim_ = 0;
+  Activation activation_ = Activation::kSilu;
+  std::vector<std::vector<Layer>> layers_;  // [member][layer]
+  // Output layer epilogue, per padded column: 1 for a log-variance column, and its bounds.
+  Eigen::VectorXf head_is_log_var_;
+  Eigen::VectorXf head_max_;
+  Eigen::VectorXf head_min_;
+};
+
+}  // namespace foray::model
+
+#endif  // FORAY_CORE_MODEL_INFERENCE_H_

@@ -1,0 +1,117 @@
+// Model benchmark, C++ side: the machine's SGEMM peak (Eigen), the batched ensemble forward
+// (B=5, 3x64, 1,000 rows) and one training epoch (5,000 transitions, minibatch 256).
+// Prints one JSON object per figure; run_model_bench.sh runs it beside the PyTorch reference.
+
+#include <algorithm>
+#include <chrono>
+#include <cstdio>
+#include <cstdlib>
+#include <string>
+#include <vector>
+
+#include "Eigen/Core"
+#include "core/model/ensemble.h"
+#include "core/model/inference.h"
+#include "core/model/trainer.h"
+#include "core/util/random.h"
+
+namespace {
+
+struct Timing {
+  double median_ms, min_ms, max_ms;
+};
+
+template <typename F>
+Timing Time(F&& fn, int repeats, int warmup = 3) {
+  for (int i = 0; i < warmup; ++i) fn();
+  std::vector<double> ms;
+  for (int i = 0; i < repeats; ++i) {
+    const auto start = std::chrono::steady_clock::now();
+    fn();
+    ms.push_back(std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - start)
+                     .count());
+  }
+  std::sort(ms.begin(), ms.end());
+  return {ms[ms.size() / 2], ms.front(), ms.back()};
+}
+
+void Print(const std::string& name, const Timing& t, double flops, const std::string& extra = "") {
+  std::printf(
+      "{\"name\": \"%s\", \"impl\": \"foray\", \"median_ms\": %.4f, \"min_ms\": %.4f, "
+      "\"max_ms\": %.4f, \"gflops\": %.2f%s}\n",
+      name.c_str(), t.median_ms, t.min_ms, t.max_ms, flops / (t.median_ms * 1e6), extra.c_str());
+  std::fflush(stdout);
+}
+
+Eigen::MatrixXf Random(int rows, int cols, uint64_t seed) {
+  foray::Rng rng(seed);
+  Eigen::MatrixXf m(rows, cols);
+  for (int j = 0; j < cols; ++j)
+    for (int i = 0; i < rows; ++i) m(i, j) = static_cast<float>(rng.Normal());
+  return m;
+}
+
+}  // namespace
+
+int main(int argc, char** argv) {
+  const int repeats = argc > 1 ? std::atoi(argv[1]) : 30;
+  using foray::model::Ensemble;
+
+  // SGEMM peak: large square products, single thread (the core library runs on the caller's
+  // thread; Eigen is built without OpenMP).
+  {
+    const int n = 1536;
+    const Eigen::MatrixXf a = Random(n, n, 1), b = Random(n, n, 2);
+    Eigen::MatrixXf c(n, n);
+    const Timing t = Time([&] { c.noalias() = a * b; }, std::max(5, repeats / 3));
+    Print("sgemm_peak", t, 2.0 * n * n * n, ", \"n\": 1536, \"threads\": 1");
+  }
+
+  const int state_dim = 4, action_dim = 1;
+  foray::model::EnsembleOptions eopt;
+  if (std::getenv("BENCH_RELU")) eopt.activation = foray::model::Activation::kRelu;
+  auto ensemble = Ensemble::Create(state_dim, action_dim, eopt, 3);
+  // FLOPs of one member on one row: 2 * sum of fan_in * fan_out over the layers.
+  double member_row_flops = 0;
+  for (int l = 0; l < ensemble->num_layers(); ++l) {
+    member_row_flops += 2.0 * ensemble->layer_fan_in(l) * ensemble->layer_fan_out(l);
+  }
+
+  {
+    const int rows = 1000;
+    const foray::model::InferenceEnsemble fast(*ensemble);
+    foray::model::InferenceEnsemble::Workspace ws;
+    const foray::model::InferenceEnsemble::RowMatrix x = Random(rows, state_dim + action_dim, 4);
+    std::vector<float> mean(rows * ensemble->output_dim()), log_var(mean.size());
+    const Timing t = Time(
+        [&] {
+          for (int b = 0; b < fast.size(); ++b) {
+            fast.ForwardMember(b, x.data(), rows, mean.data(), log_var.data(), &ws);
+          }
+        },
+        repeats * 10);
+    Print("ensemble_forward", t, member_row_flops * rows * ensemble->size());
+  }
+
+  {
+    const int n = 5000;
+    foray::model::TransitionData data;
+    data.states = Random(n, state_dim, 5);
+    data.actions = Random(n, action_dim, 6);
+    data.next_states = data.states + 0.1f * Random(n, state_dim, 7);
+    data.rewards = Random(n, 1, 8).col(0);
+    foray::model::TrainingOptions options;
+    options.holdout_fraction = 0;  // the epoch alone, as in the reference
+    options.max_epochs = 10000;
+    options.patience = 10000;
+    auto trainer = foray::model::EnsembleTrainer::Create(*ensemble, data, options);
+    if (!trainer.ok()) {
+      std::fprintf(stderr, "%s\n", std::string(trainer.status().message()).c_str());
+      return 1;
+    }
+    const Timing t = Time([&] { (*trainer)->RunEpoch(); }, std::max(5, repeats / 3), 2);
+    // Forward + backward is about 3x the forward FLOPs (backward has two products per layer).
+    Print("train_epoch", t, 3.0 * member_row_flops * n * ensemble->size());
+  }
+  return 0;
+}

@@ -1,0 +1,57 @@
+// The inference copy computes what the reference ensemble computes (Ensemble::MemberForward,
+// itself checked against PyTorch in torch_parity_test.cc), for shapes that exercise every tile
+// remainder: rows not a multiple of the 6-row tile, widths not a multiple of 16.
+
+#include "core/model/inference.h"
+
+#include <tuple>
+
+#include "core/util/random.h"
+#include "gtest/gtest.h"
+
+namespace foray::model {
+namespace {
+
+using Param = std::tuple<Activation, std::vector<int>, int /*state_dim*/, int /*rows*/>;
+
+class InferenceTest : public ::testing::TestWithParam<Param> {};
+
+TEST_P(InferenceTest, MatchesReferenceForward) {
+  const auto& [activation, widths, state_dim, rows] = GetParam();
+  EnsembleOptions options;
+  options.ensemble_size = 3;
+  options.hidden_widths = widths;
+  options.activation = activation;
+  auto e = Ensemble::Create(state_dim, 2, options, 8);
+  ASSERT_TRUE(e.ok());
+  e->mutable_params() *= 2.0f;  // reach both log-variance bounds
+  e->mutable_params().row(0).array() += 0.1f;
+  Rng rng(3);
+  Eigen::MatrixXf x(rows, e->input_dim());
+  for (int j = 0; j < x.cols(); ++j)
+    for (int i = 0; i < rows; ++i) x(i, j) = static_cast<float>(2 * rng.Normal());
+  const InferenceEnsemble::RowMatrix x_rows = x;
+  InferenceEnsemble fast(*e);
+  InferenceEnsemble::Workspace ws;
+  for (int b = 0; b < e->size(); ++b) {
+    Eigen::MatrixXf mean, log_var;
+    e->MemberForward(b, x, &mean, &log_var);
+    InferenceEnsemble::RowMatrix fast_mean(rows, e->output_dim()), fast_lv(rows, e->output_dim());
+    fast.ForwardMember(b, x_rows.data(), rows, fast_mean.data(), fast_lv.data(), &ws);
+    const double scale = std::max(1.0f, mean.cwiseAbs().maxCoeff());
+    EXPECT_LT((fast_mean - mean).cwiseAbs().maxCoeff() / scale, 1e-5) << "member " << b;
+    EXPECT_LT((fast_lv - log_var).cwiseAbs().maxCoeff(), 1e-5 * 10) << "member " << b;
+  }
+}
+
+INSTANTIATE_TEST_SUITE_P(
+    Shapes, InferenceTest,
+    ::testing::Values(Param{Activation::kSilu, {64, 64, 64}, 4, 1000},
+                      Param{Activation::kSilu, {200, 200, 200}, 14, 37},
+                      Param{Activation::kRelu, {24, 40}, 3, 13},
+                      Param{Activation::kTanh, {70}, 9, 6},
+                      Param{Activation::kSilu, {16}, 1, 1},
+                      Param{Activation::kTanh, {130, 17}, 20, 5}));
+
+}  // namespace
+}  // namespace foray::model
