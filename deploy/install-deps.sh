@@ -25,6 +25,7 @@ PACKAGES=(
   python3-scipy          # reference integrators and statistics in tests
   python3-torch          # reference network computations and benchmarks
   python3-pytest         # Python test runner
+  libopenblas0-pthread   # optimised BLAS, so the numpy and PyTorch references run at full speed
 )
 
 missing=()

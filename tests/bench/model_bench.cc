@@ -68,8 +68,7 @@ int main(int argc, char** argv) {
   }
 
   const int state_dim = 4, action_dim = 1;
-  foray::model::EnsembleOptions eopt;
-  if (std::getenv("BENCH_RELU")) eopt.activation = foray::model::Activation::kRelu;
+  const foray::model::EnsembleOptions eopt;
   auto ensemble = Ensemble::Create(state_dim, action_dim, eopt, 3);
   // FLOPs of one member on one row: 2 * sum of fan_in * fan_out over the layers.
   double member_row_flops = 0;
