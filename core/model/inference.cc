@@ -168,8 +168,7 @@ void Dense(const float* x, int ldx, int rows, int k_count, const float* w, int l
 }  // namespace
 
 InferenceEnsemble::InferenceEnsemble(const Ensemble& e)
-    : source_(e),
-      members_(e.size()),
+    : members_(e.size()),
       input_dim_(e.input_dim()),
       output_dim_(e.output_dim()),
       activation_(e.activation()) {
@@ -188,6 +187,7 @@ InferenceEnsemble::InferenceEnsemble(const Ensemble& e)
       layer.bias = Eigen::VectorXf::Zero(layer.fan_out_pad);
       layer.bias.head(layer.fan_out) =
           Eigen::Map<const Eigen::VectorXf>(p + e.bias_offset(l), layer.fan_out);
+      widest_pad_ = std::max(widest_pad_, layer.fan_out_pad);
       layers_[b].push_back(std::move(layer));
     }
   }
@@ -206,9 +206,7 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
                                       float* log_var, Workspace* ws) const {
   FORAY_CHECK(member >= 0 && member < members_, "member index out of range");
   const std::vector<Layer>& layers = layers_[member];
-  int widest = 0;
-  for (const Layer& l : layers) widest = std::max(widest, l.fan_out_pad);
-  const size_t need = static_cast<size_t>(rows) * widest;
+  const size_t need = static_cast<size_t>(rows) * widest_pad_;
   if (ws->a.size() < need) ws->a.resize(need);
   if (ws->b.size() < need) ws->b.resize(need);
 
@@ -237,12 +235,6 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
     std::copy(row, row + d, mean + static_cast<size_t>(r) * d);
     std::copy(row + d, row + 2 * d, log_var + static_cast<size_t>(r) * d);
   }
-}
-
-double InferenceEnsemble::FlopsPerMemberRow() const {
-  double flops = 0;
-  for (const Layer& l : layers_[0]) flops += 2.0 * l.fan_in * l.fan_out;
-  return flops;
 }
 
 }  // namespace foray::model

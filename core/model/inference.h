@@ -32,16 +32,12 @@ class InferenceEnsemble {
   int size() const { return members_; }
   int input_dim() const { return input_dim_; }
   int output_dim() const { return output_dim_; }
-  const Ensemble& source() const { return source_; }
 
   // Member `member` at `rows` normalised inputs. x: (rows, input_dim) row-major, contiguous.
   // Writes mean and bounded log-variance, each (rows, output_dim) row-major, normalised
   // outputs: the same numbers as Ensemble::MemberForward up to float rounding.
   void ForwardMember(int member, const float* x, int rows, float* mean, float* log_var,
                      Workspace* workspace) const;
-
-  // Floating-point operations of one member on one row (multiply-adds count two).
-  double FlopsPerMemberRow() const;
 
  private:
   struct Layer {
@@ -53,11 +49,11 @@ class InferenceEnsemble {
     Eigen::VectorXf bias; // (fan_out_pad)
   };
 
-  Ensemble source_;
   int members_ = 0;
   int input_dim_ = 0;
   int output_dim_ = 0;
   Activation activation_ = Activation::kSilu;
+  int widest_pad_ = 0;  // widest padded layer output: the row stride of the scratch buffers
   std::vector<std::vector<Layer>> layers_;  // [member][layer]
   // Output layer epilogue, per padded column: 1 for a log-variance column, and its bounds.
   Eigen::VectorXf head_is_log_var_;

@@ -89,15 +89,19 @@ def nll(mean, log_var, target):
         mean, target, torch.exp(log_var), full=True, eps=1e-30, reduction="mean")
 
 
+def write_weights(w, layers, max_lv, min_lv, prefix=""):
+    for b, member in enumerate(layers):
+        for l, (weight, bias) in enumerate(member):
+            w.put(f"{prefix}w_{b}_{l}", weight)
+            w.put(f"{prefix}bias_{b}_{l}", bias)
+    w.put(f"{prefix}max_lv", max_lv)
+    w.put(f"{prefix}min_lv", min_lv)
+
+
 def write_ensemble(w, layers, max_lv, min_lv, meta):
     state_dim, action_dim, members, widths, activation = meta
     w.put("meta", [state_dim, action_dim, members, ACTIVATION_CODE[activation]] + widths)
-    for b, member in enumerate(layers):
-        for l, (weight, bias) in enumerate(member):
-            w.put(f"w_{b}_{l}", weight)
-            w.put(f"bias_{b}_{l}", bias)
-    w.put("max_lv", max_lv)
-    w.put("min_lv", min_lv)
+    write_weights(w, layers, max_lv, min_lv)
 
 
 def case_forward(args):
@@ -161,12 +165,7 @@ def case_adamw(args):
         loss = loss + penalty * (max_lv.sum() - min_lv.sum())
         loss.backward()
         opt.step()
-    for b, member in enumerate(layers):
-        for l, (weight, bias) in enumerate(member):
-            w.put(f"after_w_{b}_{l}", weight)
-            w.put(f"after_bias_{b}_{l}", bias)
-    w.put("after_max_lv", max_lv)
-    w.put("after_min_lv", min_lv)
+    write_weights(w, layers, max_lv, min_lv, prefix="after_")
     w.close()
 
 
