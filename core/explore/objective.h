@@ -1,0 +1,59 @@
+// The planning objective: weights of expected reward and information gain, the discount, the
+// estimator, and the known reward functions a robot's spec may give instead of the learned
+// reward head. Values; reading from several threads is safe.
+//
+//   J = mean_p sum_t gamma^t ( w_r E[r_t] + w_i I_t )
+#ifndef FORAY_CORE_EXPLORE_OBJECTIVE_H_
+#define FORAY_CORE_EXPLORE_OBJECTIVE_H_
+
+#include <vector>
+
+#include "absl/status/status.h"
+#include "core/explore/information_gain.h"
+
+namespace foray::explore {
+
+// A reward given as a function of the transition instead of learned.
+struct KnownReward {
+  enum class Kind {
+    kLearned = 0,    // use the ensemble's reward head
+    kQuadratic = 1,  // r = -sum_k q_k (s'_k - target_k)^2 - sum_j c_j a_j^2
+    kRegion = 2,     // r = 1 when lower_i <= s'_{indices_i} <= upper_i for every i, else 0
+  };
+  Kind kind = Kind::kLearned;
+
+  // kQuadratic. target: state_dim values (state units); state_weight: state_dim values
+  // (1/unit^2), empty means all 1; action_weight: action_dim values, empty means all 0.
+  std::vector<double> target;
+  std::vector<double> state_weight;
+  std::vector<double> action_weight;
+
+  // kRegion. indices into the state; lower and upper the same length, lower <= upper.
+  std::vector<int> indices;
+  std::vector<double> lower;
+  std::vector<double> upper;
+
+  // InvalidArgument naming the field and the sizes when a vector does not fit the robot.
+  absl::Status Validate(int state_dim, int action_dim) const;
+
+  // Reward of `rows` transitions. next_states: (rows, state_dim) with row stride
+  // `state_stride`; actions: (rows, action_dim) with row stride `action_stride`; row-major,
+  // robot units. out: (rows). Requires kind != kLearned and a valid function.
+  void Evaluate(const float* next_states, int state_stride, const float* actions,
+                int action_stride, int rows, int state_dim, int action_dim, float* out) const;
+};
+
+struct ObjectiveOptions {
+  double reward_weight = 1.0;       // w_r, per reward unit
+  double information_weight = 1.0;  // w_i, per nat
+  double discount = 1.0;            // gamma, in (0, 1]
+  Estimator estimator = Estimator::kPairwiseKl;
+  int monte_carlo_samples = 1000;   // per row, kMonteCarlo only
+  KnownReward known_reward;
+
+  absl::Status Validate(int state_dim, int action_dim) const;
+};
+
+}  // namespace foray::explore
+
+#endif  // FORAY_CORE_EXPLORE_OBJECTIVE_H_

@@ -1,0 +1,119 @@
+// The cross-entropy method over action sequences, with the improvements of Pinneri et al. 2020,
+// "Sample-efficient Cross-Entropy Method for Real-time Planning", CoRL (iCEM): coloured noise
+// along the horizon, elites kept between iterations, shift-initialisation from the previous
+// plan, population decay, the best sequence seen returned, bounds by clipping, an optional
+// per-step rate limit, and a deadline checked between iterations. Plain CEM is the special
+// case noise_beta 0, keep_fraction 0, population_decay 1, momentum 0.
+//
+// A sequence is (horizon, dim) stored row-major as horizon * dim floats. The optimiser
+// maximises. Not thread-safe per call (the score function is called from the caller's thread).
+//
+//   CemOptions options;                       // iCEM defaults
+//   SequenceLimits limits = SequenceLimits::Box(lower, upper);
+//   auto result = MaximizeCem(options, limits, score, /*warm_start=*/nullptr, deadline);
+#ifndef FORAY_CORE_PLAN_CEM_H_
+#define FORAY_CORE_PLAN_CEM_H_
+
+#include <cstdint>
+#include <functional>
+#include <optional>
+#include <vector>
+
+#include "Eigen/Core"
+#include "absl/status/statusor.h"
+#include "absl/time/time.h"
+
+namespace foray::plan {
+
+using RowMatrixXf = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+
+// Sampler of Gaussian noise with power spectrum 1/f^beta along the horizon, unit variance at
+// every step (beta 0 is white noise). Built once per (horizon, beta): a (horizon, horizon)
+// matrix M mapping white normal coefficients z to a sequence M z of cosines and sines of the
+// horizon's frequencies k / horizon, each scaled by f^(-beta/2) (the zero frequency takes the
+// lowest non-zero frequency's scale). Copyable; const methods are thread-safe.
+class ColoredNoise {
+ public:
+  ColoredNoise(int horizon, double beta);
+  int horizon() const { return static_cast<int>(basis_.rows()); }
+  // Fills out[t * stride] for t < horizon with one sequence drawn from `normal`.
+  template <typename NormalDraw>
+  void Sample(NormalDraw&& normal, float* out, int stride) const {
+    const int h = horizon();
+    z_.resize(h);
+    for (int i = 0; i < h; ++i) z_[i] = static_cast<float>(normal());
+    for (int t = 0; t < h; ++t) out[t * stride] = basis_.row(t).dot(z_);
+  }
+
+ private:
+  RowMatrixXf basis_;            // (horizon, horizon), rows of unit norm
+  mutable Eigen::VectorXf z_;    // scratch (Sample is const but not reentrant per object)
+};
+
+// Bounds and rate limit of every element of a sequence, and the action before the sequence.
+struct SequenceLimits {
+  Eigen::VectorXf lower, upper;  // (dim), lower < upper, finite
+  // (dim) largest |a_t - a_{t-1}| per dim; 0 means none. Empty means no rate limit at all.
+  Eigen::VectorXf max_step;
+  // (dim) action applied before step 0, for the rate limit of step 0. Empty means none.
+  Eigen::VectorXf previous;
+
+  static SequenceLimits Box(Eigen::VectorXf lower, Eigen::VectorXf upper);
+  int dim() const { return static_cast<int>(lower.size()); }
+  // InvalidArgument naming the field and values on any inconsistency, including a previous
+  // action outside the bounds.
+  absl::Status Validate() const;
+  // Projects one sequence (horizon * dim, row-major) into the limits in place: clip step 0
+  // to the bounds and to previous +- max_step, then each later step to the bounds and to the
+  // (projected) step before it +- max_step. The result always satisfies every limit.
+  void Project(float* sequence, int horizon) const;
+};
+
+struct CemOptions {
+  int horizon = 20;             // steps
+  int population = 200;         // candidates in the first iteration
+  int elites = 20;              // K, <= population
+  int iterations = 4;           // at most; fewer when the deadline comes first
+  double noise_beta = 2.0;      // coloured-noise exponent; 0 = white
+  double keep_fraction = 0.3;   // fraction of the K elites carried into the next iteration
+  double population_decay = 1.25;  // N_i = max(N * decay^-i, 2 K), >= 1
+  double momentum = 0.1;        // mean/std <- momentum * old + (1 - momentum) * elite fit
+  double initial_std_fraction = 0.5;  // initial std per dim, fraction of (upper - lower)
+  double min_std_fraction = 1e-4;     // floor of the std, fraction of (upper - lower)
+  uint64_t seed = 1;
+
+  absl::Status Validate() const;
+};
+
+// Distribution state carried from one plan of a robot to the next (shift-initialisation).
+struct CemWarmStart {
+  RowMatrixXf mean;                 // (horizon, dim)
+  std::vector<RowMatrixXf> elites;  // each (horizon, dim), best first
+};
+
+struct CemResult {
+  RowMatrixXf best;         // (horizon, dim), within the limits
+  float best_score = 0.0f;
+  int iterations = 0;
+  int evaluations = 0;      // candidates scored
+  CemWarmStart next;        // mean and elites of the last iteration, unshifted
+};
+
+// Scores candidates: sequences (n, horizon * dim) row-major; writes n scores, higher better.
+// A non-finite score ranks last.
+using ScoreFunction = std::function<void(const float* sequences, int n, float* scores)>;
+
+// Runs CEM/iCEM. warm_start (may be null) is shifted by `shift` steps (the steps executed
+// since it was computed): its mean and elites lose their first `shift` rows and repeat the
+// last row. The first iteration always runs; before each later one the optimiser predicts its
+// duration from the last iteration (scaled by population) and stops if it would end after
+// `deadline`. `now` is the clock (absl::Now when empty).
+absl::StatusOr<CemResult> MaximizeCem(const CemOptions& options, const SequenceLimits& limits,
+                                      const ScoreFunction& score,
+                                      const CemWarmStart* warm_start = nullptr, int shift = 1,
+                                      absl::Time deadline = absl::InfiniteFuture(),
+                                      const std::function<absl::Time()>& now = {});
+
+}  // namespace foray::plan
+
+#endif  // FORAY_CORE_PLAN_CEM_H_

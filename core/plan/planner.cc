@@ -1,0 +1,110 @@
+#include "core/plan/planner.h"
+
+#include <chrono>
+#include <cmath>
+
+#include "absl/strings/str_format.h"
+
+namespace foray::plan {
+
+absl::Status PlannerOptions::Validate() const {
+  if (absl::Status s = cem().Validate(); !s.ok()) return s;
+  if (absl::Status s = rollout().Validate(); !s.ok()) return s;
+  if (report_particles < 0) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("report_particles is %d, must be >= 0", report_particles));
+  }
+  return absl::OkStatus();
+}
+
+CemOptions PlannerOptions::cem() const {
+  CemOptions c;
+  c.horizon = horizon;
+  c.population = population;
+  c.elites = elites;
+  c.iterations = iterations;
+  c.noise_beta = noise_beta;
+  c.keep_fraction = keep_fraction;
+  c.population_decay = population_decay;
+  c.momentum = momentum;
+  c.initial_std_fraction = initial_std_fraction;
+  c.seed = seed;
+  return c;
+}
+
+RolloutOptions PlannerOptions::rollout() const {
+  RolloutOptions r;
+  r.horizon = horizon;
+  r.particles = particles;
+  r.propagation = propagation;
+  return r;
+}
+
+absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
+                                const explore::ObjectiveOptions& objective,
+                                const PlannerOptions& options, const SequenceLimits& limits,
+                                const Eigen::VectorXf& state, const CemWarmStart* warm_start,
+                                int shift, absl::Time deadline,
+                                const std::function<absl::Time()>& now) {
+  const auto start = std::chrono::steady_clock::now();
+  if (absl::Status s = options.Validate(); !s.ok()) return s;
+  if (absl::Status s = objective.Validate(model.state_dim(), model.action_dim()); !s.ok()) return s;
+  if (limits.dim() != model.action_dim()) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "limits have %d action values, the model has %d", limits.dim(), model.action_dim()));
+  }
+  if (state.size() != model.state_dim()) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "state has %d values, the model expects %d", state.size(), model.state_dim()));
+  }
+  for (int k = 0; k < state.size(); ++k) {
+    if (!std::isfinite(state[k])) {
+      return absl::InvalidArgumentError(absl::StrFormat("state[%d] is %g, must be finite", k, state[k]));
+    }
+  }
+
+  const RolloutOptions rollout = options.rollout();
+  RolloutWorkspace workspace;
+  RolloutStats stats;
+  // A fresh draw of particles per iteration keeps the optimiser from fitting one draw's noise;
+  // candidates within an iteration share draws.
+  uint64_t iteration_seed = options.seed * 0x9e3779b97f4a7c15ULL + 1;
+  ScoreFunction score = [&](const float* sequences, int n, float* scores) {
+    ScoreSequences(model, objective, rollout, state.data(), sequences, n, iteration_seed++, scores,
+                   &workspace, nullptr, &stats);
+  };
+  absl::StatusOr<CemResult> cem =
+      MaximizeCem(options.cem(), limits, score, warm_start, shift, deadline, now);
+  if (!cem.ok()) return cem.status();
+
+  PlanResult result;
+  result.actions = cem->best;
+  result.iterations = cem->iterations;
+  result.evaluations = cem->evaluations;
+  result.warm_start = std::move(cem->next);
+
+  // The reported prediction: a separate rollout of the chosen sequence with its own draws.
+  RolloutOptions report = rollout;
+  report.particles = options.report_particles > 0 ? options.report_particles : options.particles;
+  RolloutTrace trace;
+  float objective_value = 0.0f;
+  ScoreSequences(model, objective, report, state.data(), result.actions.data(), 1,
+                 options.seed ^ 0x5bd1e995ULL, &objective_value, &workspace, &trace, &stats);
+  result.state_mean = trace.state_mean;
+  result.state_std = trace.state_std;
+  result.expected_reward = trace.expected_reward;
+  result.information_gain = trace.information_gain;
+  result.objective = objective_value;
+  double discount = 1.0;
+  for (int t = 0; t < options.horizon; ++t) {
+    result.expected_return += discount * trace.expected_reward[t];
+    result.total_information_gain += discount * trace.information_gain[t];
+    discount *= objective.discount;
+  }
+  result.model_seconds = stats.model_seconds;
+  result.model_flops = stats.model_flops;
+  result.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  return result;
+}
+
+}  // namespace foray::plan

@@ -1,0 +1,78 @@
+// The exploration planner: iCEM over action sequences scored by particle rollouts through the
+// robot's model, objective J = mean_p sum_t gamma^t (w_r E[r_t] + w_i I_t). Plan() is a pure
+// function of its arguments; it is safe from several threads as long as each call has its own
+// PlannerWarmStart (the model is read-only).
+//
+//   EnsembleRolloutModel model(ensemble);
+//   PlannerOptions options;  // horizon 20, population 200, elites 20, iterations 4, ...
+//   auto plan = Plan(model, objective, options, limits, state, &warm, deadline);
+#ifndef FORAY_CORE_PLAN_PLANNER_H_
+#define FORAY_CORE_PLAN_PLANNER_H_
+
+#include <functional>
+
+#include "Eigen/Core"
+#include "absl/status/statusor.h"
+#include "absl/time/time.h"
+#include "core/explore/objective.h"
+#include "core/plan/cem.h"
+#include "core/plan/rollout.h"
+
+namespace foray::plan {
+
+struct PlannerOptions {
+  int horizon = 20;
+  int population = 200;
+  int elites = 20;
+  int iterations = 4;
+  int particles = 5;
+  double noise_beta = 2.0;
+  double keep_fraction = 0.3;
+  double population_decay = 1.25;
+  double momentum = 0.1;
+  double initial_std_fraction = 0.5;
+  Propagation propagation = Propagation::kTsInf;
+  // Particles of the final rollout of the chosen sequence that fills the result's predicted
+  // states, rewards and information gains; 0 means `particles`.
+  int report_particles = 0;
+  uint64_t seed = 1;
+
+  absl::Status Validate() const;
+  CemOptions cem() const;
+  RolloutOptions rollout() const;
+};
+
+struct PlanResult {
+  RowMatrixXf actions;            // (horizon, action_dim), robot units, within the limits
+  RowMatrixXf state_mean;         // (horizon, state_dim): predicted state after each action
+  RowMatrixXf state_std;          // (horizon, state_dim)
+  Eigen::VectorXf expected_reward;   // (horizon), reward units
+  Eigen::VectorXf information_gain;  // (horizon), nats
+  // From the final rollout: J and its discounted parts sum_t gamma^t E[r_t], sum_t gamma^t I_t.
+  double objective = 0.0;
+  double expected_return = 0.0;
+  double total_information_gain = 0.0;
+  int iterations = 0;
+  int evaluations = 0;
+  double seconds = 0.0;          // wall time of Plan
+  double model_seconds = 0.0;    // part of it spent in the model's forward passes
+  double model_flops = 0.0;      // floating-point operations of those passes
+  CemWarmStart warm_start;       // pass to the next Plan of this robot
+};
+
+// Plans from `state` (state_dim, robot units). limits: the robot's action bounds, rate limits
+// and (optionally) the last applied action. warm_start: the previous plan's warm_start or
+// null; it is shifted by `shift` executed steps. Errors: InvalidArgument for bad options,
+// limits or a state of the wrong size or non-finite; FailedPrecondition when the model gives
+// non-finite predictions everywhere.
+absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
+                                const explore::ObjectiveOptions& objective,
+                                const PlannerOptions& options, const SequenceLimits& limits,
+                                const Eigen::VectorXf& state,
+                                const CemWarmStart* warm_start = nullptr, int shift = 1,
+                                absl::Time deadline = absl::InfiniteFuture(),
+                                const std::function<absl::Time()>& now = {});
+
+}  // namespace foray::plan
+
+#endif  // FORAY_CORE_PLAN_PLANNER_H_

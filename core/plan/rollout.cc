@@ -1,0 +1,232 @@
+#include "core/plan/rollout.h"
+
+#include <algorithm>
+#include <chrono>
+#include <cmath>
+
+#include "absl/strings/str_format.h"
+#include "core/util/random.h"
+#include "core/util/status_macros.h"
+
+namespace foray::plan {
+namespace {
+
+using Clock = std::chrono::steady_clock;
+
+double SecondsSince(Clock::time_point start) {
+  return std::chrono::duration<double>(Clock::now() - start).count();
+}
+
+// log-variance standing in for "no noise": exp(-60) is below float resolution of any state.
+constexpr float kDeterministicLogVar = -60.0f;
+
+}  // namespace
+
+EnsembleRolloutModel::EnsembleRolloutModel(const model::Ensemble& ensemble)
+    : state_dim_(ensemble.state_dim()),
+      action_dim_(ensemble.action_dim()),
+      fast_(ensemble),
+      input_mean_(ensemble.input_normalizer().mean()),
+      input_inv_std_(ensemble.input_normalizer().std().cwiseInverse()),
+      output_mean_(ensemble.output_normalizer().mean()),
+      output_std_(ensemble.output_normalizer().std()) {
+  const std::vector<int>& widths = ensemble.hidden_widths();
+  int fan_in = ensemble.input_dim();
+  for (int w : widths) {
+    flops_per_member_row_ += 2.0 * fan_in * w;
+    fan_in = w;
+  }
+  flops_per_member_row_ += 2.0 * fan_in * 2 * ensemble.output_dim();
+}
+
+void EnsembleRolloutModel::Evaluate(const float* states, const float* actions, int rows,
+                                    MemberPredictions* out) const {
+  const int in_dim = state_dim_ + action_dim_;
+  const int od = state_dim_ + 1;
+  const int nb = fast_.size();
+  out->members = nb;
+  out->rows = rows;
+  out->output_dim = od;
+  out->mean.resize(static_cast<size_t>(nb) * rows * od);
+  out->log_var.resize(out->mean.size());
+  out->input.resize(static_cast<size_t>(rows) * in_dim);
+  out->scale = output_std_;
+  out->offset = output_mean_;
+  float* x = out->input.data();
+  for (int r = 0; r < rows; ++r) {
+    const float* s = states + static_cast<std::ptrdiff_t>(r) * state_dim_;
+    const float* a = actions + static_cast<std::ptrdiff_t>(r) * action_dim_;
+    float* xr = x + static_cast<std::ptrdiff_t>(r) * in_dim;
+    for (int k = 0; k < state_dim_; ++k) xr[k] = (s[k] - input_mean_[k]) * input_inv_std_[k];
+    for (int j = 0; j < action_dim_; ++j) {
+      const int k = state_dim_ + j;
+      xr[k] = (a[j] - input_mean_[k]) * input_inv_std_[k];
+    }
+  }
+  for (int b = 0; b < nb; ++b) {
+    const std::ptrdiff_t at = static_cast<std::ptrdiff_t>(b) * rows * od;
+    fast_.ForwardMember(b, x, rows, out->mean.data() + at, out->log_var.data() + at,
+                        &out->forward);
+  }
+}
+
+LinearRolloutModel::LinearRolloutModel(Eigen::MatrixXf a, Eigen::MatrixXf b, Eigen::VectorXf c)
+    : a_(std::move(a)), b_(std::move(b)), c_(std::move(c)) {
+  FORAY_CHECK(a_.rows() == a_.cols() && b_.rows() == a_.rows() && c_.size() == a_.rows(),
+              "LinearRolloutModel: A must be square and B, c have its row count");
+}
+
+void LinearRolloutModel::Evaluate(const float* states, const float* actions, int rows,
+                                  MemberPredictions* out) const {
+  const int sd = state_dim(), ad = action_dim(), od = sd + 1;
+  out->members = 1;
+  out->rows = rows;
+  out->output_dim = od;
+  out->mean.assign(static_cast<size_t>(rows) * od, 0.0f);
+  out->log_var.assign(out->mean.size(), kDeterministicLogVar);
+  out->scale = Eigen::VectorXf::Ones(od);
+  out->offset = Eigen::VectorXf::Zero(od);
+  using RowMajor = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+  Eigen::Map<const RowMajor> s(states, rows, sd);
+  Eigen::Map<const RowMajor> u(actions, rows, ad);
+  Eigen::Map<RowMajor, 0, Eigen::OuterStride<>> delta(out->mean.data(), rows, sd,
+                                                      Eigen::OuterStride<>(od));
+  delta = s * (a_.transpose() - Eigen::MatrixXf::Identity(sd, sd)) + u * b_.transpose();
+  delta.rowwise() += c_.transpose();
+}
+
+absl::Status RolloutOptions::Validate() const {
+  if (horizon < 1) return absl::InvalidArgumentError(absl::StrFormat("horizon is %d, must be >= 1", horizon));
+  if (particles < 1) {
+    return absl::InvalidArgumentError(absl::StrFormat("particles is %d, must be >= 1", particles));
+  }
+  if (propagation != Propagation::kTsInf && propagation != Propagation::kTs1) {
+    return absl::InvalidArgumentError("propagation is not TS-inf or TS1");
+  }
+  return absl::OkStatus();
+}
+
+void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& objective,
+                    const RolloutOptions& options, const float* initial_state,
+                    const float* sequences, int candidates, uint64_t seed, float* scores,
+                    RolloutWorkspace* ws, RolloutTrace* trace, RolloutStats* stats) {
+  const int sd = model.state_dim(), ad = model.action_dim(), od = sd + 1;
+  const int horizon = options.horizon, particles = options.particles;
+  const int nb = model.members();
+  const int rows = candidates * particles;
+  const std::ptrdiff_t seq_stride = static_cast<std::ptrdiff_t>(horizon) * ad;
+  const bool learned_reward = objective.known_reward.kind == explore::KnownReward::Kind::kLearned;
+  const bool want_information = objective.information_weight != 0.0 || trace != nullptr;
+
+  // Draws shared by every candidate: member choice and standard-normal noise per (t, p).
+  Rng rng(seed);
+  ws->member_of.resize(static_cast<size_t>(horizon) * particles);
+  ws->noise.resize(static_cast<size_t>(horizon) * particles * sd);
+  for (int t = 0; t < horizon; ++t) {
+    for (int p = 0; p < particles; ++p) {
+      ws->member_of[t * particles + p] =
+          options.propagation == Propagation::kTsInf
+              ? p % nb
+              : static_cast<int>(rng.UniformInt(static_cast<uint64_t>(nb)));
+      for (int k = 0; k < sd; ++k) {
+        ws->noise[(static_cast<size_t>(t) * particles + p) * sd + k] =
+            static_cast<float>(rng.Normal());
+      }
+    }
+  }
+
+  ws->states.resize(static_cast<size_t>(rows) * sd);
+  for (int r = 0; r < rows; ++r) std::copy(initial_state, initial_state + sd, &ws->states[r * sd]);
+  ws->actions.resize(static_cast<size_t>(rows) * ad);
+  ws->reward.resize(rows);
+  ws->information.assign(rows, 0.0f);
+  std::vector<double> total(candidates, 0.0);
+  if (trace != nullptr) {
+    trace->state_mean.setZero(horizon, sd);
+    trace->state_std.setZero(horizon, sd);
+    trace->expected_reward.setZero(horizon);
+    trace->information_gain.setZero(horizon);
+  }
+
+  MemberPredictions& pred = ws->predictions;
+  const double w_r = objective.reward_weight, w_i = objective.information_weight;
+  double discount = 1.0;
+  for (int t = 0; t < horizon; ++t) {
+    for (int n = 0; n < candidates; ++n) {
+      const float* a = sequences + n * seq_stride + static_cast<std::ptrdiff_t>(t) * ad;
+      for (int p = 0; p < particles; ++p) {
+        std::copy(a, a + ad, &ws->actions[(static_cast<size_t>(n) * particles + p) * ad]);
+      }
+    }
+    auto start = Clock::now();
+    model.Evaluate(ws->states.data(), ws->actions.data(), rows, &pred);
+    if (stats != nullptr) {
+      stats->model_seconds += SecondsSince(start);
+      stats->model_flops += model.FlopsPerMemberRow() * rows * nb;
+    }
+    if (want_information) {
+      start = Clock::now();
+      explore::GaussianSet<float> set;
+      set.members = nb;
+      set.rows = rows;
+      set.dim = sd;
+      set.mean = pred.mean.data();
+      set.log_var = pred.log_var.data();
+      set.member_stride = static_cast<std::ptrdiff_t>(rows) * od;
+      set.row_stride = od;
+      explore::Information(objective.estimator, set, ws->information.data(),
+                           objective.monte_carlo_samples, seed + 7919u * (t + 1));
+      if (stats != nullptr) stats->information_seconds += SecondsSince(start);
+    }
+    for (int r = 0; r < rows; ++r) {
+      const int p = r % particles;
+      const int m = ws->member_of[t * particles + p];
+      const std::ptrdiff_t at = (static_cast<std::ptrdiff_t>(m) * rows + r) * od;
+      const float* mu = pred.mean.data() + at;
+      const float* lv = pred.log_var.data() + at;
+      const float* eps = &ws->noise[(static_cast<size_t>(t) * particles + p) * sd];
+      float* s = &ws->states[static_cast<size_t>(r) * sd];
+      for (int k = 0; k < sd; ++k) {
+        s[k] += (mu[k] + std::exp(0.5f * lv[k]) * eps[k]) * pred.scale[k] + pred.offset[k];
+      }
+      if (learned_reward) ws->reward[r] = mu[sd] * pred.scale[sd] + pred.offset[sd];
+    }
+    if (!learned_reward) {
+      objective.known_reward.Evaluate(ws->states.data(), sd, ws->actions.data(), ad, rows, sd,
+                                      ad, ws->reward.data());
+    }
+    for (int n = 0; n < candidates; ++n) {
+      double step = 0.0;
+      for (int p = 0; p < particles; ++p) {
+        const int r = n * particles + p;
+        step += w_r * ws->reward[r] + (w_i != 0.0 ? w_i * ws->information[r] : 0.0);
+      }
+      total[n] += discount * step / particles;
+    }
+    if (trace != nullptr) {
+      for (int k = 0; k < sd; ++k) {
+        double sum = 0.0, sum_sq = 0.0;
+        for (int p = 0; p < particles; ++p) {
+          const double v = ws->states[static_cast<size_t>(p) * sd + k];
+          sum += v;
+          sum_sq += v * v;
+        }
+        const double mean = sum / particles;
+        trace->state_mean(t, k) = static_cast<float>(mean);
+        trace->state_std(t, k) =
+            static_cast<float>(std::sqrt(std::max(0.0, sum_sq / particles - mean * mean)));
+      }
+      double reward = 0.0, information = 0.0;
+      for (int p = 0; p < particles; ++p) {
+        reward += ws->reward[p];
+        information += ws->information[p];
+      }
+      trace->expected_reward[t] = static_cast<float>(reward / particles);
+      trace->information_gain[t] = static_cast<float>(information / particles);
+    }
+    discount *= objective.discount;
+  }
+  for (int n = 0; n < candidates; ++n) scores[n] = static_cast<float>(total[n]);
+}
+
+}  // namespace foray::plan

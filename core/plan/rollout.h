@@ -1,0 +1,147 @@
+// Rollouts: P particles per candidate action sequence propagated through a model of B members
+// (Chua et al. 2018, "Deep Reinforcement Learning in a Handful of Trials using Probabilistic
+// Dynamics Models", NeurIPS). At every step every member is evaluated at every particle in one
+// batched call; the particle's next state is sampled from its own member (TS-inf: member
+// p mod B for the whole horizon; TS1: a fresh uniform draw per step), and the information
+// gain of the step is computed from all B members at the particle's state. A candidate scores
+//   J = (1/P) sum_p sum_t gamma^t ( w_r r_{p,t} + w_i I_{p,t} ),
+// with r_{p,t} the expected reward under the particle's member (or the known reward at the
+// sampled next state).
+//
+// Models are const and safe from several threads; a RolloutWorkspace belongs to one thread.
+#ifndef FORAY_CORE_PLAN_ROLLOUT_H_
+#define FORAY_CORE_PLAN_ROLLOUT_H_
+
+#include <cstdint>
+#include <memory>
+#include <vector>
+
+#include "Eigen/Core"
+#include "absl/status/status.h"
+#include "core/explore/objective.h"
+#include "core/model/ensemble.h"
+#include "core/model/inference.h"
+
+namespace foray::plan {
+
+enum class Propagation { kTsInf = 1, kTs1 = 2 };
+
+// Every member's Gaussian over [state delta, reward] at a batch of rows, in "model units"
+// related to robot units by robot = model * scale + offset per output dimension (variances by
+// scale^2). Information gain is computed in model units (the estimators are invariant to one
+// affine change applied to all members).
+struct MemberPredictions {
+  int members = 0;
+  int rows = 0;
+  int output_dim = 0;  // state_dim + 1
+  // (members, rows, output_dim) each, index (b * rows + r) * output_dim + k.
+  std::vector<float> mean;
+  std::vector<float> log_var;
+  Eigen::VectorXf scale;   // (output_dim)
+  Eigen::VectorXf offset;  // (output_dim)
+  // Scratch a model may use between calls.
+  std::vector<float> input;
+  model::InferenceEnsemble::Workspace forward;
+};
+
+// What a rollout needs from a dynamics-and-reward model.
+class RolloutModel {
+ public:
+  virtual ~RolloutModel() = default;
+  virtual int members() const = 0;
+  virtual int state_dim() const = 0;
+  virtual int action_dim() const = 0;
+  // Multiply-adds of one member at one row (for the speed report); 0 when unknown.
+  virtual double FlopsPerMemberRow() const { return 0.0; }
+  // Every member at `rows` rows. states: (rows, state_dim), actions: (rows, action_dim),
+  // row-major, robot units. Fills *out (resizing its buffers).
+  virtual void Evaluate(const float* states, const float* actions, int rows,
+                        MemberPredictions* out) const = 0;
+};
+
+// The learned ensemble through its inference copy. Built once per published model version.
+// Not copyable (holds the inference copy by value; share it with std::shared_ptr<const>).
+class EnsembleRolloutModel final : public RolloutModel {
+ public:
+  explicit EnsembleRolloutModel(const model::Ensemble& ensemble);
+  EnsembleRolloutModel(const EnsembleRolloutModel&) = delete;
+  EnsembleRolloutModel& operator=(const EnsembleRolloutModel&) = delete;
+
+  int members() const override { return fast_.size(); }
+  int state_dim() const override { return state_dim_; }
+  int action_dim() const override { return action_dim_; }
+  double FlopsPerMemberRow() const override { return flops_per_member_row_; }
+  void Evaluate(const float* states, const float* actions, int rows,
+                MemberPredictions* out) const override;
+
+ private:
+  const int state_dim_;
+  const int action_dim_;
+  const model::InferenceEnsemble fast_;
+  Eigen::VectorXf input_mean_, input_inv_std_;  // (input_dim)
+  Eigen::VectorXf output_mean_, output_std_;    // (output_dim)
+  double flops_per_member_row_ = 0.0;
+};
+
+// Known linear dynamics s' = A s + B a + c with zero noise (a one-member "ensemble" whose
+// variance is negligible) and reward 0: for robots with a known model and for checking the
+// planner against optimal control. A: (state_dim, state_dim), B: (state_dim, action_dim),
+// c: (state_dim).
+class LinearRolloutModel final : public RolloutModel {
+ public:
+  LinearRolloutModel(Eigen::MatrixXf a, Eigen::MatrixXf b, Eigen::VectorXf c);
+
+  int members() const override { return 1; }
+  int state_dim() const override { return static_cast<int>(a_.rows()); }
+  int action_dim() const override { return static_cast<int>(b_.cols()); }
+  void Evaluate(const float* states, const float* actions, int rows,
+                MemberPredictions* out) const override;
+
+ private:
+  const Eigen::MatrixXf a_, b_;
+  const Eigen::VectorXf c_;
+};
+
+struct RolloutOptions {
+  int horizon = 20;    // steps, >= 1
+  int particles = 5;   // per candidate, >= 1
+  Propagation propagation = Propagation::kTsInf;
+  absl::Status Validate() const;
+};
+
+// Per-step detail of a rollout, for the plan result: (horizon, state_dim) means and standard
+// deviations of the particles' states after each step, and per-step particle means of the
+// expected reward and information gain (undiscounted).
+struct RolloutTrace {
+  Eigen::MatrixXf state_mean, state_std;
+  Eigen::VectorXf expected_reward, information_gain;
+};
+
+// Time spent by a Score call, for the speed report.
+struct RolloutStats {
+  double model_seconds = 0.0;
+  double model_flops = 0.0;
+  double information_seconds = 0.0;
+};
+
+// Reused buffers of one thread's rollouts.
+struct RolloutWorkspace {
+  MemberPredictions predictions;
+  std::vector<float> states, actions, reward, information, noise;
+  std::vector<int> member_of;
+};
+
+// Scores `candidates` action sequences. sequences: (candidates, horizon * action_dim)
+// row-major, step t of candidate n at [n * horizon * action_dim + t * action_dim]; robot units.
+// initial_state: (state_dim). Random draws (member choices and sampling noise) depend only on
+// `seed` and the particle, not the candidate (common random numbers, so candidates are
+// compared on the same draws). scores: (candidates). trace and stats may be null.
+void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& objective,
+                    const RolloutOptions& options, const float* initial_state,
+                    const float* sequences, int candidates, uint64_t seed, float* scores,
+                    RolloutWorkspace* workspace, RolloutTrace* trace = nullptr,
+                    RolloutStats* stats = nullptr);
+
+}  // namespace foray::plan
+
+#endif  // FORAY_CORE_PLAN_ROLLOUT_H_
