@@ -117,6 +117,16 @@ void SequenceLimits::Project(float* sequence, int horizon) const {
       }
       // NaN goes to the lower bound rather than through.
       a[j] = a[j] >= lo ? std::min(a[j], hi) : lo;
+      if (rate && max_step[j] > 0) {
+        const float* before = t == 0 ? (previous.size() == d ? previous.data() : nullptr)
+                                     : a - d;
+        // before +- max_step was rounded to float: step back toward `before` until the exact
+        // difference is within the limit (at most a few ulps).
+        while (before != nullptr &&
+               std::abs(static_cast<double>(a[j]) - before[j]) > static_cast<double>(max_step[j])) {
+          a[j] = std::nextafter(a[j], before[j]);
+        }
+      }
     }
   }
 }
@@ -183,7 +193,11 @@ absl::StatusOr<CemResult> MaximizeCem(const CemOptions& options, const SequenceL
     mean = Shifted(warm_start->mean, shift);
     for (const RowMatrixXf& e : warm_start->elites) {
       if (static_cast<int>(kept.size()) >= keep) break;
-      if (e.rows() == h && e.cols() == d) kept.push_back(Shifted(e, shift));
+      if (e.rows() == h && e.cols() == d) {
+        // The limits may have changed since (the previous action always does): project.
+        kept.push_back(Shifted(e, shift));
+        limits.Project(kept.back().data(), h);
+      }
     }
   } else {
     mean.rowwise() = centre;

@@ -1,0 +1,266 @@
+// Particle rollouts: propagation (TS-inf and TS1 of Chua et al. 2018, NeurIPS), sampling from
+// the particle's own member, the discounted objective, the information term, and the learned
+// ensemble's robot-unit predictions.
+#include "core/plan/rollout.h"
+
+#include <cmath>
+#include <vector>
+
+#include "core/model/ensemble.h"
+#include "core/plan/cem.h"
+#include "core/util/random.h"
+#include "gtest/gtest.h"
+#include "tests/core/plan/test_models.h"
+
+namespace foray::plan {
+namespace {
+
+using testing::OffsetMembersModel;
+
+explore::ObjectiveOptions RewardOnly() {
+  explore::ObjectiveOptions o;
+  o.reward_weight = 1.0;
+  o.information_weight = 0.0;
+  return o;
+}
+
+TEST(RolloutTest, LinearModelMatchesHandSimulation) {
+  // Reference: the double integrator x' = A x + B u simulated step by step in double precision,
+  // scored with the quadratic reward r = -(x'-g)^T Q (x'-g) - c u^2 of the objective's definition.
+  const double dt = 0.1;
+  Eigen::MatrixXf a(2, 2), b(2, 1);
+  a << 1, dt, 0, 1;
+  b << 0.5 * dt * dt, dt;
+  const LinearRolloutModel model(a, b, Eigen::VectorXf::Zero(2));
+  explore::ObjectiveOptions objective = RewardOnly();
+  objective.discount = 0.95;
+  objective.known_reward.kind = explore::KnownReward::Kind::kQuadratic;
+  objective.known_reward.target = {0.5, 0.0};
+  objective.known_reward.state_weight = {2.0, 0.3};
+  objective.known_reward.action_weight = {0.05};
+  ASSERT_TRUE(objective.Validate(2, 1).ok());
+  RolloutOptions options;
+  options.horizon = 7;
+  options.particles = 3;
+
+  const int candidates = 4;
+  Rng rng(3);
+  std::vector<float> sequences(candidates * options.horizon);
+  for (float& u : sequences) u = static_cast<float>(4.0 * rng.Uniform() - 2.0);
+  const float initial[2] = {-1.0f, 0.3f};
+  std::vector<float> scores(candidates);
+  RolloutWorkspace ws;
+  ScoreSequences(model, objective, options, initial, sequences.data(), candidates, 9,
+                 scores.data(), &ws);
+
+  for (int n = 0; n < candidates; ++n) {
+    double x = initial[0], v = initial[1], total = 0.0, discount = 1.0;
+    for (int t = 0; t < options.horizon; ++t) {
+      const double u = sequences[n * options.horizon + t];
+      const double x2 = x + dt * v + 0.5 * dt * dt * u;
+      const double v2 = v + dt * u;
+      x = x2;
+      v = v2;
+      const double r = -2.0 * (x - 0.5) * (x - 0.5) - 0.3 * v * v - 0.05 * u * u;
+      total += discount * r;
+      discount *= 0.95;
+    }
+    EXPECT_NEAR(scores[n], total, 1e-4 * std::max(1.0, std::abs(total))) << "candidate " << n;
+  }
+}
+
+TEST(RolloutTest, TsInfKeepsEachParticleOnItsMember) {
+  // Member b moves the state by offsets[b] per step with no noise and predicts reward b. Under
+  // TS-inf particle p stays on member p mod B, so after t+1 steps the particles sit at
+  // (t+1) * {0, 10, 20, 30, 40}: mean (t+1) * 20, population std (t+1) * sqrt(200).
+  const OffsetMembersModel model(1, 1, {0, 10, 20, 30, 40}, 1e-12f);
+  RolloutOptions options;
+  options.horizon = 3;
+  options.particles = 5;
+  options.propagation = Propagation::kTsInf;
+  const float initial = 0.0f;
+  std::vector<float> sequence(options.horizon, 0.0f);
+  float score = 0.0f;
+  RolloutWorkspace ws;
+  RolloutTrace trace;
+  ScoreSequences(model, RewardOnly(), options, &initial, sequence.data(), 1, 4, &score, &ws,
+                 &trace);
+  for (int t = 0; t < options.horizon; ++t) {
+    EXPECT_NEAR(trace.state_mean(t, 0), (t + 1) * 20.0, 1e-3);
+    EXPECT_NEAR(trace.state_std(t, 0), (t + 1) * std::sqrt(200.0), 1e-3);
+    EXPECT_NEAR(trace.expected_reward[t], 2.0, 1e-6);  // mean of member indices 0..4
+  }
+  EXPECT_NEAR(score, 3 * 2.0, 1e-5);
+}
+
+TEST(RolloutTest, Ts1DrawsAFreshMemberEveryStep) {
+  // Offsets {0, 1, 2, 3, 4}, no noise, two steps. A uniform member index has variance 2. TS1
+  // draws the member independently per step: Var(m_0 + m_1) = 2 + 2 = 4 (std 2). TS-inf keeps
+  // it: Var(2 m) = 8 (std 2.83). 20,000 particles: the std's standard error is about 0.02.
+  const OffsetMembersModel model(1, 1, {0, 1, 2, 3, 4}, 1e-12f);
+  RolloutOptions options;
+  options.horizon = 2;
+  options.particles = 20000;
+  options.propagation = Propagation::kTs1;
+  const float initial = 0.0f;
+  const std::vector<float> sequence(options.horizon, 0.0f);
+  float score = 0.0f;
+  RolloutWorkspace ws;
+  RolloutTrace trace;
+  ScoreSequences(model, RewardOnly(), options, &initial, sequence.data(), 1, 21, &score, &ws,
+                 &trace);
+  EXPECT_NEAR(trace.state_mean(1, 0), 4.0, 0.05);
+  EXPECT_NEAR(trace.state_std(1, 0), 2.0, 0.08);
+
+  options.propagation = Propagation::kTsInf;
+  ScoreSequences(model, RewardOnly(), options, &initial, sequence.data(), 1, 21, &score, &ws,
+                 &trace);
+  EXPECT_NEAR(trace.state_std(1, 0), std::sqrt(8.0), 0.01);
+}
+
+TEST(RolloutTest, NextStateIsSampledFromTheMembersGaussian) {
+  // One member, delta mean 0.3, variance 0.25: after one step the particles are N(0.3, 0.5^2).
+  // 40,000 draws: standard error of the mean 0.0025, of the std about 0.0018 (textbook sampling
+  // distributions of the mean and standard deviation).
+  const OffsetMembersModel model(1, 1, {0.3f}, 0.25f);
+  RolloutOptions options;
+  options.horizon = 1;
+  options.particles = 40000;
+  const float initial = 0.0f, action = 0.0f;
+  float score = 0.0f;
+  RolloutWorkspace ws;
+  RolloutTrace trace;
+  ScoreSequences(model, RewardOnly(), options, &initial, &action, 1, 8, &score, &ws, &trace);
+  EXPECT_NEAR(trace.state_mean(0, 0), 0.3, 0.012);
+  EXPECT_NEAR(trace.state_std(0, 0), 0.5, 0.008);
+}
+
+TEST(RolloutTest, CandidatesShareRandomDraws) {
+  // Common random numbers: equal sequences get equal scores, and a candidate's score does not
+  // depend on its position in the batch.
+  const OffsetMembersModel model(2, 1, {-0.2f, 0.0f, 0.1f, 0.4f}, 0.3f);
+  RolloutOptions options;
+  options.horizon = 5;
+  options.particles = 4;
+  options.propagation = Propagation::kTs1;
+  explore::ObjectiveOptions objective;  // reward and information
+  const float initial[2] = {0.1f, -0.4f};
+  Rng rng(5);
+  std::vector<float> seqs(3 * options.horizon);
+  for (float& u : seqs) u = static_cast<float>(rng.Normal());
+  std::vector<float> batch(seqs);
+  batch.insert(batch.end(), seqs.begin(), seqs.begin() + options.horizon);  // copy of 0
+  std::vector<float> scores(4);
+  RolloutWorkspace ws;
+  ScoreSequences(model, objective, options, initial, batch.data(), 4, 77, scores.data(), &ws);
+  EXPECT_EQ(scores[0], scores[3]);
+
+  std::vector<float> reversed;
+  for (int n = 2; n >= 0; --n) {
+    reversed.insert(reversed.end(), seqs.begin() + n * options.horizon,
+                    seqs.begin() + (n + 1) * options.horizon);
+  }
+  std::vector<float> reversed_scores(3);
+  ScoreSequences(model, objective, options, initial, reversed.data(), 3, 77,
+                 reversed_scores.data(), &ws);
+  for (int n = 0; n < 3; ++n) EXPECT_EQ(reversed_scores[2 - n], scores[n]) << n;
+}
+
+TEST(RolloutTest, DiscountGivesTheGeometricSeries) {
+  // Reward 1 at every step (a region that holds every state): J = sum_{t<H} gamma^t
+  // = (1 - gamma^H) / (1 - gamma), the geometric series.
+  const OffsetMembersModel model(1, 1, {0.0f}, 0.01f);
+  explore::ObjectiveOptions objective = RewardOnly();
+  objective.discount = 0.9;
+  objective.known_reward.kind = explore::KnownReward::Kind::kRegion;
+  objective.known_reward.indices = {0};
+  objective.known_reward.lower = {-1e30};
+  objective.known_reward.upper = {1e30};
+  RolloutOptions options;
+  options.horizon = 10;
+  options.particles = 3;
+  const float initial = 0.0f;
+  const std::vector<float> sequence(options.horizon, 0.5f);
+  float score = 0.0f;
+  RolloutWorkspace ws;
+  ScoreSequences(model, objective, options, &initial, sequence.data(), 1, 1, &score, &ws);
+  EXPECT_NEAR(score, (1.0 - std::pow(0.9, 10)) / (1.0 - 0.9), 1e-5);
+}
+
+TEST(RolloutTest, InformationTermIsThePairwiseKlBoundAtEveryStep) {
+  // Two members whose delta means differ by 2 with unit variances, everywhere. KL between them
+  // is 1/2 * (mu_1 - mu_2)^2 / var = 2 both ways, so (Kolchinsky & Tracey 2017)
+  // I_KL = -(1/2) sum_i ln((1 + e^-2) / 2) = ln 2 - ln(1 + e^-2) per step.
+  const OffsetMembersModel model(1, 1, {-1.0f, 1.0f}, 1.0f);
+  explore::ObjectiveOptions objective;
+  objective.reward_weight = 0.0;
+  objective.information_weight = 1.0;
+  objective.estimator = explore::Estimator::kPairwiseKl;
+  RolloutOptions options;
+  options.horizon = 4;
+  options.particles = 6;
+  const float initial = 0.0f;
+  const std::vector<float> sequence(options.horizon, 0.0f);
+  float score = 0.0f;
+  RolloutWorkspace ws;
+  RolloutTrace trace;
+  ScoreSequences(model, objective, options, &initial, sequence.data(), 1, 3, &score, &ws, &trace);
+  const double per_step = std::log(2.0) - std::log(1.0 + std::exp(-2.0));
+  EXPECT_NEAR(score, 4 * per_step, 1e-5);
+  for (int t = 0; t < 4; ++t) EXPECT_NEAR(trace.information_gain[t], per_step, 1e-6);
+}
+
+TEST(RolloutTest, EnsembleModelGivesPredictInRobotUnits) {
+  // The rollout model's (mean * scale + offset, exp(log_var) * scale^2) must equal
+  // Ensemble::Predict, the reference forward in robot units, for every member.
+  model::EnsembleOptions eo;
+  eo.hidden_widths = {32, 32};
+  auto ensemble = model::Ensemble::Create(3, 2, eo, 12);
+  ASSERT_TRUE(ensemble.ok());
+  Eigen::VectorXf in_mean(5), in_std(5), out_mean(4), out_std(4);
+  in_mean << 0.5, -1, 2, 0.1, 0;
+  in_std << 2, 0.5, 1, 3, 0.2;
+  out_mean << 0.01, -0.02, 0.3, -1.5;
+  out_std << 0.1, 0.2, 0.05, 2.0;
+  ensemble->mutable_input_normalizer().mutable_mean() = in_mean;
+  ensemble->mutable_input_normalizer().mutable_std() = in_std;
+  ensemble->mutable_output_normalizer().mutable_mean() = out_mean;
+  ensemble->mutable_output_normalizer().mutable_std() = out_std;
+
+  const int rows = 37;
+  Eigen::MatrixXf states = Eigen::MatrixXf::Random(rows, 3) * 2.0f;
+  Eigen::MatrixXf actions = Eigen::MatrixXf::Random(rows, 2);
+  std::vector<Eigen::MatrixXf> means, variances;
+  ASSERT_TRUE(ensemble->Predict(states, actions, &means, &variances).ok());
+
+  const EnsembleRolloutModel rollout(*ensemble);
+  ASSERT_EQ(rollout.members(), 5);
+  RowMatrixXf s = states, a = actions;
+  MemberPredictions pred;
+  rollout.Evaluate(s.data(), a.data(), rows, &pred);
+  for (int b = 0; b < 5; ++b) {
+    for (int r = 0; r < rows; ++r) {
+      for (int k = 0; k < 4; ++k) {
+        const size_t at = (static_cast<size_t>(b) * rows + r) * 4 + k;
+        const float mean = pred.mean[at] * pred.scale[k] + pred.offset[k];
+        const float var = std::exp(pred.log_var[at]) * pred.scale[k] * pred.scale[k];
+        EXPECT_NEAR(mean, means[b](r, k), 1e-5f * (1.0f + std::abs(means[b](r, k))));
+        EXPECT_NEAR(var, variances[b](r, k), 1e-4f * variances[b](r, k));
+      }
+    }
+  }
+  EXPECT_GT(rollout.FlopsPerMemberRow(), 0.0);
+}
+
+TEST(RolloutTest, OptionsValidateNamesTheField) {
+  RolloutOptions options;
+  options.horizon = 0;
+  EXPECT_EQ(options.Validate().code(), absl::StatusCode::kInvalidArgument);
+  EXPECT_NE(options.Validate().message().find("horizon is 0"), std::string::npos);
+  options.horizon = 5;
+  options.particles = -2;
+  EXPECT_NE(options.Validate().message().find("particles is -2"), std::string::npos);
+}
+
+}  // namespace
+}  // namespace foray::plan
