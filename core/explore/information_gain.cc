@@ -4,6 +4,7 @@
 #include <cmath>
 #include <vector>
 
+#include "Eigen/Core"
 #include "absl/strings/str_format.h"
 #include "core/util/random.h"
 
@@ -13,47 +14,71 @@ namespace {
 constexpr double kLog2Pi = 1.8378770664093454836;  // ln(2 pi)
 constexpr double kLog4Pi = 2.5310242469692907930;  // ln(4 pi)
 
-// Gathers row r of every member into contiguous (B, dim) blocks: mean, log-variance, variance
-// and inverse variance.
-template <typename Scalar>
-struct RowGather {
-  explicit RowGather(const GaussianSet<Scalar>& set)
-      : set(set),
-        mu(static_cast<size_t>(set.members) * set.dim),
-        lv(mu.size()),
-        var(mu.size()),
-        ivar(mu.size()) {}
+// Rows are processed in blocks of kBlock, gathered member by member and dimension by dimension
+// into contiguous arrays ("structure of arrays"), so that every formula below runs over a block
+// of rows at once in SIMD (Eigen's vectorised exp and log).
+constexpr int kBlock = 256;
 
-  void Load(int r) {
-    const int d = set.dim;
+template <typename Scalar>
+using Array = Eigen::Array<Scalar, Eigen::Dynamic, 1>;
+
+template <typename Scalar>
+struct BlockGather {
+  explicit BlockGather(const GaussianSet<Scalar>& set)
+      : set(set), slots(static_cast<size_t>(set.members) * set.dim) {
+    for (Slot& s : slots) {
+      s.mu.resize(kBlock);
+      s.lv.resize(kBlock);
+      s.var.resize(kBlock);
+      s.ivar.resize(kBlock);
+    }
+  }
+
+  // Loads rows [first, first + n), n <= kBlock.
+  void Load(int first, int n) {
+    rows = n;
     for (int b = 0; b < set.members; ++b) {
-      const Scalar* m = set.mean + b * set.member_stride + r * set.row_stride;
-      const Scalar* l = set.log_var + b * set.member_stride + r * set.row_stride;
-      for (int k = 0; k < d; ++k) {
-        mu[b * d + k] = m[k];
-        lv[b * d + k] = l[k];
-        var[b * d + k] = std::exp(l[k]);
-        ivar[b * d + k] = std::exp(-l[k]);
+      const Scalar* m = set.mean + b * set.member_stride + first * set.row_stride;
+      const Scalar* l = set.log_var + b * set.member_stride + first * set.row_stride;
+      for (int k = 0; k < set.dim; ++k) {
+        Slot& s = at(b, k);
+        for (int r = 0; r < n; ++r) {
+          s.mu[r] = m[r * set.row_stride + k];
+          s.lv[r] = l[r * set.row_stride + k];
+        }
+        s.var.head(n) = s.lv.head(n).exp();
+        s.ivar.head(n) = (-s.lv.head(n)).exp();
       }
     }
   }
 
+  struct Slot {
+    Array<Scalar> mu, lv, var, ivar;  // (kBlock)
+  };
+  Slot& at(int b, int k) { return slots[static_cast<size_t>(b) * set.dim + k]; }
+
   const GaussianSet<Scalar>& set;
-  std::vector<Scalar> mu, lv, var, ivar;
+  std::vector<Slot> slots;
+  int rows = 0;
 };
 
-// I_D from the matrix of pairwise distances (B, B), row-major: ln B - (1/B) sum_i ln sum_j
-// exp(-D_ij). D_ii = 0 keeps every inner sum in [1, B], so no rescaling is needed.
-template <typename Scalar>
-Scalar PairwiseEstimate(const std::vector<Scalar>& distance, int members) {
-  double total = 0.0;
+// I_D over a block from the pairwise distances: ln B - (1/B) sum_i ln sum_j exp(-D_ij), with
+// D_ii = 0 keeping every inner sum in [1, B] (no rescaling needed). `distance(i, j, out)` writes
+// D_ij for the block's rows into out (i != j).
+template <typename Scalar, typename Distance>
+void PairwiseBlock(int members, int rows, Distance&& distance, Scalar* out) {
+  Array<Scalar> d(rows), inner(rows), total = Array<Scalar>::Zero(rows);
   for (int i = 0; i < members; ++i) {
-    double inner = 0.0;
-    for (int j = 0; j < members; ++j) inner += std::exp(-static_cast<double>(distance[i * members + j]));
-    total += std::log(inner);
+    inner.setOnes();
+    for (int j = 0; j < members; ++j) {
+      if (j == i) continue;
+      distance(i, j, &d);
+      inner += (-d).exp();
+    }
+    total += inner.log();
   }
-  const double estimate = std::log(static_cast<double>(members)) - total / members;
-  return static_cast<Scalar>(std::max(0.0, estimate));
+  const Scalar log_b = static_cast<Scalar>(std::log(static_cast<double>(members)));
+  Eigen::Map<Array<Scalar>>(out, rows) = (log_b - total / Scalar(members)).max(Scalar(0));
 }
 
 }  // namespace
@@ -102,28 +127,23 @@ void PairwiseKlInformation(const GaussianSet<Scalar>& set, Scalar* out) {
     std::fill(out, out + set.rows, Scalar(0));
     return;
   }
-  RowGather<Scalar> g(set);
-  std::vector<Scalar> distance(static_cast<size_t>(nb) * nb, Scalar(0));
-  for (int r = 0; r < set.rows; ++r) {
-    g.Load(r);
-    for (int i = 0; i < nb; ++i) {
-      const Scalar* mi = &g.mu[i * d];
-      const Scalar* li = &g.lv[i * d];
-      const Scalar* vi = &g.var[i * d];
-      for (int j = 0; j < nb; ++j) {
-        if (i == j) continue;
-        const Scalar* mj = &g.mu[j * d];
-        const Scalar* lj = &g.lv[j * d];
-        const Scalar* ivj = &g.ivar[j * d];
-        Scalar sum = 0;
-        for (int k = 0; k < d; ++k) {
-          const Scalar diff = mi[k] - mj[k];
-          sum += lj[k] - li[k] + (vi[k] + diff * diff) * ivj[k] - Scalar(1);
-        }
-        distance[i * nb + j] = Scalar(0.5) * sum;
+  BlockGather<Scalar> g(set);
+  Array<Scalar> diff(kBlock);
+  for (int first = 0; first < set.rows; first += kBlock) {
+    const int n = std::min(kBlock, set.rows - first);
+    g.Load(first, n);
+    auto distance = [&](int i, int j, Array<Scalar>* dist) {
+      dist->setZero();
+      for (int k = 0; k < d; ++k) {
+        auto& si = g.at(i, k);
+        auto& sj = g.at(j, k);
+        diff.head(n) = si.mu.head(n) - sj.mu.head(n);
+        *dist += sj.lv.head(n) - si.lv.head(n) +
+                 (si.var.head(n) + diff.head(n).square()) * sj.ivar.head(n) - Scalar(1);
       }
-    }
-    out[r] = PairwiseEstimate(distance, nb);
+      *dist *= Scalar(0.5);
+    };
+    PairwiseBlock<Scalar>(nb, n, distance, out + first);
   }
 }
 
@@ -134,24 +154,26 @@ void PairwiseBhattacharyyaInformation(const GaussianSet<Scalar>& set, Scalar* ou
     std::fill(out, out + set.rows, Scalar(0));
     return;
   }
-  RowGather<Scalar> g(set);
-  std::vector<Scalar> distance(static_cast<size_t>(nb) * nb, Scalar(0));
-  for (int r = 0; r < set.rows; ++r) {
-    g.Load(r);
-    for (int i = 0; i < nb; ++i) {
-      for (int j = i + 1; j < nb; ++j) {
-        Scalar sum = 0;
-        for (int k = 0; k < d; ++k) {
-          const Scalar diff = g.mu[i * d + k] - g.mu[j * d + k];
-          const Scalar s = g.var[i * d + k] + g.var[j * d + k];
-          // 1/2 ln(s / (2 sqrt(v_i v_j))) = 1/2 ln(s/2) - 1/4 (lv_i + lv_j)
-          sum += diff * diff / (Scalar(4) * s) + Scalar(0.5) * std::log(Scalar(0.5) * s) -
-                 Scalar(0.25) * (g.lv[i * d + k] + g.lv[j * d + k]);
-        }
-        distance[i * nb + j] = distance[j * nb + i] = sum;
+  BlockGather<Scalar> g(set);
+  Array<Scalar> diff(kBlock), sum(kBlock);
+  for (int first = 0; first < set.rows; first += kBlock) {
+    const int n = std::min(kBlock, set.rows - first);
+    g.Load(first, n);
+    // Symmetric: BD(i, j) = BD(j, i); computed both ways, which costs little at small B.
+    auto distance = [&](int i, int j, Array<Scalar>* dist) {
+      dist->setZero();
+      for (int k = 0; k < d; ++k) {
+        auto& si = g.at(i, k);
+        auto& sj = g.at(j, k);
+        diff.head(n) = si.mu.head(n) - sj.mu.head(n);
+        sum.head(n) = si.var.head(n) + sj.var.head(n);
+        // 1/2 ln(s / (2 sqrt(v_i v_j))) = 1/2 ln(s/2) - 1/4 (lv_i + lv_j)
+        *dist += diff.head(n).square() / (Scalar(4) * sum.head(n)) +
+                 Scalar(0.5) * (Scalar(0.5) * sum.head(n)).log() -
+                 Scalar(0.25) * (si.lv.head(n) + sj.lv.head(n));
       }
-    }
-    out[r] = PairwiseEstimate(distance, nb);
+    };
+    PairwiseBlock<Scalar>(nb, n, distance, out + first);
   }
 }
 
@@ -162,33 +184,48 @@ void JensenRenyi2Information(const GaussianSet<Scalar>& set, Scalar* out) {
     std::fill(out, out + set.rows, Scalar(0));
     return;
   }
-  RowGather<Scalar> g(set);
-  std::vector<double> log_overlap(static_cast<size_t>(nb) * nb);
-  for (int r = 0; r < set.rows; ++r) {
-    g.Load(r);
-    // ln N(mu_i; mu_j, diag(var_i + var_j)), symmetric in i and j.
-    double mean_component_h2 = 0.0;
+  BlockGather<Scalar> g(set);
+  // ln N(mu_i; mu_j, diag(var_i + var_j)) for each unordered pair i <= j, (pairs, kBlock).
+  const int pairs = nb * (nb + 1) / 2;
+  std::vector<Array<Scalar>> log_overlap(pairs, Array<Scalar>(kBlock));
+  Array<Scalar> sum(kBlock), quad(kBlock), log_det(kBlock), top(kBlock), acc(kBlock),
+      component(kBlock);
+  for (int first = 0; first < set.rows; first += kBlock) {
+    const int n = std::min(kBlock, set.rows - first);
+    g.Load(first, n);
+    component.head(n).setZero();
+    int pair = 0;
     for (int i = 0; i < nb; ++i) {
-      double sum_lv = 0.0;
-      for (int k = 0; k < d; ++k) sum_lv += g.lv[i * d + k];
-      mean_component_h2 += 0.5 * (d * kLog4Pi + sum_lv);
-      for (int j = i; j < nb; ++j) {
-        double quad = 0.0, log_det = 0.0;
+      for (int k = 0; k < d; ++k) component.head(n) += g.at(i, k).lv.head(n);
+      for (int j = i; j < nb; ++j, ++pair) {
+        quad.head(n).setZero();
+        log_det.head(n).setZero();
         for (int k = 0; k < d; ++k) {
-          const double diff = static_cast<double>(g.mu[i * d + k]) - g.mu[j * d + k];
-          const double s = static_cast<double>(g.var[i * d + k]) + g.var[j * d + k];
-          quad += diff * diff / s;
-          log_det += std::log(s);
+          auto& si = g.at(i, k);
+          auto& sj = g.at(j, k);
+          sum.head(n) = si.var.head(n) + sj.var.head(n);
+          quad.head(n) += (si.mu.head(n) - sj.mu.head(n)).square() / sum.head(n);
+          log_det.head(n) += sum.head(n).log();
         }
-        log_overlap[i * nb + j] = log_overlap[j * nb + i] = -0.5 * (d * kLog2Pi + log_det + quad);
+        log_overlap[pair].head(n) =
+            Scalar(-0.5) * (Scalar(d * kLog2Pi) + log_det.head(n) + quad.head(n));
       }
     }
-    mean_component_h2 /= nb;
-    const double top = *std::max_element(log_overlap.begin(), log_overlap.end());
-    double sum = 0.0;
-    for (double v : log_overlap) sum += std::exp(v - top);
-    const double mixture_h2 = 2.0 * std::log(static_cast<double>(nb)) - (top + std::log(sum));
-    out[r] = static_cast<Scalar>(std::max(0.0, mixture_h2 - mean_component_h2));
+    // mean over members of H2(p_i) = d/2 ln(4 pi) + 1/2 sum_k ln var_ik
+    component.head(n) = Scalar(0.5 * d * kLog4Pi) + Scalar(0.5) * component.head(n) / Scalar(nb);
+    // ln sum over ordered pairs (i, j) of the overlaps: off-diagonal pairs count twice.
+    top.head(n) = log_overlap[0].head(n);
+    for (int p = 1; p < pairs; ++p) top.head(n) = top.head(n).max(log_overlap[p].head(n));
+    acc.head(n).setZero();
+    pair = 0;
+    for (int i = 0; i < nb; ++i) {
+      for (int j = i; j < nb; ++j, ++pair) {
+        acc.head(n) += Scalar(i == j ? 1 : 2) * (log_overlap[pair].head(n) - top.head(n)).exp();
+      }
+    }
+    const Scalar two_log_b = static_cast<Scalar>(2.0 * std::log(static_cast<double>(nb)));
+    Eigen::Map<Array<Scalar>>(out + first, n) =
+        (two_log_b - (top.head(n) + acc.head(n).log()) - component.head(n)).max(Scalar(0));
   }
 }
 
