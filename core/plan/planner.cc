@@ -2,6 +2,7 @@
 
 #include <chrono>
 #include <cmath>
+#include <vector>
 
 #include "absl/strings/str_format.h"
 
@@ -44,8 +45,7 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
                                 const explore::ObjectiveOptions& objective,
                                 const PlannerOptions& options, const SequenceLimits& limits,
                                 const Eigen::VectorXf& state, const CemWarmStart* warm_start,
-                                int shift, absl::Time deadline,
-                                const std::function<absl::Time()>& now) {
+                                int shift, const PlanContext& context) {
   const auto start = std::chrono::steady_clock::now();
   if (absl::Status s = options.Validate(); !s.ok()) return s;
   if (absl::Status s = objective.Validate(model.state_dim(), model.action_dim()); !s.ok()) return s;
@@ -63,18 +63,36 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
     }
   }
 
+  if (context.tasks < 1) {
+    return absl::InvalidArgumentError(absl::StrFormat("tasks is %d, must be >= 1", context.tasks));
+  }
+
   const RolloutOptions rollout = options.rollout();
-  RolloutWorkspace workspace;
-  RolloutStats stats;
+  const int tasks = context.parallel ? context.tasks : 1;
+  std::vector<RolloutWorkspace> workspaces(tasks);
+  std::vector<RolloutStats> task_stats(tasks);
+  const std::ptrdiff_t width = static_cast<std::ptrdiff_t>(options.horizon) * limits.dim();
   // A fresh draw of particles per iteration keeps the optimiser from fitting one draw's noise;
-  // candidates within an iteration share draws.
+  // candidates within an iteration share draws (so groups of them may be scored apart).
   uint64_t iteration_seed = options.seed * 0x9e3779b97f4a7c15ULL + 1;
   ScoreFunction score = [&](const float* sequences, int n, float* scores) {
-    ScoreSequences(model, objective, rollout, state.data(), sequences, n, iteration_seed++, scores,
-                   &workspace, nullptr, &stats);
+    const uint64_t seed = iteration_seed++;
+    auto group = [&](int task) {
+      const int first = static_cast<int>(static_cast<int64_t>(n) * task / tasks);
+      const int last = static_cast<int>(static_cast<int64_t>(n) * (task + 1) / tasks);
+      if (last <= first) return;
+      ScoreSequences(model, objective, rollout, state.data(), sequences + first * width,
+                     last - first, seed, scores + first, &workspaces[task], nullptr,
+                     &task_stats[task]);
+    };
+    if (tasks == 1) {
+      group(0);
+    } else {
+      context.parallel(tasks, group);
+    }
   };
-  absl::StatusOr<CemResult> cem =
-      MaximizeCem(options.cem(), limits, score, warm_start, shift, deadline, now);
+  absl::StatusOr<CemResult> cem = MaximizeCem(options.cem(), limits, score, warm_start, shift,
+                                               context.deadline, context.now);
   if (!cem.ok()) return cem.status();
 
   PlanResult result;
@@ -89,7 +107,8 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
   RolloutTrace trace;
   float objective_value = 0.0f;
   ScoreSequences(model, objective, report, state.data(), result.actions.data(), 1,
-                 options.seed ^ 0x5bd1e995ULL, &objective_value, &workspace, &trace, &stats);
+                 options.seed ^ 0x5bd1e995ULL, &objective_value, &workspaces[0], &trace,
+                 &task_stats[0]);
   result.state_mean = trace.state_mean;
   result.state_std = trace.state_std;
   result.expected_reward = trace.expected_reward;
@@ -101,8 +120,10 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
     result.total_information_gain += discount * trace.information_gain[t];
     discount *= objective.discount;
   }
-  result.model_seconds = stats.model_seconds;
-  result.model_flops = stats.model_flops;
+  for (const RolloutStats& stats : task_stats) {
+    result.model_seconds += stats.model_seconds;
+    result.model_flops += stats.model_flops;
+  }
   result.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
   return result;
 }

@@ -55,14 +55,27 @@ struct PlanResult {
   int iterations = 0;
   int evaluations = 0;
   double seconds = 0.0;          // wall time of Plan
-  double model_seconds = 0.0;    // part of it spent in the model's forward passes
+  double model_seconds = 0.0;    // thread-seconds spent in the model's forward passes
   double model_flops = 0.0;      // floating-point operations of those passes
   CemWarmStart warm_start;       // pass to the next Plan of this robot
 };
 
+// How one call of Plan may use the caller's clock and threads.
+struct PlanContext {
+  // The optimiser stops between iterations when the next one would end after this.
+  absl::Time deadline = absl::InfiniteFuture();
+  // The clock; absl::Now when empty.
+  std::function<absl::Time()> now;
+  // Runs the rollouts of disjoint groups of candidates as `tasks` parallel tasks (each with its
+  // own buffers); empty: all on the caller's thread. The result does not depend on it: every
+  // candidate is scored on the same random draws whichever group it falls in.
+  ParallelFor parallel;
+  int tasks = 1;
+};
+
 // Plans from `state` (state_dim, robot units). limits: the robot's action bounds, rate limits
 // and (optionally) the last applied action. warm_start: the previous plan's warm_start or
-// null; it is shifted by `shift` executed steps. Errors: InvalidArgument for bad options,
+// null; it is shifted by `shift` executed steps. context: deadline, clock and threads. Errors: InvalidArgument for bad options,
 // limits or a state of the wrong size or non-finite; FailedPrecondition when the model gives
 // non-finite predictions everywhere.
 absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
@@ -70,8 +83,7 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
                                 const PlannerOptions& options, const SequenceLimits& limits,
                                 const Eigen::VectorXf& state,
                                 const CemWarmStart* warm_start = nullptr, int shift = 1,
-                                absl::Time deadline = absl::InfiniteFuture(),
-                                const std::function<absl::Time()>& now = {});
+                                const PlanContext& context = {});
 
 }  // namespace foray::plan
 

@@ -13,6 +13,7 @@
 #define FORAY_CORE_PLAN_ROLLOUT_H_
 
 #include <cstdint>
+#include <functional>
 #include <memory>
 #include <vector>
 
@@ -130,6 +131,11 @@ struct RolloutWorkspace {
   std::vector<float> states, actions, reward, information, noise;
   std::vector<int> member_of;
 };
+
+// Runs task(i) for every i in [0, tasks), possibly on several threads at once, and returns when
+// all have finished. Core starts no threads of its own: a caller with a worker pool passes one
+// that runs the tasks there; an empty ParallelFor runs them in order on the caller's thread.
+using ParallelFor = std::function<void(int tasks, const std::function<void(int)>& task)>;
 
 // Scores `candidates` action sequences. sequences: (candidates, horizon * action_dim)
 // row-major, step t of candidate n at [n * horizon * action_dim + t * action_dim]; robot units.

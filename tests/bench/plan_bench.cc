@@ -1,6 +1,7 @@
 // Planner benchmark, C++ side: the SGEMM peak (Eigen, one thread), then one plan (iCEM over
 // particle rollouts through an ensemble, reward + pairwise-KL information gain) at the "small"
-// and "arm" configurations. Prints one JSON object per figure; run_plan_bench.sh runs it beside
+// and "arm" configurations, on one thread and split over two (the planner's ParallelFor with
+// plain threads standing in for the server's worker pool). Prints one JSON object per figure; run_plan_bench.sh runs it beside
 // the PyTorch reference (plan_bench_torch.py) in the same run.
 //
 //   foray_plan_bench [repeats] [config name, default all]
@@ -10,6 +11,7 @@
 #include <cstdio>
 #include <cstdlib>
 #include <string>
+#include <thread>
 #include <vector>
 
 #include "Eigen/Core"
@@ -93,13 +95,25 @@ int main(int argc, char** argv) {
         Eigen::VectorXf::Constant(c.action_dim, -1.0f), Eigen::VectorXf::Constant(c.action_dim, 1.0f));
     const Eigen::VectorXf state = Random(c.state_dim, 1, 9).col(0) * 0.1f;
 
+    for (int threads : {1, 2}) {
+    foray::plan::PlanContext context;
+    if (threads > 1) {
+      context.tasks = threads;
+      context.parallel = [](int n, const std::function<void(int)>& task) {
+        std::vector<std::thread> workers;
+        for (int i = 1; i < n; ++i) workers.emplace_back(task, i);
+        task(0);
+        for (std::thread& w : workers) w.join();
+      };
+    }
     std::vector<double> ms, model_ms;
     double flops = 0;
     int evaluations = 0;
     for (int i = 0; i < repeats + 2; ++i) {
       options.seed = 1 + i;
       const auto start = std::chrono::steady_clock::now();
-      absl::StatusOr<foray::plan::PlanResult> plan = foray::plan::Plan(model, objective, options, limits, state);
+      absl::StatusOr<foray::plan::PlanResult> plan =
+          foray::plan::Plan(model, objective, options, limits, state, nullptr, 1, context);
       const double elapsed = MsSince(start);
       if (!plan.ok()) {
         std::fprintf(stderr, "plan failed: %s\n", std::string(plan.status().message()).c_str());
@@ -112,15 +126,17 @@ int main(int argc, char** argv) {
       evaluations = plan->evaluations;
     }
     const Timing t = Summarise(ms), m = Summarise(model_ms);
-    std::printf("{\"name\": \"plan_%s\", \"impl\": \"foray\", \"median_ms\": %.3f, \"min_ms\": %.3f, "
+    // model_seconds counts thread-seconds: per-thread GFLOP/s.
+    std::printf("{\"name\": \"plan_%s\", \"impl\": \"foray\", \"threads\": %d, \"median_ms\": %.3f, \"min_ms\": %.3f, "
                 "\"max_ms\": %.3f, \"model_median_ms\": %.3f, \"model_gflops\": %.2f, "
                 "\"flops\": %.4g, \"evaluations\": %d, \"config\": {\"state_dim\": %d, "
                 "\"action_dim\": %d, \"members\": %d, \"hidden\": \"%dx%d\", \"population\": %d, "
                 "\"elites\": %d, \"particles\": %d, \"horizon\": %d, \"iterations\": %d}}\n",
-                c.name, t.median_ms, t.min_ms, t.max_ms, m.median_ms, flops / (m.median_ms * 1e6),
+                c.name, threads, t.median_ms, t.min_ms, t.max_ms, m.median_ms, flops / (m.median_ms * 1e6),
                 flops, evaluations, c.state_dim, c.action_dim, c.members, c.layers, c.width,
                 c.population, c.elites, c.particles, c.horizon, c.iterations);
     std::fflush(stdout);
+    }
   }
   return 0;
 }

@@ -5,6 +5,7 @@
 
 #include <cmath>
 #include <memory>
+#include <thread>
 #include <vector>
 
 #include "core/model/ensemble.h"
@@ -255,13 +256,46 @@ TEST(PlannerTest, DeadlineCutsIterationsAndStillReturnsAValidPlan) {
   PlannerOptions options = SmallPlanner();
   options.iterations = 20;
   options.population_decay = 1.0;
-  absl::StatusOr<PlanResult> plan =
-      Plan(model, explore::ObjectiveOptions{}, options, UnitHalfBox(), Eigen::VectorXf::Zero(1),
-           nullptr, 1, absl::UnixEpoch() + absl::Milliseconds(25), [&] { return clock; });
+  PlanContext context;
+  context.deadline = absl::UnixEpoch() + absl::Milliseconds(25);
+  context.now = [&] { return clock; };
+  absl::StatusOr<PlanResult> plan = Plan(model, explore::ObjectiveOptions{}, options,
+                                         UnitHalfBox(), Eigen::VectorXf::Zero(1), nullptr, 1, context);
   ASSERT_TRUE(plan.ok()) << plan.status();
   EXPECT_EQ(plan->iterations, 2);
   EXPECT_EQ(plan->actions.rows(), 10);
   EXPECT_TRUE(plan->actions.allFinite());
+}
+
+TEST(PlannerTest, ParallelTasksGiveTheSameResultAsOneThread) {
+  // Candidates are scored on common random draws, so splitting them over threads must not
+  // change a single bit of the plan.
+  const OffsetMembersModel model(3, 2, {-0.1f, 0.0f, 0.05f, 0.2f}, 0.05f);
+  PlannerOptions options = SmallPlanner();
+  options.propagation = Propagation::kTs1;
+  const SequenceLimits limits = SequenceLimits::Box(Eigen::Vector2f(-1, -1), Eigen::Vector2f(1, 1));
+  const Eigen::Vector3f state(0.1f, 0.2f, 0.3f);
+  absl::StatusOr<PlanResult> serial =
+      Plan(model, explore::ObjectiveOptions{}, options, limits, state);
+  ASSERT_TRUE(serial.ok());
+  for (int tasks : {2, 3, 7}) {
+    PlanContext context;
+    context.tasks = tasks;
+    int calls = 0;
+    context.parallel = [&](int n, const std::function<void(int)>& task) {
+      ++calls;
+      std::vector<std::thread> threads;
+      for (int i = 1; i < n; ++i) threads.emplace_back(task, i);
+      task(0);
+      for (std::thread& t : threads) t.join();
+    };
+    absl::StatusOr<PlanResult> parallel = Plan(model, explore::ObjectiveOptions{}, options,
+                                               limits, state, nullptr, 1, context);
+    ASSERT_TRUE(parallel.ok());
+    EXPECT_EQ(calls, options.iterations);
+    EXPECT_EQ(parallel->actions, serial->actions) << tasks << " tasks";
+    EXPECT_EQ(parallel->objective, serial->objective);
+  }
 }
 
 TEST(PlannerTest, ResultHasTheDocumentedShapes) {
