@@ -20,23 +20,11 @@ int PadTo(int n, int multiple) { return (n + multiple - 1) / multiple * multiple
 // What a dense layer does after x W + b.
 struct Epilogue {
   Activation activation = Activation::kSilu;
-  bool activate = true;  // hidden layers; false for the output layer
-  // Output layer: per padded column, whether it is a log-variance and its bounds.
-  const float* is_log_var = nullptr;
-  const float* max_log_var = nullptr;
-  const float* min_log_var = nullptr;
+  bool activate = true;  // hidden layers; false for the output layer (bounded afterwards)
 };
 
 #if defined(__AVX512F__)
 using Packet = __m512;
-
-inline Packet Softplus(Packet x) {
-  const Packet zero = _mm512_setzero_ps();
-  const Packet one = _mm512_set1_ps(1.0f);
-  const Packet neg_abs = _mm512_sub_ps(zero, _mm512_abs_ps(x));
-  return _mm512_add_ps(_mm512_max_ps(x, zero),
-                       Eigen::internal::plog(_mm512_add_ps(one, Eigen::internal::pexp(neg_abs))));
-}
 
 inline Packet Activate(Activation activation, Packet z) {
   switch (activation) {
@@ -63,7 +51,7 @@ inline Packet Activate(Activation activation, Packet z) {
 // y[r][c] for R rows and V vectors of 16 columns: act(sum_k x[r][k] w[k][c] + b[c]).
 template <int R, int V>
 void DenseTile(const float* x, int ldx, int k_count, const float* w, int ldw, const float* bias,
-               float* y, int ldy, int column, const Epilogue& ep) {
+               float* y, int ldy, const Epilogue& ep) {
   Packet acc[R][V];
   for (int v = 0; v < V; ++v) {
     const Packet b = _mm512_loadu_ps(bias + v * kLanes);
@@ -80,18 +68,6 @@ void DenseTile(const float* x, int ldx, int k_count, const float* w, int ldw, co
   for (int v = 0; v < V; ++v) {
     if (ep.activate) {
       for (int r = 0; r < R; ++r) acc[r][v] = Activate(ep.activation, acc[r][v]);
-    } else if (ep.is_log_var != nullptr) {
-      // Chua et al. 2018 bounds: lv = max - softplus(max - raw); lv = min + softplus(lv - min).
-      const int c = column + v * kLanes;
-      const __mmask16 mask =
-          _mm512_cmp_ps_mask(_mm512_loadu_ps(ep.is_log_var + c), _mm512_setzero_ps(), _CMP_NEQ_OQ);
-      const Packet hi = _mm512_loadu_ps(ep.max_log_var + c);
-      const Packet lo = _mm512_loadu_ps(ep.min_log_var + c);
-      for (int r = 0; r < R; ++r) {
-        const Packet upper = _mm512_sub_ps(hi, Softplus(_mm512_sub_ps(hi, acc[r][v])));
-        const Packet bounded = _mm512_add_ps(lo, Softplus(_mm512_sub_ps(upper, lo)));
-        acc[r][v] = _mm512_mask_blend_ps(mask, acc[r][v], bounded);
-      }
     }
     for (int r = 0; r < R; ++r) _mm512_storeu_ps(y + r * ldy + v * kLanes, acc[r][v]);
   }
@@ -99,12 +75,12 @@ void DenseTile(const float* x, int ldx, int k_count, const float* w, int ldw, co
 
 template <int R>
 void DenseTileColumns(int vectors, const float* x, int ldx, int k_count, const float* w, int ldw,
-                      const float* bias, float* y, int ldy, int column, const Epilogue& ep) {
+                      const float* bias, float* y, int ldy, const Epilogue& ep) {
   switch (vectors) {
-    case 1: return DenseTile<R, 1>(x, ldx, k_count, w, ldw, bias, y, ldy, column, ep);
-    case 2: return DenseTile<R, 2>(x, ldx, k_count, w, ldw, bias, y, ldy, column, ep);
-    case 3: return DenseTile<R, 3>(x, ldx, k_count, w, ldw, bias, y, ldy, column, ep);
-    default: return DenseTile<R, 4>(x, ldx, k_count, w, ldw, bias, y, ldy, column, ep);
+    case 1: return DenseTile<R, 1>(x, ldx, k_count, w, ldw, bias, y, ldy, ep);
+    case 2: return DenseTile<R, 2>(x, ldx, k_count, w, ldw, bias, y, ldy, ep);
+    case 3: return DenseTile<R, 3>(x, ldx, k_count, w, ldw, bias, y, ldy, ep);
+    default: return DenseTile<R, 4>(x, ldx, k_count, w, ldw, bias, y, ldy, ep);
   }
 }
 
@@ -117,16 +93,16 @@ void Dense(const float* x, int ldx, int rows, int k_count, const float* w, int l
     int r0 = 0;
     for (; r0 + kTileRows <= rows; r0 += kTileRows) {
       DenseTileColumns<kTileRows>(vectors, x + r0 * ldx, ldx, k_count, w + c0, ldw, bias + c0,
-                                  y + r0 * ldy + c0, ldy, c0, ep);
+                                  y + r0 * ldy + c0, ldy, ep);
     }
     const float* xr = x + r0 * ldx;
     float* yr = y + r0 * ldy + c0;
     switch (rows - r0) {
-      case 1: DenseTileColumns<1>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, c0, ep); break;
-      case 2: DenseTileColumns<2>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, c0, ep); break;
-      case 3: DenseTileColumns<3>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, c0, ep); break;
-      case 4: DenseTileColumns<4>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, c0, ep); break;
-      case 5: DenseTileColumns<5>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, c0, ep); break;
+      case 1: DenseTileColumns<1>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
+      case 2: DenseTileColumns<2>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
+      case 3: DenseTileColumns<3>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
+      case 4: DenseTileColumns<4>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
+      case 5: DenseTileColumns<5>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
       default: break;
     }
   }
@@ -149,16 +125,6 @@ void Dense(const float* x, int ldx, int rows, int k_count, const float* w, int l
       case Activation::kSilu: a = a / (1.0f + (-a).exp()); break;
       case Activation::kRelu: a = a.max(0.0f); break;
       case Activation::kTanh: a = a.tanh(); break;
-    }
-  } else if (ep.is_log_var != nullptr) {
-    auto softplus = [](float v) { return std::max(v, 0.0f) + std::log1p(std::exp(-std::abs(v))); };
-    for (int r = 0; r < rows; ++r) {
-      for (int c = 0; c < ldw; ++c) {
-        if (ep.is_log_var[c] == 0) continue;
-        float& z = ym(r, c);
-        const float upper = ep.max_log_var[c] - softplus(ep.max_log_var[c] - z);
-        z = ep.min_log_var[c] + softplus(upper - ep.min_log_var[c]);
-      }
     }
   }
 }
@@ -191,15 +157,8 @@ InferenceEnsemble::InferenceEnsemble(const Ensemble& e)
       layers_[b].push_back(std::move(layer));
     }
   }
-  const int out_pad = PadTo(2 * output_dim_, kLanes);
-  head_is_log_var_ = Eigen::VectorXf::Zero(out_pad);
-  head_max_ = Eigen::VectorXf::Zero(out_pad);
-  head_min_ = Eigen::VectorXf::Zero(out_pad);
-  for (int k = 0; k < output_dim_; ++k) {
-    head_is_log_var_(output_dim_ + k) = 1.0f;
-    head_max_(output_dim_ + k) = e.max_log_var()(k);
-    head_min_(output_dim_ + k) = e.min_log_var()(k);
-  }
+  max_log_var_ = e.max_log_var();
+  min_log_var_ = e.min_log_var();
 }
 
 void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, float* mean,
@@ -218,11 +177,6 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
     Epilogue ep;
     ep.activation = activation_;
     ep.activate = l + 1 < layers.size();
-    if (!ep.activate) {
-      ep.is_log_var = head_is_log_var_.data();
-      ep.max_log_var = head_max_.data();
-      ep.min_log_var = head_min_.data();
-    }
     Dense(in, ld_in, rows, layer.fan_in, layer.weights.data(), layer.fan_out_pad,
           layer.bias.data(), out, layer.fan_out_pad, ep);
     in = out;
@@ -235,6 +189,21 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
     std::copy(row, row + d, mean + static_cast<size_t>(r) * d);
     std::copy(row + d, row + 2 * d, log_var + static_cast<size_t>(r) * d);
   }
+  // Chua et al. 2018 bounds, over the contiguous (rows, d) block rather than per padded row
+  // (every SIMD lane does useful work): lv = max - softplus(max - raw);
+  // lv = min + softplus(lv - min), softplus(x) = max(x, 0) + ln(1 + e^-|x|).
+  const size_t n = static_cast<size_t>(rows) * d;
+  if (ws->bound_max.size() != static_cast<Eigen::Index>(n)) {
+    ws->bound_max = max_log_var_.replicate(rows, 1).array();
+    ws->bound_min = min_log_var_.replicate(rows, 1).array();
+    ws->softplus.resize(n);
+  }
+  Eigen::Map<Eigen::ArrayXf> lv(log_var, static_cast<Eigen::Index>(n));
+  Eigen::ArrayXf& t = ws->softplus;
+  t = ws->bound_max - lv;
+  lv = ws->bound_max - (t.max(0.0f) + (1.0f + (-t.abs()).exp()).log());
+  t = lv - ws->bound_min;
+  lv = ws->bound_min + (t.max(0.0f) + (1.0f + (-t.abs()).exp()).log());
 }
 
 }  // namespace foray::model

@@ -24,6 +24,8 @@ class InferenceEnsemble {
   // Per-thread scratch buffers; grow on first use and are reused afterwards.
   struct Workspace {
     std::vector<float> a, b;
+    // Log-variance bounds repeated over the rows of the last call, and scratch for them.
+    Eigen::ArrayXf bound_max, bound_min, softplus;
   };
 
   // Copyable and movable.
@@ -55,10 +57,9 @@ class InferenceEnsemble {
   Activation activation_ = Activation::kSilu;
   int widest_pad_ = 0;  // widest padded layer output: the row stride of the scratch buffers
   std::vector<std::vector<Layer>> layers_;  // [member][layer]
-  // Output layer epilogue, per padded column: 1 for a log-variance column, and its bounds.
-  Eigen::VectorXf head_is_log_var_;
-  Eigen::VectorXf head_max_;
-  Eigen::VectorXf head_min_;
+  // Learned log-variance bounds, (output_dim) each, normalised units.
+  Eigen::VectorXf max_log_var_;
+  Eigen::VectorXf min_log_var_;
 };
 
 }  // namespace foray::model
