@@ -81,6 +81,24 @@ void PairwiseBlock(int members, int rows, Distance&& distance, Scalar* out) {
   Eigen::Map<Array<Scalar>>(out, rows) = (log_b - total / Scalar(members)).max(Scalar(0));
 }
 
+// I_D for every row: `distance(gather, n, i, j, out)` writes D_ij for the gathered block of n
+// rows.
+template <typename Scalar, typename Distance>
+void PairwiseInformation(const GaussianSet<Scalar>& set, Scalar* out, Distance&& distance) {
+  if (set.members == 1) {
+    std::fill(out, out + set.rows, Scalar(0));
+    return;
+  }
+  BlockGather<Scalar> g(set);
+  for (int first = 0; first < set.rows; first += kBlock) {
+    const int n = std::min(kBlock, set.rows - first);
+    g.Load(first, n);
+    PairwiseBlock<Scalar>(
+        set.members, n, [&](int i, int j, Array<Scalar>* dist) { distance(g, n, i, j, dist); },
+        out + first);
+  }
+}
+
 }  // namespace
 
 absl::string_view EstimatorName(Estimator estimator) {
@@ -122,59 +140,39 @@ void GaussianEntropy(const GaussianSet<Scalar>& set, Scalar* out) {
 
 template <typename Scalar>
 void PairwiseKlInformation(const GaussianSet<Scalar>& set, Scalar* out) {
-  const int nb = set.members, d = set.dim;
-  if (nb == 1) {
-    std::fill(out, out + set.rows, Scalar(0));
-    return;
-  }
-  BlockGather<Scalar> g(set);
   Array<Scalar> diff(kBlock);
-  for (int first = 0; first < set.rows; first += kBlock) {
-    const int n = std::min(kBlock, set.rows - first);
-    g.Load(first, n);
-    auto distance = [&](int i, int j, Array<Scalar>* dist) {
-      dist->setZero();
-      for (int k = 0; k < d; ++k) {
-        auto& si = g.at(i, k);
-        auto& sj = g.at(j, k);
-        diff.head(n) = si.mu.head(n) - sj.mu.head(n);
-        *dist += sj.lv.head(n) - si.lv.head(n) +
-                 (si.var.head(n) + diff.head(n).square()) * sj.ivar.head(n) - Scalar(1);
-      }
-      *dist *= Scalar(0.5);
-    };
-    PairwiseBlock<Scalar>(nb, n, distance, out + first);
-  }
+  auto distance = [&](BlockGather<Scalar>& g, int n, int i, int j, Array<Scalar>* dist) {
+    dist->setZero();
+    for (int k = 0; k < set.dim; ++k) {
+      auto& si = g.at(i, k);
+      auto& sj = g.at(j, k);
+      diff.head(n) = si.mu.head(n) - sj.mu.head(n);
+      *dist += sj.lv.head(n) - si.lv.head(n) +
+               (si.var.head(n) + diff.head(n).square()) * sj.ivar.head(n) - Scalar(1);
+    }
+    *dist *= Scalar(0.5);
+  };
+  PairwiseInformation(set, out, distance);
 }
 
 template <typename Scalar>
 void PairwiseBhattacharyyaInformation(const GaussianSet<Scalar>& set, Scalar* out) {
-  const int nb = set.members, d = set.dim;
-  if (nb == 1) {
-    std::fill(out, out + set.rows, Scalar(0));
-    return;
-  }
-  BlockGather<Scalar> g(set);
   Array<Scalar> diff(kBlock), sum(kBlock);
-  for (int first = 0; first < set.rows; first += kBlock) {
-    const int n = std::min(kBlock, set.rows - first);
-    g.Load(first, n);
-    // Symmetric: BD(i, j) = BD(j, i); computed both ways, which costs little at small B.
-    auto distance = [&](int i, int j, Array<Scalar>* dist) {
-      dist->setZero();
-      for (int k = 0; k < d; ++k) {
-        auto& si = g.at(i, k);
-        auto& sj = g.at(j, k);
-        diff.head(n) = si.mu.head(n) - sj.mu.head(n);
-        sum.head(n) = si.var.head(n) + sj.var.head(n);
-        // 1/2 ln(s / (2 sqrt(v_i v_j))) = 1/2 ln(s/2) - 1/4 (lv_i + lv_j)
-        *dist += diff.head(n).square() / (Scalar(4) * sum.head(n)) +
-                 Scalar(0.5) * (Scalar(0.5) * sum.head(n)).log() -
-                 Scalar(0.25) * (si.lv.head(n) + sj.lv.head(n));
-      }
-    };
-    PairwiseBlock<Scalar>(nb, n, distance, out + first);
-  }
+  // Symmetric: BD(i, j) = BD(j, i); computed both ways, which costs little at small B.
+  auto distance = [&](BlockGather<Scalar>& g, int n, int i, int j, Array<Scalar>* dist) {
+    dist->setZero();
+    for (int k = 0; k < set.dim; ++k) {
+      auto& si = g.at(i, k);
+      auto& sj = g.at(j, k);
+      diff.head(n) = si.mu.head(n) - sj.mu.head(n);
+      sum.head(n) = si.var.head(n) + sj.var.head(n);
+      // 1/2 ln(s / (2 sqrt(v_i v_j))) = 1/2 ln(s/2) - 1/4 (lv_i + lv_j)
+      *dist += diff.head(n).square() / (Scalar(4) * sum.head(n)) +
+               Scalar(0.5) * (Scalar(0.5) * sum.head(n)).log() -
+               Scalar(0.25) * (si.lv.head(n) + sj.lv.head(n));
+    }
+  };
+  PairwiseInformation(set, out, distance);
 }
 
 template <typename Scalar>
