@@ -1,11 +1,14 @@
 // The exploration planner: iCEM over action sequences scored by particle rollouts through the
 // robot's model, objective J = mean_p sum_t gamma^t (w_r E[r_t] + w_i I_t). Plan() is a pure
-// function of its arguments; it is safe from several threads as long as each call has its own
-// PlannerWarmStart (the model is read-only).
+// function of its arguments (the model is read-only, the warm start is only read); calls may run
+// on several threads at once. Under a fixed options.seed the result is deterministic, whether
+// or not the context splits the rollouts over threads.
 //
-//   EnsembleRolloutModel model(ensemble);
-//   PlannerOptions options;  // horizon 20, population 200, elites 20, iterations 4, ...
-//   auto plan = Plan(model, objective, options, limits, state, &warm, deadline);
+//   EnsembleRolloutModel model(ensemble);      // once per published model version
+//   PlannerOptions options;                    // horizon 20, population 200, elites 20, ...
+//   PlanContext context;
+//   context.deadline = absl::Now() + absl::Milliseconds(50);
+//   auto plan = Plan(model, objective, options, limits, state, &last->warm_start, 1, context);
 #ifndef FORAY_CORE_PLAN_PLANNER_H_
 #define FORAY_CORE_PLAN_PLANNER_H_
 
