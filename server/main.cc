@@ -1,12 +1,19 @@
 // forayd: the Foray planning server.
 //
-// Serves the foray.v1 gRPC services, standard gRPC health checking and server reflection,
-// and stops cleanly on SIGINT or SIGTERM.
+// Serves the foray.v1 gRPC services (registry and robot sessions; models and monitoring are
+// registered and answer UNIMPLEMENTED for now), standard gRPC health checking and server
+// reflection, trains each robot's ensemble in the background, and stops cleanly on SIGINT or
+// SIGTERM: no new calls, in-flight calls finish within the grace period, the trainer finishes
+// its round, the database closes.
+
+#include <sys/stat.h>
 
 #include <csignal>
 #include <cstdio>
 #include <filesystem>
+#include <fstream>
 #include <memory>
+#include <sstream>
 #include <string>
 #include <system_error>
 
@@ -14,6 +21,7 @@
 #include "absl/flags/parse.h"
 #include "absl/flags/usage.h"
 #include "absl/strings/str_cat.h"
+#include "absl/strings/strip.h"
 #include "absl/time/clock.h"
 #include "absl/time/time.h"
 #include "foray/v1/models.grpc.pb.h"
@@ -25,6 +33,11 @@
 #include "grpcpp/server.h"
 #include "grpcpp/server_builder.h"
 #include "grpcpp/security/server_credentials.h"
+#include "server/api/auth.h"
+#include "server/api/directory.h"
+#include "server/api/services.h"
+#include "server/sched/training_loop.h"
+#include "server/store/store.h"
 
 ABSL_FLAG(std::string, listen, "127.0.0.1:50151",
           "gRPC listen address, host:port. Use 0.0.0.0:PORT to accept robots on the lab network.");
@@ -32,6 +45,9 @@ ABSL_FLAG(std::string, data_dir, "./foray-data",
           "Directory for the SQLite database and checkpoints; created if missing.");
 ABSL_FLAG(int, http_port, 0,
           "Port of the HTTP dashboard and /metrics (0: no HTTP server).");
+ABSL_FLAG(std::string, admin_token_file, "",
+          "File holding the admin token (first line). Empty: DATA_DIR/admin-token, created with "
+          "a fresh random token (mode 0600) when missing.");
 ABSL_FLAG(double, shutdown_grace_s, 5.0,
           "Seconds in-flight calls get to finish after SIGINT/SIGTERM before they are cancelled.");
 
@@ -41,14 +57,42 @@ constexpr char kCaution[] =
     "Foray plans robot motions but is not a safety system: keep emergency stops and\n"
     "safety-rated limits in place and follow your lab's risk assessment and local rules.";
 
-// The foray.v1 services as generated: every rpc answers UNIMPLEMENTED until the service layer
-// provides it. Registering them keeps the contract visible through reflection.
-struct ContractServices {
-  foray::v1::RobotRegistry::Service registry;
-  foray::v1::RobotSession::Service session;
+// The foray.v1 services not implemented yet: registered from the generated bases, so every
+// rpc answers UNIMPLEMENTED and the contract stays visible through reflection.
+struct PendingServices {
   foray::v1::Models::Service models;
   foray::v1::Monitoring::Service monitoring;
 };
+
+// Reads the admin token from `path`, or creates the file with a fresh token when it is missing.
+bool LoadAdminToken(const std::filesystem::path& path, bool create, std::string* token) {
+  std::ifstream in(path);
+  if (in) {
+    std::getline(in, *token);
+    *token = std::string(absl::StripAsciiWhitespace(*token));
+    if (token->empty()) {
+      std::fprintf(stderr, "forayd: the admin token file \"%s\" is empty\n", path.c_str());
+      return false;
+    }
+    return true;
+  }
+  if (!create) {
+    std::fprintf(stderr, "forayd: cannot read the admin token file \"%s\"\n", path.c_str());
+    return false;
+  }
+  *token = foray::api::NewToken();
+  const mode_t old_mask = ::umask(077);
+  std::ofstream out(path);
+  out << *token << "\n";
+  out.close();
+  ::umask(old_mask);
+  if (!out) {
+    std::fprintf(stderr, "forayd: cannot write the admin token file \"%s\"\n", path.c_str());
+    return false;
+  }
+  std::fprintf(stderr, "forayd: created a new admin token in %s\n", path.c_str());
+  return true;
+}
 
 }  // namespace
 
@@ -73,18 +117,46 @@ int main(int argc, char** argv) {
     return 2;
   }
 
+  std::string admin_token;
+  const std::string token_flag = absl::GetFlag(FLAGS_admin_token_file);
+  if (!LoadAdminToken(token_flag.empty() ? data_dir / "admin-token" : std::filesystem::path(token_flag),
+                      token_flag.empty(), &admin_token)) {
+    return 2;
+  }
+
+  absl::StatusOr<std::unique_ptr<foray::store::Store>> store =
+      foray::store::Store::Open((data_dir / "foray.db").string());
+  if (!store.ok()) {
+    std::fprintf(stderr, "forayd: %s\n", std::string(store.status().message()).c_str());
+    return 2;
+  }
+  foray::api::RobotDirectory directory(store->get(), foray::api::HashToken(admin_token));
+  if (absl::Status s = directory.LoadAll(); !s.ok()) {
+    std::fprintf(stderr, "forayd: loading the robots failed: %s\n", std::string(s.message()).c_str());
+    return 2;
+  }
+  foray::sched::TrainingLoop trainer([&directory] {
+    std::vector<std::shared_ptr<foray::robot::RobotRuntime>> runtimes;
+    for (const auto& entry : directory.List(/*include_archived=*/false)) {
+      runtimes.push_back(entry->runtime);
+    }
+    return runtimes;
+  });
+
   grpc::EnableDefaultHealthCheckService(true);
   grpc::reflection::InitProtoReflectionServerBuilderPlugin();
 
-  ContractServices services;
+  foray::api::RegistryService registry(&directory);
+  foray::api::SessionService session(&directory);
+  PendingServices pending;
   grpc::ServerBuilder builder;
   int bound_port = 0;
   const std::string listen = absl::GetFlag(FLAGS_listen);
   builder.AddListeningPort(listen, grpc::InsecureServerCredentials(), &bound_port);
-  builder.RegisterService(&services.registry);
-  builder.RegisterService(&services.session);
-  builder.RegisterService(&services.models);
-  builder.RegisterService(&services.monitoring);
+  builder.RegisterService(&registry);
+  builder.RegisterService(&session);
+  builder.RegisterService(&pending.models);
+  builder.RegisterService(&pending.monitoring);
   std::unique_ptr<grpc::Server> server = builder.BuildAndStart();
   if (server == nullptr || bound_port == 0) {
     std::fprintf(stderr, "forayd: cannot listen on \"%s\" (address in use or malformed)\n",
@@ -92,10 +164,11 @@ int main(int argc, char** argv) {
     return 2;
   }
   server->GetHealthCheckService()->SetServingStatus(true);
+  trainer.Start();
 
   std::fprintf(stderr, "%s\n", kCaution);
-  std::fprintf(stderr, "forayd: serving gRPC on %s (port %d), data in %s\n", listen.c_str(),
-               bound_port, data_dir.c_str());
+  std::fprintf(stderr, "forayd: serving gRPC on %s (port %d), data in %s, %zu robots\n",
+               listen.c_str(), bound_port, data_dir.c_str(), directory.List(true).size());
   std::fflush(stderr);
 
   int signal_number = 0;
@@ -106,6 +179,7 @@ int main(int argc, char** argv) {
   const absl::Duration grace = absl::Seconds(absl::GetFlag(FLAGS_shutdown_grace_s));
   server->Shutdown(absl::ToChronoTime(absl::Now() + grace));
   server->Wait();
+  trainer.Stop();
   std::fprintf(stderr, "forayd: stopped\n");
   return 0;
 }

@@ -14,12 +14,26 @@ class Forayd:
     def __init__(self, data_dir):
         self.data_dir = data_dir
         self.log_path = os.path.join(data_dir, "forayd.log")
+        self._start()
+
+    def _start(self):
         self.log = open(self.log_path, "w+")
         self.process = subprocess.Popen(
-            [os.environ["FORAYD"], "--listen=127.0.0.1:0", f"--data_dir={data_dir}"],
+            [os.environ["FORAYD"], "--listen=127.0.0.1:0", f"--data_dir={self.data_dir}"],
             stdout=self.log, stderr=subprocess.STDOUT)
         self.port = self._wait_for_port(timeout_s=20)
         self.address = f"127.0.0.1:{self.port}"
+
+    def restart(self):
+        """Stops the server with SIGTERM and starts it again on the same data directory."""
+        code = self.stop()
+        self._start()
+        return code
+
+    @property
+    def admin_token(self):
+        with open(os.path.join(self.data_dir, "admin-token")) as f:
+            return f.read().strip()
 
     def _wait_for_port(self, timeout_s):
         deadline = time.monotonic() + timeout_s

@@ -1,0 +1,299 @@
+#include "server/api/convert.h"
+
+#include <cmath>
+#include <limits>
+#include <string>
+
+#include "absl/strings/str_format.h"
+#include "absl/strings/str_join.h"
+
+namespace foray::api {
+namespace {
+
+absl::Status Invalid(const std::string& message) { return absl::InvalidArgumentError(message); }
+
+bool NameCharOk(char c) {
+  return (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') || (c >= '0' && c <= '9') || c == '_' ||
+         c == '.' || c == '-';
+}
+
+// Checks `values` has `want` finite entries; `field` names it in the message.
+absl::Status CheckVector(const google::protobuf::RepeatedField<double>& values, int want,
+                         const std::string& field, const std::string& what) {
+  if (values.size() != want) {
+    return Invalid(absl::StrFormat("%s has %d values, %s expects %d", field, values.size(), what,
+                                   want));
+  }
+  for (int i = 0; i < values.size(); ++i) {
+    if (!std::isfinite(values[i])) {
+      return Invalid(absl::StrFormat("%s[%d] is %g, must be finite", field, i, values[i]));
+    }
+  }
+  return absl::OkStatus();
+}
+
+}  // namespace
+
+float FloatAtLeast(double x) {
+  float f = static_cast<float>(x);
+  if (static_cast<double>(f) < x) f = std::nextafter(f, std::numeric_limits<float>::infinity());
+  return f;
+}
+
+float FloatAtMost(double x) {
+  float f = static_cast<float>(x);
+  if (static_cast<double>(f) > x) f = std::nextafter(f, -std::numeric_limits<float>::infinity());
+  return f;
+}
+
+grpc::Status ToGrpc(const absl::Status& status) {
+  if (status.ok()) return grpc::Status::OK;
+  // absl and gRPC share the canonical code numbers.
+  return grpc::Status(static_cast<grpc::StatusCode>(status.code()), std::string(status.message()));
+}
+
+absl::Status ApplyPlannerSettings(const v1::PlannerSettings& s, plan::PlannerOptions* o) {
+  if (s.horizon() > 500) {
+    return Invalid(absl::StrFormat("planner.horizon is %d, must be in 1..500", s.horizon()));
+  }
+  if (s.population() > 100000) {
+    return Invalid(absl::StrFormat("planner.population is %d, must be at most 100000", s.population()));
+  }
+  if (s.particles() > 1000) {
+    return Invalid(absl::StrFormat("planner.particles is %d, must be at most 1000", s.particles()));
+  }
+  if (s.iterations() > 1000) {
+    return Invalid(absl::StrFormat("planner.iterations is %d, must be at most 1000", s.iterations()));
+  }
+  if (s.horizon() != 0) o->horizon = static_cast<int>(s.horizon());
+  if (s.population() != 0) o->population = static_cast<int>(s.population());
+  if (s.elites() != 0) o->elites = static_cast<int>(s.elites());
+  if (s.iterations() != 0) o->iterations = static_cast<int>(s.iterations());
+  if (s.particles() != 0) o->particles = static_cast<int>(s.particles());
+  if (s.white_noise()) {
+    o->noise_beta = 0.0;
+  } else if (s.noise_beta() != 0.0) {
+    o->noise_beta = s.noise_beta();
+  }
+  if (s.keep_fraction() != 0.0) o->keep_fraction = s.keep_fraction();
+  if (s.population_decay() != 0.0) o->population_decay = s.population_decay();
+  if (s.initial_std_fraction() != 0.0) o->initial_std_fraction = s.initial_std_fraction();
+  switch (s.propagation()) {
+    case v1::PROPAGATION_UNSPECIFIED: break;
+    case v1::PROPAGATION_TS_INF: o->propagation = plan::Propagation::kTsInf; break;
+    case v1::PROPAGATION_TS1: o->propagation = plan::Propagation::kTs1; break;
+    default:
+      return Invalid(absl::StrFormat("planner.propagation is %d, not a known value",
+                                     static_cast<int>(s.propagation())));
+  }
+  if (absl::Status st = o->Validate(); !st.ok()) {
+    return Invalid(absl::StrCat("planner: ", st.message()));
+  }
+  return absl::OkStatus();
+}
+
+absl::Status ApplyObjectiveSettings(const v1::ObjectiveSettings& s, int state_dim, int action_dim,
+                                    explore::ObjectiveOptions* o) {
+  if (s.has_reward_weight()) o->reward_weight = s.reward_weight();
+  if (s.has_information_weight()) o->information_weight = s.information_weight();
+  if (s.has_discount()) o->discount = s.discount();
+  switch (s.estimator()) {
+    case v1::INFORMATION_ESTIMATOR_UNSPECIFIED: break;
+    case v1::INFORMATION_ESTIMATOR_PAIRWISE_KL: o->estimator = explore::Estimator::kPairwiseKl; break;
+    case v1::INFORMATION_ESTIMATOR_PAIRWISE_BHATTACHARYYA:
+      o->estimator = explore::Estimator::kPairwiseBhattacharyya;
+      break;
+    case v1::INFORMATION_ESTIMATOR_JENSEN_RENYI_2: o->estimator = explore::Estimator::kJensenRenyi2; break;
+    case v1::INFORMATION_ESTIMATOR_MONTE_CARLO: o->estimator = explore::Estimator::kMonteCarlo; break;
+    default:
+      return Invalid(absl::StrFormat("objective.estimator is %d, not a known value",
+                                     static_cast<int>(s.estimator())));
+  }
+  if (s.has_known_reward()) {
+    const v1::KnownReward& k = s.known_reward();
+    explore::KnownReward known;
+    if (k.has_quadratic()) {
+      known.kind = explore::KnownReward::Kind::kQuadratic;
+      known.target.assign(k.quadratic().target().begin(), k.quadratic().target().end());
+      known.state_weight.assign(k.quadratic().weight().begin(), k.quadratic().weight().end());
+    } else if (k.has_region()) {
+      known.kind = explore::KnownReward::Kind::kRegion;
+      for (uint32_t i : k.region().indices()) known.indices.push_back(static_cast<int>(i));
+      known.lower.assign(k.region().lower().begin(), k.region().lower().end());
+      known.upper.assign(k.region().upper().begin(), k.region().upper().end());
+    }
+    o->known_reward = std::move(known);
+  }
+  if (absl::Status st = o->Validate(state_dim, action_dim); !st.ok()) {
+    return Invalid(absl::StrCat("objective: ", st.message()));
+  }
+  return absl::OkStatus();
+}
+
+absl::StatusOr<robot::RobotConfig> ConfigFromSpec(const v1::RobotSpec& spec) {
+  robot::RobotConfig c;
+  const std::string& name = spec.name();
+  if (name.empty() || name.size() > 64) {
+    return Invalid(absl::StrFormat("spec.name \"%s\" has %d characters, must have 1..64", name,
+                                   name.size()));
+  }
+  for (char ch : name) {
+    if (!NameCharOk(ch)) {
+      return Invalid(absl::StrFormat(
+          "spec.name \"%s\" has the character '%c'; use only A-Z a-z 0-9 _ . -", name, ch));
+    }
+  }
+  c.name = name;
+  c.state_dim = spec.state_size();
+  c.action_dim = spec.action_size();
+  if (c.state_dim < 1 || c.state_dim > 256) {
+    return Invalid(absl::StrFormat("spec.state has %d dimensions, must have 1..256", c.state_dim));
+  }
+  if (c.action_dim < 1 || c.action_dim > 64) {
+    return Invalid(absl::StrFormat("spec.action has %d dimensions, must have 1..64", c.action_dim));
+  }
+  if (spec.action_limits_size() != c.action_dim) {
+    return Invalid(absl::StrFormat("spec.action_limits has %d entries, spec.action has %d",
+                                   spec.action_limits_size(), c.action_dim));
+  }
+  c.limits.lower.resize(c.action_dim);
+  c.limits.upper.resize(c.action_dim);
+  c.limits.max_step.resize(c.action_dim);
+  for (int j = 0; j < c.action_dim; ++j) {
+    const v1::ActionLimit& l = spec.action_limits(j);
+    if (!std::isfinite(l.min()) || !std::isfinite(l.max()) || !(l.min() < l.max())) {
+      return Invalid(absl::StrFormat(
+          "spec.action_limits[%d] has min %g and max %g; both must be finite with min < max", j,
+          l.min(), l.max()));
+    }
+    if (!std::isfinite(l.max_step()) || l.max_step() < 0) {
+      return Invalid(absl::StrFormat("spec.action_limits[%d].max_step is %g, must be >= 0", j,
+                                     l.max_step()));
+    }
+    // The planner works in float: round the limits inward, so that every planned action
+    // satisfies the spec's own (double) limits exactly.
+    c.limits.lower[j] = FloatAtLeast(l.min());
+    c.limits.upper[j] = FloatAtMost(l.max());
+    c.limits.max_step[j] = l.max_step() == 0 ? 0.0f : FloatAtMost(l.max_step());
+    if (!(c.limits.lower[j] < c.limits.upper[j]) || (l.max_step() > 0 && c.limits.max_step[j] <= 0)) {
+      return Invalid(absl::StrFormat(
+          "spec.action_limits[%d] (min %g, max %g, max_step %g) is too narrow for float precision",
+          j, l.min(), l.max(), l.max_step()));
+    }
+  }
+  if (!(spec.control_period_s() > 0) || !std::isfinite(spec.control_period_s())) {
+    return Invalid(absl::StrFormat("spec.control_period_s is %g, must be > 0",
+                                   spec.control_period_s()));
+  }
+  c.control_period_s = spec.control_period_s();
+
+  const v1::ModelSettings& m = spec.model();
+  if (m.ensemble_size() != 0) c.ensemble.ensemble_size = static_cast<int>(m.ensemble_size());
+  if (m.hidden_widths_size() > 0) {
+    c.ensemble.hidden_widths.assign(m.hidden_widths().begin(), m.hidden_widths().end());
+  }
+  switch (m.activation()) {
+    case v1::ModelSettings::ACTIVATION_UNSPECIFIED:
+    case v1::ModelSettings::ACTIVATION_SILU: c.ensemble.activation = model::Activation::kSilu; break;
+    case v1::ModelSettings::ACTIVATION_RELU: c.ensemble.activation = model::Activation::kRelu; break;
+    case v1::ModelSettings::ACTIVATION_TANH: c.ensemble.activation = model::Activation::kTanh; break;
+    default:
+      return Invalid(absl::StrFormat("spec.model.activation is %d, not a known value",
+                                     static_cast<int>(m.activation())));
+  }
+  if (absl::Status st = c.ensemble.Validate(); !st.ok()) {
+    return Invalid(absl::StrCat("spec.model: ", st.message()));
+  }
+
+  const v1::TrainingSettings& t = spec.training();
+  if (t.every_n_transitions() != 0) c.policy.every_n_transitions = static_cast<int>(t.every_n_transitions());
+  c.policy.at_episode_end = !t.no_train_at_episode_end();
+  if (t.min_transitions() != 0) c.policy.min_transitions = static_cast<int>(t.min_transitions());
+  if (c.policy.min_transitions < 2) {
+    return Invalid(absl::StrFormat("spec.training.min_transitions is %d, must be >= 2",
+                                   c.policy.min_transitions));
+  }
+  if (t.learning_rate() != 0) c.training.learning_rate = t.learning_rate();
+  if (t.weight_decay() != 0) c.training.weight_decay = t.weight_decay();
+  if (t.batch_size() != 0) c.training.batch_size = static_cast<int>(t.batch_size());
+  if (t.max_epochs() != 0) c.training.max_epochs = static_cast<int>(t.max_epochs());
+  if (t.holdout_fraction() != 0) c.training.holdout_fraction = t.holdout_fraction();
+  if (t.patience() != 0) c.training.patience = static_cast<int>(t.patience());
+  if (absl::Status st = c.training.Validate(); !st.ok()) {
+    return Invalid(absl::StrCat("spec.training: ", st.message()));
+  }
+
+  if (absl::Status st = ApplyPlannerSettings(spec.planner(), &c.planner); !st.ok()) {
+    return Invalid(absl::StrCat("spec.", st.message()));
+  }
+  if (absl::Status st = ApplyObjectiveSettings(spec.objective(), c.state_dim, c.action_dim,
+                                               &c.objective);
+      !st.ok()) {
+    return Invalid(absl::StrCat("spec.", st.message()));
+  }
+  for (uint32_t i : spec.coverage_indices()) {
+    if (static_cast<int>(i) >= c.state_dim) {
+      return Invalid(absl::StrFormat("spec.coverage_indices has %d, the state has %d values", i,
+                                     c.state_dim));
+    }
+  }
+  return c;
+}
+
+absl::StatusOr<std::vector<store::TransitionRecord>> TransitionsFromWire(
+    const google::protobuf::RepeatedPtrField<v1::Transition>& transitions,
+    const robot::RobotConfig& c) {
+  if (transitions.empty()) return Invalid("transitions is empty; send 1..10000 per request");
+  if (transitions.size() > 10000) {
+    return Invalid(absl::StrFormat("transitions has %d entries, at most 10000 per request",
+                                   transitions.size()));
+  }
+  std::vector<store::TransitionRecord> out;
+  out.reserve(transitions.size());
+  uint64_t previous = 0;
+  for (int i = 0; i < transitions.size(); ++i) {
+    const v1::Transition& t = transitions[i];
+    const std::string at = absl::StrFormat("transitions[%d] (seq %d)", i, t.seq());
+    if (t.seq() == 0) return Invalid(absl::StrFormat("transitions[%d].seq is 0, must be >= 1", i));
+    if (i > 0 && t.seq() <= previous) {
+      return Invalid(absl::StrFormat(
+          "transitions[%d].seq is %d after %d; seq must increase strictly within a request", i,
+          t.seq(), previous));
+    }
+    previous = t.seq();
+    const std::string robot = absl::StrFormat("robot \"%s\"", c.name);
+    if (absl::Status s = CheckVector(t.state(), c.state_dim, at + ".state", robot); !s.ok()) return s;
+    if (absl::Status s = CheckVector(t.action(), c.action_dim, at + ".action", robot); !s.ok()) return s;
+    if (absl::Status s = CheckVector(t.next_state(), c.state_dim, at + ".next_state", robot); !s.ok()) {
+      return s;
+    }
+    if (!std::isfinite(t.reward())) {
+      return Invalid(absl::StrFormat("%s.reward is %g, must be finite", at, t.reward()));
+    }
+    for (int j = 0; j < c.action_dim; ++j) {
+      // The config keeps the bounds in float: allow their rounding (1e-6 of the range).
+      const double slack = 1e-6 * (static_cast<double>(c.limits.upper[j]) - c.limits.lower[j]);
+      if (t.action(j) < c.limits.lower[j] - slack || t.action(j) > c.limits.upper[j] + slack) {
+        return Invalid(absl::StrFormat("%s.action[%d] is %g, outside the limits [%g, %g]", at, j,
+                                       t.action(j), c.limits.lower[j], c.limits.upper[j]));
+      }
+    }
+    store::TransitionRecord r;
+    r.seq = t.seq();
+    r.episode = t.episode();
+    r.step = t.step();
+    r.state.assign(t.state().begin(), t.state().end());
+    r.action.assign(t.action().begin(), t.action().end());
+    r.next_state.assign(t.next_state().begin(), t.next_state().end());
+    r.reward = t.reward();
+    r.terminal = t.terminal();
+    if (t.has_measured_at()) {
+      r.measured_at = absl::FromUnixSeconds(t.measured_at().seconds()) +
+                      absl::Nanoseconds(t.measured_at().nanos());
+    }
+    out.push_back(std::move(r));
+  }
+  return out;
+}
+
+}  // namespace foray::api

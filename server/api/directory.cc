@@ -1,0 +1,194 @@
+#include "server/api/directory.h"
+
+#include "absl/strings/str_format.h"
+#include "server/api/auth.h"
+#include "server/api/convert.h"
+
+namespace foray::api {
+namespace {
+
+google::protobuf::Timestamp ToTimestamp(absl::Time t) {
+  google::protobuf::Timestamp ts;
+  const int64_t micros = absl::ToUnixMicros(t);
+  ts.set_seconds(micros / 1000000);
+  ts.set_nanos(static_cast<int32_t>(micros % 1000000) * 1000);
+  return ts;
+}
+
+}  // namespace
+
+RobotDirectory::RobotDirectory(store::Store* store, std::string admin_token_hash)
+    : store_(store), admin_token_hash_(std::move(admin_token_hash)) {}
+
+absl::Status RobotDirectory::LoadAll() {
+  absl::StatusOr<std::vector<store::RobotRecord>> records = store_->ListRobots();
+  if (!records.ok()) return records.status();
+  std::map<std::string, std::shared_ptr<const RobotEntry>> loaded;
+  for (const store::RobotRecord& r : *records) {
+    auto entry = std::make_shared<RobotEntry>();
+    entry->robot_id = r.robot_id;
+    if (!entry->spec.ParseFromString(r.spec)) {
+      return absl::DataLossError(absl::StrFormat("robot \"%s\": stored spec is unreadable", r.robot_id));
+    }
+    absl::StatusOr<robot::RobotConfig> config = ConfigFromSpec(entry->spec);
+    if (!config.ok()) {
+      return absl::DataLossError(absl::StrFormat("robot \"%s\": stored spec is invalid: %s",
+                                                 r.robot_id, config.status().message()));
+    }
+    entry->token_hash = r.token_hash;
+    entry->created_at = r.created_at;
+    entry->archived = r.archived;
+    entry->runtime = std::make_shared<robot::RobotRuntime>(r.robot_id, *std::move(config), store_);
+    if (absl::Status s = entry->runtime->Load(); !s.ok()) return s;
+    loaded[r.robot_id] = std::move(entry);
+  }
+  absl::MutexLock lock(&mu_);
+  robots_ = std::move(loaded);
+  return absl::OkStatus();
+}
+
+absl::StatusOr<std::pair<std::shared_ptr<const RobotEntry>, std::string>> RobotDirectory::Register(
+    const v1::RobotSpec& spec) {
+  absl::StatusOr<robot::RobotConfig> config = ConfigFromSpec(spec);
+  if (!config.ok()) return config.status();
+  {
+    absl::MutexLock lock(&mu_);
+    for (const auto& [id, e] : robots_) {
+      if (!e->archived && e->spec.name() == spec.name()) {
+        return absl::AlreadyExistsError(absl::StrFormat(
+            "a robot named \"%s\" is registered already (%s); archive it or choose another name",
+            spec.name(), id));
+      }
+    }
+  }
+  const std::string token = NewToken();
+  auto entry = std::make_shared<RobotEntry>();
+  entry->robot_id = NewId("r-");
+  entry->spec = spec;
+  entry->token_hash = HashToken(token);
+  entry->created_at = absl::Now();
+  entry->runtime = std::make_shared<robot::RobotRuntime>(entry->robot_id, *std::move(config), store_);
+  store::RobotRecord record;
+  record.robot_id = entry->robot_id;
+  record.spec = spec.SerializeAsString();
+  record.token_hash = entry->token_hash;
+  record.created_at = entry->created_at;
+  if (absl::Status s = store_->InsertRobot(record); !s.ok()) return s;
+  absl::MutexLock lock(&mu_);
+  robots_[entry->robot_id] = entry;
+  return std::make_pair(std::shared_ptr<const RobotEntry>(entry), token);
+}
+
+absl::StatusOr<std::shared_ptr<const RobotEntry>> RobotDirectory::UpdateSettings(
+    const v1::UpdateRobotSettingsRequest& request) {
+  absl::MutexLock lock(&mu_);
+  auto it = robots_.find(request.robot_id());
+  if (it == robots_.end()) {
+    return absl::NotFoundError(absl::StrFormat("robot \"%s\" is not registered", request.robot_id()));
+  }
+  auto updated = std::make_shared<RobotEntry>(*it->second);
+  if (request.has_planner()) *updated->spec.mutable_planner() = request.planner();
+  if (request.has_objective()) *updated->spec.mutable_objective() = request.objective();
+  if (request.has_training()) *updated->spec.mutable_training() = request.training();
+  // The whole spec is checked again, so settings that do not fit the robot are refused.
+  absl::StatusOr<robot::RobotConfig> config = ConfigFromSpec(updated->spec);
+  if (!config.ok()) return config.status();
+  if (absl::Status s = store_->UpdateRobotSpec(updated->robot_id, updated->spec.SerializeAsString());
+      !s.ok()) {
+    return s;
+  }
+  updated->runtime->UpdateSettings(config->planner, config->objective, config->training,
+                                   config->policy);
+  it->second = updated;
+  return std::shared_ptr<const RobotEntry>(updated);
+}
+
+absl::StatusOr<std::shared_ptr<const RobotEntry>> RobotDirectory::Archive(const std::string& robot_id) {
+  absl::MutexLock lock(&mu_);
+  auto it = robots_.find(robot_id);
+  if (it == robots_.end()) {
+    return absl::NotFoundError(absl::StrFormat("robot \"%s\" is not registered", robot_id));
+  }
+  if (absl::Status s = store_->SetArchived(robot_id, true); !s.ok()) return s;
+  auto updated = std::make_shared<RobotEntry>(*it->second);
+  updated->archived = true;
+  it->second = updated;
+  return std::shared_ptr<const RobotEntry>(updated);
+}
+
+std::vector<std::shared_ptr<const RobotEntry>> RobotDirectory::List(bool include_archived) const {
+  absl::MutexLock lock(&mu_);
+  std::vector<std::shared_ptr<const RobotEntry>> out;
+  for (const auto& [id, e] : robots_) {
+    if (include_archived || !e->archived) out.push_back(e);
+  }
+  return out;
+}
+
+bool RobotDirectory::IsAdmin(const std::string& token_hash) const {
+  return !admin_token_hash_.empty() && SameHash(token_hash, admin_token_hash_);
+}
+
+absl::Status RobotDirectory::CheckAdmin(const grpc::ServerContext& context) const {
+  absl::StatusOr<std::string> token = BearerToken(context);
+  if (!token.ok()) return token.status();
+  const std::string hash = HashToken(*token);
+  if (IsAdmin(hash)) return absl::OkStatus();
+  absl::MutexLock lock(&mu_);
+  for (const auto& [id, e] : robots_) {
+    if (SameHash(hash, e->token_hash)) {
+      return absl::PermissionDeniedError(
+          "this call needs the admin token; a robot's token cannot manage the registry");
+    }
+  }
+  return absl::UnauthenticatedError("the token is not known to this server");
+}
+
+absl::StatusOr<std::shared_ptr<const RobotEntry>> RobotDirectory::Authorize(
+    const grpc::ServerContext& context, const std::string& robot_id, bool admin_ok) const {
+  absl::StatusOr<std::string> token = BearerToken(context);
+  if (!token.ok()) return token.status();
+  const std::string hash = HashToken(*token);
+  const bool admin = IsAdmin(hash);
+  absl::MutexLock lock(&mu_);
+  auto it = robots_.find(robot_id);
+  if (it != robots_.end() && SameHash(hash, it->second->token_hash)) {
+    if (it->second->archived) {
+      return absl::PermissionDeniedError(
+          absl::StrFormat("robot \"%s\" is archived; its token no longer works", robot_id));
+    }
+    return it->second;
+  }
+  if (admin && admin_ok) {
+    if (it == robots_.end()) {
+      return absl::NotFoundError(absl::StrFormat("robot \"%s\" is not registered", robot_id));
+    }
+    return it->second;
+  }
+  if (admin) {
+    return absl::PermissionDeniedError(
+        "this call needs the robot's own token, not the admin token");
+  }
+  for (const auto& [id, e] : robots_) {
+    if (SameHash(hash, e->token_hash)) {
+      return absl::PermissionDeniedError(absl::StrFormat(
+          "this token belongs to another robot; it cannot reach robot \"%s\"", robot_id));
+    }
+  }
+  return absl::UnauthenticatedError("the token is not known to this server");
+}
+
+v1::Robot RobotDirectory::ToWire(const RobotEntry& entry) {
+  v1::Robot r;
+  r.set_robot_id(entry.robot_id);
+  *r.mutable_spec() = entry.spec;
+  *r.mutable_created_at() = ToTimestamp(entry.created_at);
+  r.set_archived(entry.archived);
+  const robot::RobotStatus status = entry.runtime->Status();
+  r.set_last_seq(status.last_seq);
+  r.set_transitions(status.transitions);
+  r.set_model_version(status.model_version);
+  return r;
+}
+
+}  // namespace foray::api

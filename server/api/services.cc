@@ -1,0 +1,255 @@
+#include "server/api/services.h"
+
+#include <algorithm>
+#include <cmath>
+#include <limits>
+
+#include "absl/strings/str_format.h"
+#include "server/api/convert.h"
+
+namespace foray::api {
+namespace {
+
+absl::StatusOr<robot::PlanInput> PlanInputFromWire(const v1::PlanRequest& request,
+                                                   const robot::RobotConfig& config) {
+  robot::PlanInput in;
+  if (request.state_size() != config.state_dim) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "request.state has %d values, robot \"%s\" expects %d", request.state_size(), config.name,
+        config.state_dim));
+  }
+  in.state.resize(config.state_dim);
+  for (int k = 0; k < config.state_dim; ++k) {
+    if (!std::isfinite(request.state(k))) {
+      return absl::InvalidArgumentError(
+          absl::StrFormat("request.state[%d] is %g, must be finite", k, request.state(k)));
+    }
+    in.state[k] = static_cast<float>(request.state(k));
+  }
+  if (request.previous_action_size() != 0) {
+    if (request.previous_action_size() != config.action_dim) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "request.previous_action has %d values, robot \"%s\" expects %d",
+          request.previous_action_size(), config.name, config.action_dim));
+    }
+    in.previous_action.resize(config.action_dim);
+    for (int j = 0; j < config.action_dim; ++j) {
+      const double a = request.previous_action(j);
+      const double slack = 1e-6 * (static_cast<double>(config.limits.upper[j]) - config.limits.lower[j]);
+      if (!std::isfinite(a) || a < config.limits.lower[j] - slack || a > config.limits.upper[j] + slack) {
+        return absl::InvalidArgumentError(absl::StrFormat(
+            "request.previous_action[%d] is %g, outside the limits [%g, %g]", j, a,
+            config.limits.lower[j], config.limits.upper[j]));
+      }
+      in.previous_action[j] =
+          std::clamp(static_cast<float>(a), config.limits.lower[j], config.limits.upper[j]);
+    }
+    // The first step's rate limit is kept against the float previous action; shrink it by that
+    // rounding (and clipping), so that it also holds against the client's own value.
+    if (config.limits.max_step.size() == config.action_dim) {
+      in.max_step = config.limits.max_step;
+      for (int j = 0; j < config.action_dim; ++j) {
+        if (in.max_step[j] == 0.0f) continue;
+        const double error = std::abs(static_cast<double>(in.previous_action[j]) -
+                                      request.previous_action(j));
+        in.max_step[j] = std::max(FloatAtMost(in.max_step[j] - error),
+                                  std::numeric_limits<float>::denorm_min());
+      }
+    }
+  }
+  const double deadline_ms = request.deadline_ms() == 0 ? 100.0 : request.deadline_ms();
+  if (!(deadline_ms >= 1.0 && deadline_ms <= 60000.0)) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "request.deadline_ms is %g, must be in 1..60000", request.deadline_ms()));
+  }
+  in.budget = absl::Milliseconds(deadline_ms);
+  in.planner = config.planner;
+  in.objective = config.objective;
+  if (request.has_planner()) {
+    if (absl::Status s = ApplyPlannerSettings(request.planner(), &in.planner); !s.ok()) {
+      return absl::InvalidArgumentError(absl::StrCat("request.", s.message()));
+    }
+  }
+  if (request.has_objective()) {
+    if (absl::Status s = ApplyObjectiveSettings(request.objective(), config.state_dim,
+                                                config.action_dim, &in.objective);
+        !s.ok()) {
+      return absl::InvalidArgumentError(absl::StrCat("request.", s.message()));
+    }
+  }
+  return in;
+}
+
+void PlanToWire(const robot::PlanOutcome& outcome, const robot::RobotConfig& config,
+                uint64_t request_id, v1::Plan* plan) {
+  const plan::PlanResult& r = outcome.result;
+  const int horizon = static_cast<int>(r.actions.rows());
+  for (int t = 0; t < horizon; ++t) {
+    v1::Plan::Step* step = plan->add_steps();
+    for (int j = 0; j < r.actions.cols(); ++j) step->add_action(r.actions(t, j));
+    if (!outcome.from_prior) {
+      for (int k = 0; k < r.state_mean.cols(); ++k) {
+        step->add_predicted_state_mean(r.state_mean(t, k));
+        step->add_predicted_state_std(r.state_std(t, k));
+      }
+      step->set_expected_reward(r.expected_reward[t]);
+      step->set_information_gain(r.information_gain[t]);
+    }
+  }
+  plan->set_objective(r.objective);
+  plan->set_expected_return(r.expected_return);
+  plan->set_information_gain(r.total_information_gain);
+  plan->set_model_version(outcome.model_version);
+  plan->set_from_prior(outcome.from_prior);
+  plan->set_iterations(static_cast<uint32_t>(r.iterations));
+  plan->set_compute_ms(outcome.compute_ms);
+  // A plan is worth executing for at most its horizon of control periods.
+  const int64_t valid_us = absl::ToUnixMicros(absl::Now()) +
+                           static_cast<int64_t>(std::llround(1e6 * config.control_period_s * horizon));
+  plan->mutable_valid_until()->set_seconds(valid_us / 1000000);
+  plan->mutable_valid_until()->set_nanos(static_cast<int32_t>(valid_us % 1000000) * 1000);
+  plan->set_request_id(request_id);
+}
+
+absl::Status Plan(const RobotEntry& entry, const v1::PlanRequest& request, v1::Plan* response) {
+  const robot::RobotConfig config = entry.runtime->config();
+  absl::StatusOr<robot::PlanInput> input = PlanInputFromWire(request, config);
+  if (!input.ok()) return input.status();
+  absl::StatusOr<robot::PlanOutcome> outcome = entry.runtime->Plan(*std::move(input));
+  if (!outcome.ok()) return outcome.status();
+  PlanToWire(*outcome, config, request.request_id(), response);
+  return absl::OkStatus();
+}
+
+absl::Status Append(const RobotEntry& entry,
+                    const google::protobuf::RepeatedPtrField<v1::Transition>& transitions,
+                    v1::Ack* ack) {
+  const robot::RobotConfig config = entry.runtime->config();
+  absl::StatusOr<std::vector<store::TransitionRecord>> batch = TransitionsFromWire(transitions, config);
+  if (!batch.ok()) return batch.status();
+  absl::StatusOr<store::AppendResult> result = entry.runtime->Append(*batch);
+  if (!result.ok()) return result.status();
+  ack->set_durable_seq(result->durable_seq);
+  ack->set_accepted(result->accepted);
+  ack->set_duplicates(result->duplicates);
+  return absl::OkStatus();
+}
+
+}  // namespace
+
+grpc::Status RegistryService::RegisterRobot(grpc::ServerContext* context,
+                                            const v1::RegisterRobotRequest* request,
+                                            v1::RegisterRobotResponse* response) {
+  if (absl::Status s = directory_->CheckAdmin(*context); !s.ok()) return ToGrpc(s);
+  auto registered = directory_->Register(request->spec());
+  if (!registered.ok()) return ToGrpc(registered.status());
+  *response->mutable_robot() = RobotDirectory::ToWire(*registered->first);
+  response->set_token(registered->second);
+  return grpc::Status::OK;
+}
+
+grpc::Status RegistryService::GetRobot(grpc::ServerContext* context,
+                                       const v1::GetRobotRequest* request, v1::Robot* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  *response = RobotDirectory::ToWire(**entry);
+  return grpc::Status::OK;
+}
+
+grpc::Status RegistryService::ListRobots(grpc::ServerContext* context,
+                                         const v1::ListRobotsRequest* request,
+                                         v1::ListRobotsResponse* response) {
+  if (absl::Status s = directory_->CheckAdmin(*context); !s.ok()) return ToGrpc(s);
+  for (const auto& entry : directory_->List(request->include_archived())) {
+    *response->add_robots() = RobotDirectory::ToWire(*entry);
+  }
+  return grpc::Status::OK;
+}
+
+grpc::Status RegistryService::UpdateRobotSettings(grpc::ServerContext* context,
+                                                  const v1::UpdateRobotSettingsRequest* request,
+                                                  v1::Robot* response) {
+  if (absl::Status s = directory_->CheckAdmin(*context); !s.ok()) return ToGrpc(s);
+  auto entry = directory_->UpdateSettings(*request);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  *response = RobotDirectory::ToWire(**entry);
+  return grpc::Status::OK;
+}
+
+grpc::Status RegistryService::ArchiveRobot(grpc::ServerContext* context,
+                                           const v1::ArchiveRobotRequest* request,
+                                           v1::Robot* response) {
+  if (absl::Status s = directory_->CheckAdmin(*context); !s.ok()) return ToGrpc(s);
+  auto entry = directory_->Archive(request->robot_id());
+  if (!entry.ok()) return ToGrpc(entry.status());
+  *response = RobotDirectory::ToWire(**entry);
+  return grpc::Status::OK;
+}
+
+grpc::Status SessionService::AppendTransitions(grpc::ServerContext* context,
+                                               const v1::AppendTransitionsRequest* request,
+                                               v1::Ack* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/false);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  return ToGrpc(Append(**entry, request->transitions(), response));
+}
+
+grpc::Status SessionService::PlanActions(grpc::ServerContext* context,
+                                         const v1::PlanActionsRequest* request, v1::Plan* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/false);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  return ToGrpc(Plan(**entry, request->request(), response));
+}
+
+grpc::Status SessionService::Connect(
+    grpc::ServerContext* context,
+    grpc::ServerReaderWriter<v1::SessionServerMessage, v1::SessionClientMessage>* stream) {
+  v1::SessionClientMessage in;
+  if (!stream->Read(&in)) return grpc::Status::OK;  // the client left before saying hello
+  if (!in.has_hello()) {
+    return grpc::Status(grpc::StatusCode::INVALID_ARGUMENT,
+                        "the first message of a session must be a hello");
+  }
+  auto authorized = directory_->Authorize(*context, in.hello().robot_id(), /*admin_ok=*/false);
+  if (!authorized.ok()) return ToGrpc(authorized.status());
+  const std::shared_ptr<const RobotEntry> entry = *authorized;
+  {
+    v1::SessionServerMessage out;
+    const robot::RobotStatus status = entry->runtime->Status();
+    out.mutable_welcome()->set_last_seq(status.last_seq);
+    out.mutable_welcome()->set_model_version(status.model_version);
+    *out.mutable_welcome()->mutable_spec() = entry->spec;
+    if (!stream->Write(out)) return grpc::Status::OK;
+  }
+  // One message at a time: a transition is acknowledged after its commit; a bad message gets
+  // an error reply and the stream goes on.
+  while (stream->Read(&in)) {
+    v1::SessionServerMessage out;
+    if (in.has_transition()) {
+      google::protobuf::RepeatedPtrField<v1::Transition> one;
+      *one.Add() = in.transition();
+      absl::Status s = Append(*entry, one, out.mutable_ack());
+      if (!s.ok()) {
+        out.clear_ack();
+        out.mutable_error()->set_code(static_cast<int>(s.code()));
+        out.mutable_error()->set_message(std::string(s.message()));
+        out.mutable_error()->set_seq(in.transition().seq());
+      }
+    } else if (in.has_plan_request()) {
+      absl::Status s = Plan(*entry, in.plan_request(), out.mutable_plan());
+      if (!s.ok()) {
+        out.clear_plan();
+        out.mutable_error()->set_code(static_cast<int>(s.code()));
+        out.mutable_error()->set_message(std::string(s.message()));
+        out.mutable_error()->set_request_id(in.plan_request().request_id());
+      }
+    } else {
+      out.mutable_error()->set_code(static_cast<int>(absl::StatusCode::kInvalidArgument));
+      out.mutable_error()->set_message("expected a transition or a plan request after the hello");
+    }
+    if (!stream->Write(out)) break;
+  }
+  return grpc::Status::OK;
+}
+
+}  // namespace foray::api

@@ -1,0 +1,52 @@
+// The foray.v1 gRPC services: thin translations between the wire and the robot runtimes.
+// Each call checks its credentials first, then validates everything it received, then acts.
+// Thread-safe: gRPC calls the handlers from its own threads.
+#ifndef FORAY_SERVER_API_SERVICES_H_
+#define FORAY_SERVER_API_SERVICES_H_
+
+#include "foray/v1/registry.grpc.pb.h"
+#include "foray/v1/session.grpc.pb.h"
+#include "server/api/directory.h"
+
+namespace foray::api {
+
+class RegistryService final : public v1::RobotRegistry::Service {
+ public:
+  explicit RegistryService(RobotDirectory* directory) : directory_(directory) {}
+
+  grpc::Status RegisterRobot(grpc::ServerContext* context, const v1::RegisterRobotRequest* request,
+                             v1::RegisterRobotResponse* response) override;
+  grpc::Status GetRobot(grpc::ServerContext* context, const v1::GetRobotRequest* request,
+                        v1::Robot* response) override;
+  grpc::Status ListRobots(grpc::ServerContext* context, const v1::ListRobotsRequest* request,
+                          v1::ListRobotsResponse* response) override;
+  grpc::Status UpdateRobotSettings(grpc::ServerContext* context,
+                                   const v1::UpdateRobotSettingsRequest* request,
+                                   v1::Robot* response) override;
+  grpc::Status ArchiveRobot(grpc::ServerContext* context, const v1::ArchiveRobotRequest* request,
+                            v1::Robot* response) override;
+
+ private:
+  RobotDirectory* const directory_;
+};
+
+class SessionService final : public v1::RobotSession::Service {
+ public:
+  explicit SessionService(RobotDirectory* directory) : directory_(directory) {}
+
+  grpc::Status Connect(
+      grpc::ServerContext* context,
+      grpc::ServerReaderWriter<v1::SessionServerMessage, v1::SessionClientMessage>* stream) override;
+  grpc::Status AppendTransitions(grpc::ServerContext* context,
+                                 const v1::AppendTransitionsRequest* request,
+                                 v1::Ack* response) override;
+  grpc::Status PlanActions(grpc::ServerContext* context, const v1::PlanActionsRequest* request,
+                           v1::Plan* response) override;
+
+ private:
+  RobotDirectory* const directory_;
+};
+
+}  // namespace foray::api
+
+#endif  // FORAY_SERVER_API_SERVICES_H_

@@ -1,0 +1,337 @@
+#include "server/robot/runtime.h"
+
+#include <chrono>
+#include <utility>
+
+#include "absl/strings/str_format.h"
+#include "core/model/serialize.h"
+#include "core/util/random.h"
+#include "foray/v1/types.pb.h"
+
+namespace foray::robot {
+namespace {
+
+// Checkpoints keep the training report as the wire's TrainingReport, so that listing them
+// needs no conversion.
+std::string EncodeReport(const PublishedModel& m) {
+  v1::TrainingReport r;
+  r.set_model_version(m.version);
+  r.set_epochs(static_cast<uint32_t>(m.report.epochs));
+  r.set_transitions(static_cast<uint64_t>(m.report.transitions));
+  r.set_train_nll(m.report.train_nll);
+  r.set_holdout_nll(m.report.holdout_nll);
+  r.set_holdout_mse(m.report.holdout_mse);
+  for (double v : m.report.within_1sigma) r.add_within_1sigma(v);
+  for (double v : m.report.within_2sigma) r.add_within_2sigma(v);
+  r.set_duration_s(m.training_seconds);
+  r.mutable_finished_at()->set_seconds(absl::ToUnixSeconds(m.finished_at));
+  return r.SerializeAsString();
+}
+
+model::TrainingReport DecodeReport(const std::string& bytes, double* seconds) {
+  v1::TrainingReport r;
+  model::TrainingReport out;
+  if (!r.ParseFromString(bytes)) return out;
+  out.epochs = static_cast<int>(r.epochs());
+  out.transitions = static_cast<int>(r.transitions());
+  out.train_nll = r.train_nll();
+  out.holdout_nll = r.holdout_nll();
+  out.holdout_mse = r.holdout_mse();
+  out.within_1sigma.assign(r.within_1sigma().begin(), r.within_1sigma().end());
+  out.within_2sigma.assign(r.within_2sigma().begin(), r.within_2sigma().end());
+  *seconds = r.duration_s();
+  return out;
+}
+
+std::shared_ptr<const PublishedModel> Publish(uint64_t version, model::Ensemble ensemble,
+                                              model::TrainingReport report, double seconds,
+                                              absl::Time finished_at) {
+  auto m = std::make_shared<PublishedModel>();
+  m->version = version;
+  ensemble.set_version(version);
+  m->ensemble = std::move(ensemble);
+  m->rollout = std::make_unique<const plan::EnsembleRolloutModel>(m->ensemble);
+  m->report = std::move(report);
+  m->training_seconds = seconds;
+  m->finished_at = finished_at;
+  return m;
+}
+
+}  // namespace
+
+RobotRuntime::RobotRuntime(std::string robot_id, RobotConfig config, store::Store* store)
+    : robot_id_(std::move(robot_id)), store_(store), config_(std::move(config)) {}
+
+RobotConfig RobotRuntime::config() const {
+  absl::MutexLock lock(&mu_);
+  return config_;
+}
+
+void RobotRuntime::UpdateSettings(const plan::PlannerOptions& planner,
+                                  const explore::ObjectiveOptions& objective,
+                                  const model::TrainingOptions& training,
+                                  const TrainingPolicy& policy) {
+  absl::MutexLock lock(&mu_);
+  config_.planner = planner;
+  config_.objective = objective;
+  config_.training = training;
+  config_.policy = policy;
+  warm_start_.reset();  // the horizon may have changed
+}
+
+RobotStatus RobotRuntime::Status() const {
+  absl::MutexLock lock(&mu_);
+  RobotStatus s;
+  s.last_seq = last_seq_;
+  s.transitions = rewards_.size();
+  s.model_version = published_ ? published_->version : 0;
+  s.training = training_;
+  return s;
+}
+
+std::shared_ptr<const PublishedModel> RobotRuntime::published() const {
+  absl::MutexLock lock(&mu_);
+  return published_;
+}
+
+void RobotRuntime::AddToDataset(const store::TransitionRecord& t) {
+  for (double v : t.state) states_.push_back(static_cast<float>(v));
+  for (double v : t.action) actions_.push_back(static_cast<float>(v));
+  for (double v : t.next_state) next_states_.push_back(static_cast<float>(v));
+  rewards_.push_back(static_cast<float>(t.reward));
+  if (t.seq > last_seq_) last_seq_ = t.seq;
+  if (t.terminal || (last_episode_ != 0 && t.episode != last_episode_)) episode_ended_ = true;
+  last_episode_ = t.episode;
+  ++new_since_training_;
+}
+
+absl::Status RobotRuntime::Load() {
+  absl::StatusOr<std::vector<store::TransitionRecord>> transitions =
+      store_->LoadTransitions(robot_id_);
+  if (!transitions.ok()) return transitions.status();
+  std::shared_ptr<const PublishedModel> published;
+  absl::StatusOr<store::CheckpointRecord> checkpoint = store_->GetCheckpoint(robot_id_, 0);
+  if (checkpoint.ok()) {
+    absl::StatusOr<model::Ensemble> ensemble = model::DeserializeEnsemble(checkpoint->model);
+    if (!ensemble.ok()) {
+      return absl::DataLossError(absl::StrFormat(
+          "robot \"%s\": checkpoint of model version %d is unreadable: %s", robot_id_,
+          checkpoint->model_version, ensemble.status().message()));
+    }
+    double seconds = 0.0;
+    model::TrainingReport report = DecodeReport(checkpoint->report, &seconds);
+    published = Publish(checkpoint->model_version, *std::move(ensemble), std::move(report),
+                        seconds, checkpoint->created_at);
+  } else if (checkpoint.status().code() != absl::StatusCode::kNotFound) {
+    return checkpoint.status();
+  }
+  absl::MutexLock lock(&mu_);
+  for (const store::TransitionRecord& t : *transitions) AddToDataset(t);
+  // What was stored before the restart is already in the checkpoint's model (or will be in
+  // the next round's): no round is owed for it.
+  new_since_training_ = 0;
+  episode_ended_ = false;
+  published_ = std::move(published);
+  return absl::OkStatus();
+}
+
+absl::StatusOr<store::AppendResult> RobotRuntime::Append(
+    const std::vector<store::TransitionRecord>& batch) {
+  // One append at a time per robot, so that the dataset follows the store in commit order.
+  absl::MutexLock append_lock(&append_mu_);
+  uint64_t before;
+  {
+    absl::MutexLock lock(&mu_);
+    before = last_seq_;
+  }
+  absl::StatusOr<store::AppendResult> result = store_->AppendTransitions(robot_id_, batch);
+  if (!result.ok() || result->accepted == 0) return result;
+  uint32_t beyond = 0;
+  for (const store::TransitionRecord& t : batch) beyond += t.seq > before ? 1 : 0;
+  if (beyond == result->accepted) {
+    absl::MutexLock lock(&mu_);
+    for (const store::TransitionRecord& t : batch) {
+      if (t.seq > before) AddToDataset(t);
+    }
+    return result;
+  }
+  // Some accepted transitions filled gaps below the last seq (rare): mirror the store anew.
+  absl::StatusOr<std::vector<store::TransitionRecord>> all = store_->LoadTransitions(robot_id_);
+  if (!all.ok()) return all.status();
+  absl::MutexLock lock(&mu_);
+  const int pending = new_since_training_ + static_cast<int>(result->accepted);
+  states_.clear();
+  actions_.clear();
+  next_states_.clear();
+  rewards_.clear();
+  last_seq_ = 0;
+  last_episode_ = 0;
+  const bool ended = episode_ended_;
+  for (const store::TransitionRecord& t : *all) AddToDataset(t);
+  new_since_training_ = pending;
+  episode_ended_ = ended;
+  return result;
+}
+
+bool RobotRuntime::WantsTraining() const {
+  absl::MutexLock lock(&mu_);
+  if (training_ || static_cast<int>(rewards_.size()) < config_.policy.min_transitions) return false;
+  // After a failed round, wait for new data rather than fail again at once.
+  if (last_round_failed_ && new_since_training_ == 0) return false;
+  if (published_ == nullptr) return true;
+  if (new_since_training_ >= config_.policy.every_n_transitions) return true;
+  return config_.policy.at_episode_end && episode_ended_ && new_since_training_ > 0;
+}
+
+model::TransitionData RobotRuntime::Snapshot() const {
+  const int n = static_cast<int>(rewards_.size());
+  const int sd = config_.state_dim, ad = config_.action_dim;
+  using RowMajor = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+  model::TransitionData d;
+  d.states = Eigen::Map<const RowMajor>(states_.data(), n, sd);
+  d.actions = Eigen::Map<const RowMajor>(actions_.data(), n, ad);
+  d.next_states = Eigen::Map<const RowMajor>(next_states_.data(), n, sd);
+  d.rewards = Eigen::Map<const Eigen::VectorXf>(rewards_.data(), n);
+  return d;
+}
+
+absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce() {
+  model::TransitionData data;
+  RobotConfig config;
+  std::shared_ptr<const PublishedModel> start;
+  {
+    absl::MutexLock lock(&mu_);
+    if (training_) return absl::FailedPreconditionError("a training round is running already");
+    if (static_cast<int>(rewards_.size()) < 2) {
+      return absl::FailedPreconditionError(absl::StrFormat(
+          "robot \"%s\" has %d transitions; training needs at least 2", config_.name,
+          rewards_.size()));
+    }
+    data = Snapshot();
+    config = config_;
+    start = published_;
+    training_ = true;
+    new_since_training_ = 0;
+    episode_ended_ = false;
+  }
+  const uint64_t version = start ? start->version + 1 : 1;
+  auto finish = [&](absl::Status status) {
+    absl::MutexLock lock(&mu_);
+    training_ = false;
+    last_round_failed_ = true;
+    return status;
+  };
+  model::Ensemble initial;
+  if (start) {
+    initial = start->ensemble;  // warm start
+  } else {
+    absl::StatusOr<model::Ensemble> fresh =
+        model::Ensemble::Create(config.state_dim, config.action_dim, config.ensemble, version);
+    if (!fresh.ok()) return finish(fresh.status());
+    initial = *std::move(fresh);
+  }
+  model::TrainingOptions options = config.training;
+  options.seed = options.seed * 1000003u + version;
+  const auto begin = std::chrono::steady_clock::now();
+  auto trained = model::TrainEnsemble(std::move(initial), data, options);
+  if (!trained.ok()) return finish(trained.status());
+  const double seconds =
+      std::chrono::duration<double>(std::chrono::steady_clock::now() - begin).count();
+  std::shared_ptr<const PublishedModel> published = Publish(
+      version, std::move(trained->first), std::move(trained->second), seconds, absl::Now());
+
+  store::CheckpointRecord checkpoint;
+  checkpoint.model_version = version;
+  checkpoint.created_at = published->finished_at;
+  checkpoint.report = EncodeReport(*published);
+  checkpoint.model = model::SerializeEnsemble(published->ensemble);
+  if (absl::Status s = store_->PutCheckpoint(robot_id_, checkpoint); !s.ok()) return finish(s);
+
+  absl::MutexLock lock(&mu_);
+  training_ = false;
+  last_round_failed_ = false;
+  published_ = published;
+  return published;
+}
+
+absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
+  const absl::Time start = absl::Now();
+  std::shared_ptr<const PublishedModel> model;
+  RobotConfig config;
+  std::optional<plan::CemWarmStart> warm;
+  uint64_t count;
+  {
+    absl::MutexLock lock(&mu_);
+    model = published_;
+    config = config_;
+    warm = warm_start_;
+    count = ++plans_;
+  }
+  if (input.state.size() != config.state_dim) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "state has %d values, robot \"%s\" expects %d", input.state.size(), config.name,
+        config.state_dim));
+  }
+  plan::SequenceLimits limits = config.limits;
+  if (input.previous_action.size() != 0) {
+    if (input.previous_action.size() != config.action_dim) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "previous_action has %d values, robot \"%s\" expects %d",
+          input.previous_action.size(), config.name, config.action_dim));
+    }
+    // A previous action a hair outside the bounds (float rounding on the client) is clipped.
+    limits.previous = input.previous_action.cwiseMax(limits.lower).cwiseMin(limits.upper);
+  }
+  if (input.max_step.size() != 0) {
+    if (input.max_step.size() != config.action_dim) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "max_step has %d values, robot \"%s\" expects %d", input.max_step.size(), config.name,
+          config.action_dim));
+    }
+    limits.max_step = input.max_step;
+  }
+  input.planner.seed = input.planner.seed * 0x9e3779b97f4a7c15ULL + count;
+
+  PlanOutcome outcome;
+  if (model == nullptr) {
+    // No model: one draw of the optimiser's initial distribution (coloured noise around the
+    // middle of the bounds), information gain off.
+    const plan::PlannerOptions& p = input.planner;
+    if (absl::Status s = p.Validate(); !s.ok()) return s;
+    if (absl::Status s = limits.Validate(); !s.ok()) return s;
+    const plan::ColoredNoise noise(p.horizon, p.noise_beta);
+    Rng rng(p.seed);
+    plan::RowMatrixXf actions(p.horizon, config.action_dim);
+    for (int j = 0; j < config.action_dim; ++j) {
+      noise.Sample([&] { return rng.Normal(); }, actions.data() + j, config.action_dim);
+    }
+    for (int t = 0; t < p.horizon; ++t) {
+      for (int j = 0; j < config.action_dim; ++j) {
+        const float range = limits.upper[j] - limits.lower[j];
+        actions(t, j) = 0.5f * (limits.upper[j] + limits.lower[j]) +
+                        static_cast<float>(p.initial_std_fraction) * range * actions(t, j);
+      }
+    }
+    limits.Project(actions.data(), p.horizon);
+    outcome.result.actions = std::move(actions);
+    outcome.result.expected_reward = Eigen::VectorXf::Zero(p.horizon);
+    outcome.result.information_gain = Eigen::VectorXf::Zero(p.horizon);
+    outcome.from_prior = true;
+  } else {
+    plan::PlanContext context = input.context;
+    context.deadline = start + input.budget;
+    const bool reuse = warm.has_value() && warm->mean.rows() == input.planner.horizon;
+    absl::StatusOr<plan::PlanResult> result =
+        plan::Plan(*model->rollout, input.objective, input.planner, limits, input.state,
+                   reuse ? &*warm : nullptr, 1, context);
+    if (!result.ok()) return result.status();
+    outcome.result = *std::move(result);
+    outcome.model_version = model->version;
+    absl::MutexLock lock(&mu_);
+    warm_start_ = outcome.result.warm_start;
+  }
+  outcome.compute_ms = absl::ToDoubleMilliseconds(absl::Now() - start);
+  return outcome;
+}
+
+}  // namespace foray::robot

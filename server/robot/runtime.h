@@ -1,0 +1,127 @@
+// One robot's runtime: its settings, the in-memory mirror of its stored transitions, the
+// published model version, the planner's warm start, and the training policy. Thread-safe:
+// plans run on the rpc threads while the trainer thread trains; a published model version is
+// immutable and replaced by a pointer swap, so training never blocks planning.
+//
+//   auto runtime = std::make_shared<RobotRuntime>(id, config, store);
+//   FORAY_RETURN_IF_ERROR(runtime->Load());          // transitions and newest checkpoint
+//   FORAY_ASSIGN_OR_RETURN(auto ack, runtime->Append(batch));
+//   FORAY_ASSIGN_OR_RETURN(auto plan, runtime->Plan(request));
+#ifndef FORAY_SERVER_ROBOT_RUNTIME_H_
+#define FORAY_SERVER_ROBOT_RUNTIME_H_
+
+#include <cstdint>
+#include <memory>
+#include <optional>
+#include <string>
+#include <vector>
+
+#include "absl/base/thread_annotations.h"
+#include "absl/status/statusor.h"
+#include "absl/synchronization/mutex.h"
+#include "absl/time/time.h"
+#include "core/model/ensemble.h"
+#include "core/model/trainer.h"
+#include "core/plan/planner.h"
+#include "core/plan/rollout.h"
+#include "server/robot/config.h"
+#include "server/store/store.h"
+
+namespace foray::robot {
+
+// An immutable published model version. Shared as std::shared_ptr<const PublishedModel>:
+// planners keep the version they started with while training publishes the next one.
+struct PublishedModel {
+  uint64_t version = 0;
+  model::Ensemble ensemble;
+  std::unique_ptr<const plan::EnsembleRolloutModel> rollout;
+  model::TrainingReport report;
+  double training_seconds = 0.0;
+  absl::Time finished_at;
+};
+
+struct PlanInput {
+  Eigen::VectorXf state;            // (state_dim), robot units
+  Eigen::VectorXf previous_action;  // (action_dim) or empty
+  Eigen::VectorXf max_step;         // (action_dim) rate limits for this plan; empty: the config's
+  absl::Duration budget = absl::Milliseconds(100);
+  plan::PlannerOptions planner;     // the robot's settings with the request's overrides
+  explore::ObjectiveOptions objective;
+  plan::PlanContext context;        // threads; deadline and clock are set by Plan
+};
+
+struct PlanOutcome {
+  plan::PlanResult result;
+  uint64_t model_version = 0;  // 0 with from_prior
+  bool from_prior = false;     // no model yet: one sample of the optimiser's initial distribution
+  double compute_ms = 0.0;
+};
+
+// A robot's figures for the registry and monitoring.
+struct RobotStatus {
+  uint64_t last_seq = 0;
+  uint64_t transitions = 0;
+  uint64_t model_version = 0;
+  bool training = false;
+};
+
+class RobotRuntime {
+ public:
+  // Not copyable or movable (shared by the services through std::shared_ptr).
+  RobotRuntime(const RobotRuntime&) = delete;
+  RobotRuntime& operator=(const RobotRuntime&) = delete;
+
+  // `store` must outlive the runtime.
+  RobotRuntime(std::string robot_id, RobotConfig config, store::Store* store);
+
+  const std::string& robot_id() const { return robot_id_; }
+  RobotConfig config() const;
+  // Replaces the settings that may change after registration.
+  void UpdateSettings(const plan::PlannerOptions& planner, const explore::ObjectiveOptions& objective,
+                      const model::TrainingOptions& training, const TrainingPolicy& policy);
+  RobotStatus Status() const;
+  std::shared_ptr<const PublishedModel> published() const;
+
+  // Mirrors the stored transitions and publishes the newest checkpoint, without retraining.
+  absl::Status Load();
+
+  // Stores a validated batch (durable on return) and adds the new transitions to the dataset.
+  absl::StatusOr<store::AppendResult> Append(const std::vector<store::TransitionRecord>& batch);
+
+  // Plans from input.state. Without a published model, returns one draw of the optimiser's
+  // initial distribution within the limits (from_prior).
+  absl::StatusOr<PlanOutcome> Plan(PlanInput input);
+
+  // Whether the training policy asks for a round now.
+  bool WantsTraining() const;
+  // Trains one round on the caller's thread (warm start from the published model), publishes
+  // the new version and writes its checkpoint. FailedPrecondition with too few transitions.
+  absl::StatusOr<std::shared_ptr<const PublishedModel>> TrainOnce();
+
+ private:
+  model::TransitionData Snapshot() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
+  void AddToDataset(const store::TransitionRecord& t) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+
+  const std::string robot_id_;
+  store::Store* const store_;
+
+  absl::Mutex append_mu_ ABSL_ACQUIRED_BEFORE(mu_);
+
+  mutable absl::Mutex mu_;
+  RobotConfig config_ ABSL_GUARDED_BY(mu_);
+  // The dataset, a row per transition, robot units.
+  std::vector<float> states_, actions_, next_states_, rewards_ ABSL_GUARDED_BY(mu_);
+  uint64_t last_seq_ ABSL_GUARDED_BY(mu_) = 0;
+  uint64_t last_episode_ ABSL_GUARDED_BY(mu_) = 0;
+  int new_since_training_ ABSL_GUARDED_BY(mu_) = 0;
+  bool episode_ended_ ABSL_GUARDED_BY(mu_) = false;
+  bool training_ ABSL_GUARDED_BY(mu_) = false;
+  bool last_round_failed_ ABSL_GUARDED_BY(mu_) = false;
+  std::shared_ptr<const PublishedModel> published_ ABSL_GUARDED_BY(mu_);
+  std::optional<plan::CemWarmStart> warm_start_ ABSL_GUARDED_BY(mu_);
+  uint64_t plans_ ABSL_GUARDED_BY(mu_) = 0;
+};
+
+}  // namespace foray::robot
+
+#endif  // FORAY_SERVER_ROBOT_RUNTIME_H_

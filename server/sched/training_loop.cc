@@ -1,0 +1,64 @@
+#include "server/sched/training_loop.h"
+
+#include <cstdio>
+#include <string>
+
+namespace foray::sched {
+
+TrainingLoop::TrainingLoop(RobotSource robots, absl::Duration idle_poll)
+    : robots_(std::move(robots)), idle_poll_(idle_poll) {}
+
+TrainingLoop::~TrainingLoop() { Stop(); }
+
+void TrainingLoop::Start() {
+  {
+    absl::MutexLock lock(&mu_);
+    stopping_ = false;
+  }
+  thread_ = std::thread([this] { Run(); });
+}
+
+void TrainingLoop::Stop() {
+  {
+    absl::MutexLock lock(&mu_);
+    stopping_ = true;
+  }
+  if (thread_.joinable()) thread_.join();
+}
+
+int TrainingLoop::rounds() const {
+  absl::MutexLock lock(&mu_);
+  return rounds_;
+}
+
+void TrainingLoop::Run() {
+  size_t next = 0;  // where the round robin resumes
+  for (;;) {
+    {
+      absl::MutexLock lock(&mu_);
+      if (stopping_) return;
+    }
+    const std::vector<std::shared_ptr<robot::RobotRuntime>> robots = robots_();
+    bool trained = false;
+    for (size_t i = 0; i < robots.size(); ++i) {
+      const auto& runtime = robots[(next + i) % robots.size()];
+      if (!runtime->WantsTraining()) continue;
+      auto published = runtime->TrainOnce();
+      if (!published.ok()) {
+        std::fprintf(stderr, "forayd: training robot %s failed: %s\n", runtime->robot_id().c_str(),
+                     std::string(published.status().message()).c_str());
+      }
+      next = (next + i + 1) % robots.size();
+      absl::MutexLock lock(&mu_);
+      ++rounds_;
+      trained = true;
+      break;  // one round, then look at every robot again from the next one
+    }
+    if (!trained) {
+      absl::MutexLock lock(&mu_);
+      mu_.AwaitWithTimeout(absl::Condition(&stopping_), idle_poll_);
+    }
+  }
+}
+
+}  // namespace foray::sched

@@ -1,0 +1,49 @@
+// The background trainer: one thread that visits the robots in turn (round robin, so that no
+// robot starves another) and runs a training round for each whose policy asks for one. Plans
+// never wait for it: they run on the rpc threads with the published model version.
+// Thread-safe; Stop() joins the thread (a round in progress finishes first).
+#ifndef FORAY_SERVER_SCHED_TRAINING_LOOP_H_
+#define FORAY_SERVER_SCHED_TRAINING_LOOP_H_
+
+#include <functional>
+#include <memory>
+#include <thread>
+#include <vector>
+
+#include "absl/base/thread_annotations.h"
+#include "absl/synchronization/mutex.h"
+#include "absl/time/time.h"
+#include "server/robot/runtime.h"
+
+namespace foray::sched {
+
+class TrainingLoop {
+ public:
+  // `robots` lists the current runtimes; it is called on every pass.
+  using RobotSource = std::function<std::vector<std::shared_ptr<robot::RobotRuntime>>()>;
+
+  // Not copyable or movable (owns a thread).
+  TrainingLoop(RobotSource robots, absl::Duration idle_poll = absl::Milliseconds(50));
+  TrainingLoop(const TrainingLoop&) = delete;
+  TrainingLoop& operator=(const TrainingLoop&) = delete;
+  ~TrainingLoop();
+
+  void Start();
+  void Stop();
+  // Training rounds finished since Start (for tests and monitoring).
+  int rounds() const;
+
+ private:
+  void Run();
+
+  const RobotSource robots_;
+  const absl::Duration idle_poll_;
+  mutable absl::Mutex mu_;
+  bool stopping_ ABSL_GUARDED_BY(mu_) = false;
+  int rounds_ ABSL_GUARDED_BY(mu_) = 0;
+  std::thread thread_;
+};
+
+}  // namespace foray::sched
+
+#endif  // FORAY_SERVER_SCHED_TRAINING_LOOP_H_

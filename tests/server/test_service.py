@@ -1,0 +1,313 @@
+"""The planning service end to end over loopback: registry, durable transitions, online
+training, plans, restart from checkpoints, auth, and validation of bad input.
+
+The store is inspected directly with Python's sqlite3 module (the database is the server's
+WAL-mode SQLite file), so "every acknowledged transition is stored exactly once" is checked
+against the file, not against the server's own answers.
+"""
+
+import math
+import os
+import sqlite3
+import threading
+import time
+
+import grpc
+import pytest
+
+from foray.v1 import registry_pb2 as reg
+from foray.v1 import registry_pb2_grpc
+from foray.v1 import session_pb2 as ses
+from foray.v1 import session_pb2_grpc
+from foray.v1 import types_pb2 as t
+
+CODE = grpc.StatusCode
+
+
+def spec(name, state_dim, action_dim, **training):
+    s = t.RobotSpec(name=name, control_period_s=0.05)
+    for k in range(state_dim):
+        s.state.add(label=f"x{k}", unit="m")
+    for j in range(action_dim):
+        s.action.add(label=f"u{j}", unit="N")
+        s.action_limits.add(min=-1.0, max=1.0, max_step=0.5)
+    s.model.hidden_widths.extend([32, 32])
+    s.training.min_transitions = training.get("min_transitions", 100)
+    s.training.every_n_transitions = training.get("every_n", 100)
+    s.training.max_epochs = training.get("max_epochs", 5)
+    s.planner.population = 100
+    s.planner.elites = 10
+    s.planner.horizon = 10
+    return s
+
+
+def transitions(state_dim, action_dim, first_seq, count, episode_len=50):
+    """A damped linear system of our own: x' = 0.95 x + 0.1 * mean(u) per dimension."""
+    out = []
+    x = [0.1 * (k + 1) for k in range(state_dim)]
+    for i in range(count):
+        seq = first_seq + i
+        u = [math.sin(0.3 * seq + j) for j in range(action_dim)]
+        nxt = [0.95 * v + 0.1 * sum(u) / action_dim for v in x]
+        out.append(t.Transition(seq=seq, episode=1 + (seq - 1) // episode_len,
+                                step=(seq - 1) % episode_len, state=x, action=u, next_state=nxt,
+                                reward=-sum(v * v for v in nxt),
+                                terminal=(seq % episode_len == 0)))
+        x = nxt
+    return out
+
+
+class Client:
+    def __init__(self, server):
+        self.channel = grpc.insecure_channel(server.address)
+        self.registry = registry_pb2_grpc.RobotRegistryStub(self.channel)
+        self.session = session_pb2_grpc.RobotSessionStub(self.channel)
+        self.admin = [("authorization", f"Bearer {server.admin_token}")]
+
+    def register(self, s):
+        return self.registry.RegisterRobot(reg.RegisterRobotRequest(spec=s), metadata=self.admin)
+
+    def append(self, robot, batch, token=None):
+        return self.session.AppendTransitions(
+            ses.AppendTransitionsRequest(robot_id=robot.robot.robot_id, transitions=batch),
+            metadata=[("authorization", f"Bearer {token or robot.token}")])
+
+    def plan(self, robot, state, deadline_ms=300, **kwargs):
+        return self.session.PlanActions(
+            ses.PlanActionsRequest(robot_id=robot.robot.robot_id,
+                                   request=t.PlanRequest(state=state, deadline_ms=deadline_ms, **kwargs)),
+            metadata=[("authorization", f"Bearer {robot.token}")])
+
+    def get(self, robot_id):
+        return self.registry.GetRobot(reg.GetRobotRequest(robot_id=robot_id), metadata=self.admin)
+
+    def wait_model(self, robot_id, version, timeout_s=90):
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            got = self.get(robot_id)
+            if got.model_version >= version:
+                return got
+            time.sleep(0.1)
+        raise AssertionError(f"robot {robot_id} did not reach model version {version}")
+
+
+def stored(server, robot_id):
+    db = sqlite3.connect(os.path.join(server.data_dir, "foray.db"))
+    try:
+        count, distinct = db.execute(
+            "SELECT COUNT(*), COUNT(DISTINCT seq) FROM transitions WHERE robot_id = ?",
+            (robot_id,)).fetchone()
+        return count, distinct
+    finally:
+        db.close()
+
+
+def expect_error(code, fragment, fn, *args, **kwargs):
+    with pytest.raises(grpc.RpcError) as info:
+        fn(*args, **kwargs)
+    assert info.value.code() == code, info.value.details()
+    assert fragment in info.value.details(), info.value.details()
+    return info.value.details()
+
+
+def test_three_robots_stream_concurrently_train_and_plan(forayd):
+    c = Client(forayd)
+    shapes = {"gantry": (4, 1), "wheel": (1, 1), "arm": (6, 2)}
+    robots = {name: c.register(spec(name, *dims)) for name, dims in shapes.items()}
+    errors = []
+
+    def stream(name):
+        sd, ad = shapes[name]
+        try:
+            for first in range(1, 401, 50):
+                ack = c.append(robots[name], transitions(sd, ad, first, 50))
+                assert ack.durable_seq == first + 49 and ack.accepted == 50
+        except Exception as e:  # reported below; a thread cannot fail the test itself
+            errors.append(e)
+
+    threads = [threading.Thread(target=stream, args=(name,)) for name in shapes]
+    for th in threads:
+        th.start()
+    for th in threads:
+        th.join(timeout=120)
+    assert not errors, errors
+    for name, (sd, ad) in shapes.items():
+        robot_id = robots[name].robot.robot_id
+        assert stored(forayd, robot_id) == (400, 400)  # every acked transition exactly once
+        got = c.wait_model(robot_id, 1)
+        assert got.transitions == 400 and got.last_seq == 400
+        plan = c.plan(robots[name], [0.0] * sd)
+        assert not plan.from_prior
+        assert plan.model_version >= 1
+        assert len(plan.steps) == 10
+        for step in plan.steps:
+            assert len(step.action) == ad
+            assert all(-1.0 <= a <= 1.0 for a in step.action)
+            assert len(step.predicted_state_mean) == sd
+        # The optimiser stops between iterations when the next one would not fit; the first
+        # always runs. Generous bound for a shared 2-core machine.
+        assert plan.compute_ms < 300 + 250, plan.compute_ms
+
+
+def test_plan_before_any_model_comes_from_the_prior_within_limits(forayd):
+    c = Client(forayd)
+    robot = c.register(spec("fresh", 2, 1))
+    plan = c.plan(robot, [0.0, 0.0], previous_action=[0.9])
+    assert plan.from_prior and plan.model_version == 0
+    assert len(plan.steps) == 10
+    previous = 0.9
+    for step in plan.steps:
+        assert -1.0 <= step.action[0] <= 1.0
+        assert abs(step.action[0] - previous) <= 0.5 + 1e-9  # rate limit from the spec
+        previous = step.action[0]
+
+
+def test_resent_transitions_are_acknowledged_but_not_duplicated(forayd):
+    c = Client(forayd)
+    robot = c.register(spec("resender", 2, 1))
+    assert c.append(robot, transitions(2, 1, 1, 30)).accepted == 30
+    ack = c.append(robot, transitions(2, 1, 21, 20))  # 21..30 again, 31..40 new
+    assert (ack.accepted, ack.duplicates, ack.durable_seq) == (10, 10, 40)
+    assert stored(forayd, robot.robot.robot_id) == (40, 40)
+
+
+def test_restart_serves_the_last_checkpoint_without_retraining(forayd):
+    c = Client(forayd)
+    robot = c.register(spec("restarter", 3, 1, min_transitions=50, every_n=1000))
+    c.append(robot, transitions(3, 1, 1, 120, episode_len=1000))
+    version = c.wait_model(robot.robot.robot_id, 1).model_version
+    assert forayd.restart() == 0
+    c = Client(forayd)
+    got = c.get(robot.robot.robot_id)
+    assert (got.transitions, got.last_seq, got.model_version) == (120, 120, version)
+    plan = c.plan(robot, [0.1, 0.2, 0.3])
+    assert not plan.from_prior and plan.model_version == version
+    time.sleep(1.0)  # the trainer would have started a round by now if it owed one
+    assert c.get(robot.robot.robot_id).model_version == version
+    assert "training robot" not in forayd.output()
+
+
+def test_tokens_reach_only_their_own_robot(forayd):
+    c = Client(forayd)
+    a = c.register(spec("alpha", 1, 1))
+    b = c.register(spec("beta", 1, 1))
+    batch = transitions(1, 1, 1, 5)
+    expect_error(CODE.PERMISSION_DENIED, "another robot", c.append, b, batch, token=a.token)
+    expect_error(CODE.PERMISSION_DENIED, "robot's own token", c.append, a, batch,
+                 token=forayd.admin_token)
+    expect_error(CODE.UNAUTHENTICATED, "not known", c.append, a, batch, token="0" * 64)
+    with pytest.raises(grpc.RpcError) as info:
+        c.session.AppendTransitions(ses.AppendTransitionsRequest(robot_id=a.robot.robot_id,
+                                                                 transitions=batch))
+    assert info.value.code() == CODE.UNAUTHENTICATED
+    assert "authorization" in info.value.details()
+    expect_error(CODE.PERMISSION_DENIED, "admin token", c.registry.ListRobots,
+                 reg.ListRobotsRequest(), metadata=[("authorization", f"Bearer {a.token}")])
+    expect_error(CODE.UNAUTHENTICATED, "credentials", c.registry.RegisterRobot,
+                 reg.RegisterRobotRequest(spec=spec("gamma", 1, 1)))
+    # A robot may read itself but not another.
+    own = c.registry.GetRobot(reg.GetRobotRequest(robot_id=a.robot.robot_id),
+                              metadata=[("authorization", f"Bearer {a.token}")])
+    assert own.spec.name == "alpha"
+    expect_error(CODE.PERMISSION_DENIED, "another robot", c.registry.GetRobot,
+                 reg.GetRobotRequest(robot_id=b.robot.robot_id),
+                 metadata=[("authorization", f"Bearer {a.token}")])
+    for robot_id in (a.robot.robot_id, b.robot.robot_id):
+        assert stored(forayd, robot_id) == (0, 0)
+    # Archiving ends a robot's access.
+    c.registry.ArchiveRobot(reg.ArchiveRobotRequest(robot_id=a.robot.robot_id), metadata=c.admin)
+    expect_error(CODE.PERMISSION_DENIED, "archived", c.append, a, batch)
+
+
+def test_bad_transitions_name_the_field_and_store_nothing(forayd):
+    c = Client(forayd)
+    robot = c.register(spec("validator", 2, 1))
+    c.append(robot, transitions(2, 1, 1, 10))
+
+    def modified(**change):
+        tr = transitions(2, 1, 11, 3)
+        for key, value in change.items():
+            field = getattr(tr[1], key)
+            if isinstance(value, list):
+                del field[:]
+                field.extend(value)
+            else:
+                setattr(tr[1], key, value)
+        return tr
+
+    cases = [
+        (modified(state=[0.1, 0.2, 0.3]), "transitions[1] (seq 12).state has 3 values"),
+        (modified(next_state=[0.1, float("nan")]), "next_state[1] is nan"),
+        (modified(action=[1.5]), "action[0] is 1.5, outside the limits [-1, 1]"),
+        (modified(reward=float("inf")), "reward is inf"),
+        (modified(seq=11), "transitions[1].seq is 11 after 11"),
+        ([], "transitions is empty"),
+    ]
+    for batch, fragment in cases:
+        expect_error(CODE.INVALID_ARGUMENT, fragment, c.append, robot, batch)
+    assert stored(forayd, robot.robot.robot_id) == (10, 10)
+    assert c.get(robot.robot.robot_id).last_seq == 10
+
+    expect_error(CODE.INVALID_ARGUMENT, "request.state has 3 values", c.plan, robot, [0.0] * 3)
+    expect_error(CODE.INVALID_ARGUMENT, "request.deadline_ms is 90000", c.plan, robot, [0.0, 0.0],
+                 deadline_ms=90000)
+    expect_error(CODE.INVALID_ARGUMENT, "elites is 500", c.plan, robot, [0.0, 0.0],
+                 planner=t.PlannerSettings(elites=500))
+    expect_error(CODE.NOT_FOUND, "not registered", c.get, "r-00000000")
+
+
+def test_bad_specs_name_the_field_and_register_nothing(forayd):
+    c = Client(forayd)
+    bad_name = spec("no spaces", 1, 1)
+    limits = spec("limits", 2, 2)
+    del limits.action_limits[1:]
+    inverted = spec("inverted", 1, 1)
+    inverted.action_limits[0].min = 2.0
+    planner = spec("planner", 1, 1)
+    planner.planner.elites = 1000
+    period = spec("period", 1, 1)
+    period.control_period_s = 0
+    for s, fragment in [(bad_name, "spec.name \"no spaces\" has the character ' '"),
+                        (limits, "spec.action_limits has 1 entries, spec.action has 2"),
+                        (inverted, "spec.action_limits[0] has min 2 and max 1"),
+                        (planner, "spec.planner: elites is 1000"),
+                        (period, "spec.control_period_s is 0")]:
+        expect_error(CODE.INVALID_ARGUMENT, fragment, c.register, s)
+    listed = c.registry.ListRobots(reg.ListRobotsRequest(include_archived=True), metadata=c.admin)
+    assert len(listed.robots) == 0
+
+
+def test_settings_change_live(forayd):
+    c = Client(forayd)
+    robot = c.register(spec("tunable", 1, 1))
+    assert len(c.plan(robot, [0.0]).steps) == 10
+    c.registry.UpdateRobotSettings(
+        reg.UpdateRobotSettingsRequest(robot_id=robot.robot.robot_id,
+                                       planner=t.PlannerSettings(horizon=7, population=100, elites=10)),
+        metadata=c.admin)
+    assert len(c.plan(robot, [0.0]).steps) == 7
+    expect_error(CODE.INVALID_ARGUMENT, "elites is 50", c.registry.UpdateRobotSettings,
+                 reg.UpdateRobotSettingsRequest(robot_id=robot.robot.robot_id,
+                                                planner=t.PlannerSettings(population=20, elites=50)),
+                 metadata=c.admin)
+    assert c.get(robot.robot.robot_id).spec.planner.horizon == 7
+
+
+def test_session_stream_acks_plans_and_survives_a_bad_message(forayd):
+    c = Client(forayd)
+    robot = c.register(spec("streamer", 2, 1))
+    auth = [("authorization", f"Bearer {robot.token}")]
+    good = transitions(2, 1, 1, 3)
+    bad = t.Transition(seq=4, state=[0.0], action=[0.0], next_state=[0.0, 0.0])
+    messages = [ses.SessionClientMessage(hello=ses.Hello(robot_id=robot.robot.robot_id, client="test"))]
+    messages += [ses.SessionClientMessage(transition=tr) for tr in good]
+    messages.append(ses.SessionClientMessage(transition=bad))
+    messages.append(ses.SessionClientMessage(plan_request=t.PlanRequest(request_id=77, state=[0.0, 0.0])))
+    replies = list(c.session.Connect(iter(messages), metadata=auth, timeout=30))
+    assert replies[0].HasField("welcome") and replies[0].welcome.last_seq == 0
+    assert [r.ack.durable_seq for r in replies[1:4]] == [1, 2, 3]
+    assert replies[4].HasField("error")
+    assert replies[4].error.code == 3 and replies[4].error.seq == 4
+    assert "state has 1 values" in replies[4].error.message
+    assert replies[5].HasField("plan") and replies[5].plan.request_id == 77
+    assert stored(forayd, robot.robot.robot_id) == (3, 3)
