@@ -15,6 +15,8 @@ PACKAGES=(
   libabsl-dev            # Abseil: status, flags, strings, synchronisation
   libeigen3-dev          # Eigen: the linear algebra of the models and planner
   libsqlite3-dev         # SQLite: the embedded store
+  libssl-dev             # OpenSSL: SHA-256 of tokens
+  openssl                # certificates for the TLS tests
   libgtest-dev           # GoogleTest: C++ unit tests
   libgmock-dev           # GoogleMock
   libbenchmark-dev       # Google Benchmark

@@ -1,7 +1,7 @@
 // forayd: the Foray planning server.
 //
-// Serves the foray.v1 gRPC services (registry and robot sessions; models and monitoring are
-// registered and answer UNIMPLEMENTED for now), standard gRPC health checking and server
+// Serves the foray.v1 gRPC services (registry, robot sessions and models; monitoring is
+// registered and answers UNIMPLEMENTED for now), standard gRPC health checking and server
 // reflection, trains each robot's ensemble in the background, and stops cleanly on SIGINT or
 // SIGTERM: no new calls, in-flight calls finish within the grace period, the trainer finishes
 // its round, the database closes.
@@ -60,7 +60,6 @@ constexpr char kCaution[] =
 // The foray.v1 services not implemented yet: registered from the generated bases, so every
 // rpc answers UNIMPLEMENTED and the contract stays visible through reflection.
 struct PendingServices {
-  foray::v1::Models::Service models;
   foray::v1::Monitoring::Service monitoring;
 };
 
@@ -148,6 +147,7 @@ int main(int argc, char** argv) {
 
   foray::api::RegistryService registry(&directory);
   foray::api::SessionService session(&directory);
+  foray::api::ModelsService models(&directory);
   PendingServices pending;
   grpc::ServerBuilder builder;
   int bound_port = 0;
@@ -155,7 +155,7 @@ int main(int argc, char** argv) {
   builder.AddListeningPort(listen, grpc::InsecureServerCredentials(), &bound_port);
   builder.RegisterService(&registry);
   builder.RegisterService(&session);
-  builder.RegisterService(&pending.models);
+  builder.RegisterService(&models);
   builder.RegisterService(&pending.monitoring);
   std::unique_ptr<grpc::Server> server = builder.BuildAndStart();
   if (server == nullptr || bound_port == 0) {

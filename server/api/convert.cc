@@ -1,6 +1,7 @@
 #include "server/api/convert.h"
 
 #include <cmath>
+#include <cstring>
 #include <limits>
 #include <string>
 
@@ -294,6 +295,143 @@ absl::StatusOr<std::vector<store::TransitionRecord>> TransitionsFromWire(
     out.push_back(std::move(r));
   }
   return out;
+}
+
+namespace {
+
+std::string FloatBytes(const float* data, int count) {
+  return std::string(reinterpret_cast<const char*>(data), sizeof(float) * count);
+}
+
+absl::Status ReadFloats(const std::string& bytes, int count, const std::string& field, float* out) {
+  if (bytes.size() != sizeof(float) * static_cast<size_t>(count)) {
+    return Invalid(absl::StrFormat("model.%s has %d bytes, expected %d (%d float32)", field,
+                                   bytes.size(), sizeof(float) * count, count));
+  }
+  std::memcpy(out, bytes.data(), bytes.size());
+  for (int i = 0; i < count; ++i) {
+    if (!std::isfinite(out[i])) {
+      return Invalid(absl::StrFormat("model.%s[%d] is %g, must be finite", field, i, out[i]));
+    }
+  }
+  return absl::OkStatus();
+}
+
+}  // namespace
+
+v1::EnsembleModel EnsembleToWire(const model::Ensemble& e) {
+  v1::EnsembleModel w;
+  w.set_format(1);
+  w.set_model_version(e.version());
+  w.set_state_dim(e.state_dim());
+  w.set_action_dim(e.action_dim());
+  switch (e.activation()) {
+    case model::Activation::kSilu: w.set_activation(v1::ModelSettings::ACTIVATION_SILU); break;
+    case model::Activation::kRelu: w.set_activation(v1::ModelSettings::ACTIVATION_RELU); break;
+    case model::Activation::kTanh: w.set_activation(v1::ModelSettings::ACTIVATION_TANH); break;
+  }
+  for (int b = 0; b < e.size(); ++b) {
+    v1::EnsembleModel::Member* member = w.add_members();
+    const float* p = e.params().col(b).data();
+    for (int l = 0; l < e.num_layers(); ++l) {
+      v1::EnsembleModel::Layer* layer = member->add_layers();
+      layer->set_rows(e.layer_fan_in(l));
+      layer->set_cols(e.layer_fan_out(l));
+      layer->set_weights(FloatBytes(p + e.weight_offset(l), e.layer_fan_in(l) * e.layer_fan_out(l)));
+      layer->set_bias(FloatBytes(p + e.bias_offset(l), e.layer_fan_out(l)));
+    }
+  }
+  w.set_input_mean(FloatBytes(e.input_normalizer().mean().data(), e.input_dim()));
+  w.set_input_std(FloatBytes(e.input_normalizer().std().data(), e.input_dim()));
+  w.set_output_mean(FloatBytes(e.output_normalizer().mean().data(), e.output_dim()));
+  w.set_output_std(FloatBytes(e.output_normalizer().std().data(), e.output_dim()));
+  w.set_max_log_var(FloatBytes(e.max_log_var().data(), e.output_dim()));
+  w.set_min_log_var(FloatBytes(e.min_log_var().data(), e.output_dim()));
+  return w;
+}
+
+absl::StatusOr<model::Ensemble> EnsembleFromWire(const v1::EnsembleModel& w) {
+  if (w.format() != 1) {
+    return Invalid(absl::StrFormat("model.format is %d; this server reads format 1", w.format()));
+  }
+  if (w.members_size() < 1) return Invalid("model.members is empty");
+  const v1::EnsembleModel::Member& first = w.members(0);
+  if (first.layers_size() < 2) {
+    return Invalid(absl::StrFormat("model.members[0] has %d layers, needs at least 2",
+                                   first.layers_size()));
+  }
+  model::EnsembleOptions options;
+  options.ensemble_size = w.members_size();
+  options.hidden_widths.clear();
+  for (int l = 0; l + 1 < first.layers_size(); ++l) {
+    options.hidden_widths.push_back(static_cast<int>(first.layers(l).cols()));
+  }
+  switch (w.activation()) {
+    case v1::ModelSettings::ACTIVATION_UNSPECIFIED:
+    case v1::ModelSettings::ACTIVATION_SILU: options.activation = model::Activation::kSilu; break;
+    case v1::ModelSettings::ACTIVATION_RELU: options.activation = model::Activation::kRelu; break;
+    case v1::ModelSettings::ACTIVATION_TANH: options.activation = model::Activation::kTanh; break;
+    default: return Invalid(absl::StrFormat("model.activation is %d, not a known value",
+                                            static_cast<int>(w.activation())));
+  }
+  absl::StatusOr<model::Ensemble> created = model::Ensemble::Create(
+      static_cast<int>(w.state_dim()), static_cast<int>(w.action_dim()), options, 1);
+  if (!created.ok()) return Invalid(absl::StrCat("model: ", created.status().message()));
+  model::Ensemble e = *std::move(created);
+  for (int b = 0; b < e.size(); ++b) {
+    const v1::EnsembleModel::Member& member = w.members(b);
+    if (member.layers_size() != e.num_layers()) {
+      return Invalid(absl::StrFormat("model.members[%d] has %d layers, members[0] has %d", b,
+                                     member.layers_size(), e.num_layers()));
+    }
+    float* p = e.mutable_params().col(b).data();
+    for (int l = 0; l < e.num_layers(); ++l) {
+      const v1::EnsembleModel::Layer& layer = member.layers(l);
+      const std::string at = absl::StrFormat("members[%d].layers[%d]", b, l);
+      if (static_cast<int>(layer.rows()) != e.layer_fan_in(l) ||
+          static_cast<int>(layer.cols()) != e.layer_fan_out(l)) {
+        return Invalid(absl::StrFormat("model.%s is %dx%d, the architecture needs %dx%d", at,
+                                       layer.rows(), layer.cols(), e.layer_fan_in(l),
+                                       e.layer_fan_out(l)));
+      }
+      if (absl::Status s = ReadFloats(layer.weights(), e.layer_fan_in(l) * e.layer_fan_out(l),
+                                      at + ".weights", p + e.weight_offset(l));
+          !s.ok()) {
+        return s;
+      }
+      if (absl::Status s = ReadFloats(layer.bias(), e.layer_fan_out(l), at + ".bias",
+                                      p + e.bias_offset(l));
+          !s.ok()) {
+        return s;
+      }
+    }
+  }
+  const int in = e.input_dim(), out = e.output_dim();
+  struct Vec {
+    const std::string* bytes;
+    int count;
+    const char* field;
+    Eigen::VectorXf* target;
+  };
+  Eigen::VectorXf in_mean(in), in_std(in), out_mean(out), out_std(out), max_lv(out), min_lv(out);
+  for (const Vec& v : {Vec{&w.input_mean(), in, "input_mean", &in_mean},
+                       Vec{&w.input_std(), in, "input_std", &in_std},
+                       Vec{&w.output_mean(), out, "output_mean", &out_mean},
+                       Vec{&w.output_std(), out, "output_std", &out_std},
+                       Vec{&w.max_log_var(), out, "max_log_var", &max_lv},
+                       Vec{&w.min_log_var(), out, "min_log_var", &min_lv}}) {
+    if (absl::Status s = ReadFloats(*v.bytes, v.count, v.field, v.target->data()); !s.ok()) return s;
+  }
+  if ((in_std.array() <= 0).any() || (out_std.array() <= 0).any()) {
+    return Invalid("model.input_std and model.output_std must be > 0");
+  }
+  e.mutable_input_normalizer().mutable_mean() = in_mean;
+  e.mutable_input_normalizer().mutable_std() = in_std;
+  e.mutable_output_normalizer().mutable_mean() = out_mean;
+  e.mutable_output_normalizer().mutable_std() = out_std;
+  e.mutable_max_log_var() = max_lv;
+  e.mutable_min_log_var() = min_lv;
+  return e;
 }
 
 }  // namespace foray::api

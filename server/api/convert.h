@@ -10,6 +10,9 @@
 #include "absl/status/statusor.h"
 #include "absl/time/time.h"
 #include "core/plan/planner.h"
+#include "core/model/ensemble.h"
+#include "core/model/trainer.h"
+#include "foray/v1/models.pb.h"
 #include "foray/v1/types.pb.h"
 #include "grpcpp/support/status.h"
 #include "server/robot/config.h"
@@ -38,6 +41,11 @@ absl::Status ApplyObjectiveSettings(const v1::ObjectiveSettings& settings, int s
 absl::StatusOr<std::vector<store::TransitionRecord>> TransitionsFromWire(
     const google::protobuf::RepeatedPtrField<v1::Transition>& transitions,
     const robot::RobotConfig& config);
+
+// The wire form of an ensemble (format 1) and back. EnsembleFromWire checks the format, the
+// architecture against the layers' shapes, byte lengths and finite values, naming the field.
+v1::EnsembleModel EnsembleToWire(const model::Ensemble& ensemble);
+absl::StatusOr<model::Ensemble> EnsembleFromWire(const v1::EnsembleModel& wire);
 
 }  // namespace foray::api
 

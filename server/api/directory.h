@@ -57,6 +57,8 @@ class RobotDirectory {
                                                               const std::string& robot_id,
                                                               bool admin_ok) const;
 
+  store::Store* store() const { return store_; }
+
   // The wire view of an entry, with its current figures.
   static v1::Robot ToWire(const RobotEntry& entry);
 

@@ -5,6 +5,8 @@
 #include <limits>
 
 #include "absl/strings/str_format.h"
+#include "core/explore/information_gain.h"
+#include "core/model/serialize.h"
 #include "server/api/convert.h"
 
 namespace foray::api {
@@ -249,6 +251,189 @@ grpc::Status SessionService::Connect(
     }
     if (!stream->Write(out)) break;
   }
+  return grpc::Status::OK;
+}
+
+namespace {
+
+absl::StatusOr<std::shared_ptr<const robot::PublishedModel>> PublishedOf(const RobotEntry& entry) {
+  std::shared_ptr<const robot::PublishedModel> model = entry.runtime->published();
+  if (model == nullptr) {
+    return absl::FailedPreconditionError(absl::StrFormat(
+        "robot \"%s\" has no model yet; it trains once it has %d transitions",
+        entry.spec.name(), entry.runtime->config().policy.min_transitions));
+  }
+  return model;
+}
+
+absl::Status PredictRows(const RobotEntry& entry, const v1::PredictRequest& request,
+                         v1::PredictResponse* response) {
+  auto model = PublishedOf(entry);
+  if (!model.ok()) return model.status();
+  const robot::RobotConfig config = entry.runtime->config();
+  const int n = request.rows_size(), sd = config.state_dim, ad = config.action_dim;
+  if (n < 1 || n > 10000) {
+    return absl::InvalidArgumentError(absl::StrFormat("rows has %d entries, send 1..10000", n));
+  }
+  std::vector<float> states(static_cast<size_t>(n) * sd), actions(static_cast<size_t>(n) * ad);
+  for (int r = 0; r < n; ++r) {
+    const v1::PredictRequest::Row& row = request.rows(r);
+    if (row.state_size() != sd || row.action_size() != ad) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "rows[%d] has %d state and %d action values, robot \"%s\" expects %d and %d", r,
+          row.state_size(), row.action_size(), config.name, sd, ad));
+    }
+    for (int k = 0; k < sd; ++k) states[r * sd + k] = static_cast<float>(row.state(k));
+    for (int j = 0; j < ad; ++j) actions[r * ad + j] = static_cast<float>(row.action(j));
+  }
+  for (float v : states) {
+    if (!std::isfinite(v)) return absl::InvalidArgumentError("rows: a state value is not finite");
+  }
+  for (float v : actions) {
+    if (!std::isfinite(v)) return absl::InvalidArgumentError("rows: an action value is not finite");
+  }
+  explore::ObjectiveOptions estimator;
+  v1::ObjectiveSettings settings;
+  settings.set_estimator(request.estimator());
+  if (absl::Status s = ApplyObjectiveSettings(settings, sd, ad, &estimator); !s.ok()) return s;
+
+  plan::MemberPredictions pred;
+  (*model)->rollout->Evaluate(states.data(), actions.data(), n, &pred);
+  const int nb = pred.members, od = pred.output_dim;
+  explore::GaussianSet<float> set;
+  set.members = nb;
+  set.rows = n;
+  set.dim = sd;
+  set.mean = pred.mean.data();
+  set.log_var = pred.log_var.data();
+  set.member_stride = static_cast<std::ptrdiff_t>(n) * od;
+  set.row_stride = od;
+  std::vector<float> gain(n);
+  explore::Information(estimator.estimator, set, gain.data(), estimator.monte_carlo_samples, 1);
+  for (int r = 0; r < n; ++r) {
+    v1::PredictResponse::Row* row = response->add_rows();
+    for (int b = 0; b < nb; ++b) {
+      const size_t at = (static_cast<size_t>(b) * n + r) * od;
+      v1::GaussianPrediction* next = row->add_next_state();
+      for (int k = 0; k < sd; ++k) {
+        next->add_mean(states[r * sd + k] + pred.mean[at + k] * pred.scale[k] + pred.offset[k]);
+        next->add_variance(std::exp(pred.log_var[at + k]) * pred.scale[k] * pred.scale[k]);
+      }
+      v1::GaussianPrediction* reward = row->add_reward();
+      reward->add_mean(pred.mean[at + sd] * pred.scale[sd] + pred.offset[sd]);
+      reward->add_variance(std::exp(pred.log_var[at + sd]) * pred.scale[sd] * pred.scale[sd]);
+    }
+    row->set_information_gain(gain[r]);
+  }
+  response->set_model_version((*model)->version);
+  return absl::OkStatus();
+}
+
+}  // namespace
+
+grpc::Status ModelsService::Predict(grpc::ServerContext* context, const v1::PredictRequest* request,
+                                    v1::PredictResponse* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  return ToGrpc(PredictRows(**entry, *request, response));
+}
+
+grpc::Status ModelsService::TrainNow(grpc::ServerContext* context,
+                                     const v1::TrainNowRequest* request,
+                                     v1::TrainNowResponse* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  const robot::RobotRuntime& runtime = *(*entry)->runtime;
+  if (runtime.Status().transitions < 2) {
+    return ToGrpc(absl::FailedPreconditionError(absl::StrFormat(
+        "robot \"%s\" has %d transitions; training needs at least 2", (*entry)->spec.name(),
+        runtime.Status().transitions)));
+  }
+  const uint64_t before = runtime.Status().model_version;
+  (*entry)->runtime->RequestTraining();
+  if (!request->wait()) return grpc::Status::OK;
+  // The trainer picks the request up; wait for the version it publishes (bounded by the call's
+  // deadline and by ten minutes).
+  const absl::Time give_up = absl::Now() + absl::Minutes(10);
+  while (runtime.Status().model_version == before) {
+    if (context->IsCancelled() || absl::Now() > give_up) {
+      return grpc::Status(grpc::StatusCode::DEADLINE_EXCEEDED,
+                          "the training round did not finish in time; it goes on in the background");
+    }
+    absl::SleepFor(absl::Milliseconds(20));
+  }
+  auto model = runtime.published();
+  *response->mutable_report() = robot::ReportToWire(*model);
+  return grpc::Status::OK;
+}
+
+grpc::Status ModelsService::ListCheckpoints(grpc::ServerContext* context,
+                                            const v1::ListCheckpointsRequest* request,
+                                            v1::ListCheckpointsResponse* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  auto list = directory_->store()->ListCheckpoints(request->robot_id());
+  if (!list.ok()) return ToGrpc(list.status());
+  for (const store::CheckpointRecord& c : *list) {
+    v1::Checkpoint* out = response->add_checkpoints();
+    out->set_model_version(c.model_version);
+    out->mutable_report()->ParseFromString(c.report);
+    out->mutable_created_at()->set_seconds(absl::ToUnixSeconds(c.created_at));
+    out->set_size_bytes(c.size_bytes);
+  }
+  return grpc::Status::OK;
+}
+
+grpc::Status ModelsService::RestoreCheckpoint(grpc::ServerContext* context,
+                                              const v1::RestoreCheckpointRequest* request,
+                                              v1::TrainingReport* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  if (request->model_version() == 0) {
+    return ToGrpc(absl::InvalidArgumentError("model_version is 0; name the version to restore"));
+  }
+  auto checkpoint = directory_->store()->GetCheckpoint(request->robot_id(), request->model_version());
+  if (!checkpoint.ok()) return ToGrpc(checkpoint.status());
+  auto ensemble = model::DeserializeEnsemble(checkpoint->model);
+  if (!ensemble.ok()) return ToGrpc(ensemble.status());
+  v1::TrainingReport old_report;
+  old_report.ParseFromString(checkpoint->report);
+  auto published = (*entry)->runtime->PublishModel(*std::move(ensemble),
+                                                   robot::ReportFromWire(old_report, nullptr));
+  if (!published.ok()) return ToGrpc(published.status());
+  *response = robot::ReportToWire(**published);
+  return grpc::Status::OK;
+}
+
+grpc::Status ModelsService::ExportModel(grpc::ServerContext* context,
+                                        const v1::ExportModelRequest* request,
+                                        v1::EnsembleModel* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  if (request->model_version() == 0) {
+    auto model = PublishedOf(**entry);
+    if (!model.ok()) return ToGrpc(model.status());
+    *response = EnsembleToWire((*model)->ensemble);
+    return grpc::Status::OK;
+  }
+  auto checkpoint = directory_->store()->GetCheckpoint(request->robot_id(), request->model_version());
+  if (!checkpoint.ok()) return ToGrpc(checkpoint.status());
+  auto ensemble = model::DeserializeEnsemble(checkpoint->model);
+  if (!ensemble.ok()) return ToGrpc(ensemble.status());
+  *response = EnsembleToWire(*ensemble);
+  return grpc::Status::OK;
+}
+
+grpc::Status ModelsService::ImportModel(grpc::ServerContext* context,
+                                        const v1::ImportModelRequest* request,
+                                        v1::TrainingReport* response) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  auto ensemble = EnsembleFromWire(request->model());
+  if (!ensemble.ok()) return ToGrpc(ensemble.status());
+  auto published = (*entry)->runtime->PublishModel(*std::move(ensemble), model::TrainingReport{});
+  if (!published.ok()) return ToGrpc(published.status());
+  *response = robot::ReportToWire(**published);
   return grpc::Status::OK;
 }
 

@@ -4,6 +4,7 @@
 #ifndef FORAY_SERVER_API_SERVICES_H_
 #define FORAY_SERVER_API_SERVICES_H_
 
+#include "foray/v1/models.grpc.pb.h"
 #include "foray/v1/registry.grpc.pb.h"
 #include "foray/v1/session.grpc.pb.h"
 #include "server/api/directory.h"
@@ -42,6 +43,29 @@ class SessionService final : public v1::RobotSession::Service {
                                  v1::Ack* response) override;
   grpc::Status PlanActions(grpc::ServerContext* context, const v1::PlanActionsRequest* request,
                            v1::Plan* response) override;
+
+ private:
+  RobotDirectory* const directory_;
+};
+
+class ModelsService final : public v1::Models::Service {
+ public:
+  explicit ModelsService(RobotDirectory* directory) : directory_(directory) {}
+
+  grpc::Status Predict(grpc::ServerContext* context, const v1::PredictRequest* request,
+                       v1::PredictResponse* response) override;
+  grpc::Status TrainNow(grpc::ServerContext* context, const v1::TrainNowRequest* request,
+                        v1::TrainNowResponse* response) override;
+  grpc::Status ListCheckpoints(grpc::ServerContext* context,
+                               const v1::ListCheckpointsRequest* request,
+                               v1::ListCheckpointsResponse* response) override;
+  grpc::Status RestoreCheckpoint(grpc::ServerContext* context,
+                                 const v1::RestoreCheckpointRequest* request,
+                                 v1::TrainingReport* response) override;
+  grpc::Status ExportModel(grpc::ServerContext* context, const v1::ExportModelRequest* request,
+                           v1::EnsembleModel* response) override;
+  grpc::Status ImportModel(grpc::ServerContext* context, const v1::ImportModelRequest* request,
+                           v1::TrainingReport* response) override;
 
  private:
   RobotDirectory* const directory_;

@@ -11,9 +11,9 @@
 namespace foray::robot {
 namespace {
 
-// Checkpoints keep the training report as the wire's TrainingReport, so that listing them
-// needs no conversion.
-std::string EncodeReport(const PublishedModel& m) {
+}  // namespace
+
+v1::TrainingReport ReportToWire(const PublishedModel& m) {
   v1::TrainingReport r;
   r.set_model_version(m.version);
   r.set_epochs(static_cast<uint32_t>(m.report.epochs));
@@ -25,13 +25,11 @@ std::string EncodeReport(const PublishedModel& m) {
   for (double v : m.report.within_2sigma) r.add_within_2sigma(v);
   r.set_duration_s(m.training_seconds);
   r.mutable_finished_at()->set_seconds(absl::ToUnixSeconds(m.finished_at));
-  return r.SerializeAsString();
+  return r;
 }
 
-model::TrainingReport DecodeReport(const std::string& bytes, double* seconds) {
-  v1::TrainingReport r;
+model::TrainingReport ReportFromWire(const v1::TrainingReport& r, double* seconds) {
   model::TrainingReport out;
-  if (!r.ParseFromString(bytes)) return out;
   out.epochs = static_cast<int>(r.epochs());
   out.transitions = static_cast<int>(r.transitions());
   out.train_nll = r.train_nll();
@@ -39,11 +37,13 @@ model::TrainingReport DecodeReport(const std::string& bytes, double* seconds) {
   out.holdout_mse = r.holdout_mse();
   out.within_1sigma.assign(r.within_1sigma().begin(), r.within_1sigma().end());
   out.within_2sigma.assign(r.within_2sigma().begin(), r.within_2sigma().end());
-  *seconds = r.duration_s();
+  if (seconds != nullptr) *seconds = r.duration_s();
   return out;
 }
 
-std::shared_ptr<const PublishedModel> Publish(uint64_t version, model::Ensemble ensemble,
+namespace {
+
+std::shared_ptr<const PublishedModel> MakePublished(uint64_t version, model::Ensemble ensemble,
                                               model::TrainingReport report, double seconds,
                                               absl::Time finished_at) {
   auto m = std::make_shared<PublishedModel>();
@@ -119,8 +119,10 @@ absl::Status RobotRuntime::Load() {
           checkpoint->model_version, ensemble.status().message()));
     }
     double seconds = 0.0;
-    model::TrainingReport report = DecodeReport(checkpoint->report, &seconds);
-    published = Publish(checkpoint->model_version, *std::move(ensemble), std::move(report),
+    v1::TrainingReport wire;
+    wire.ParseFromString(checkpoint->report);  // an unreadable report leaves zeros
+    model::TrainingReport report = ReportFromWire(wire, &seconds);
+    published = MakePublished(checkpoint->model_version, *std::move(ensemble), std::move(report),
                         seconds, checkpoint->created_at);
   } else if (checkpoint.status().code() != absl::StatusCode::kNotFound) {
     return checkpoint.status();
@@ -173,9 +175,16 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
   return result;
 }
 
+void RobotRuntime::RequestTraining() {
+  absl::MutexLock lock(&mu_);
+  training_requested_ = true;
+}
+
 bool RobotRuntime::WantsTraining() const {
   absl::MutexLock lock(&mu_);
-  if (training_ || static_cast<int>(rewards_.size()) < config_.policy.min_transitions) return false;
+  if (training_) return false;
+  if (training_requested_ && rewards_.size() >= 2) return true;
+  if (static_cast<int>(rewards_.size()) < config_.policy.min_transitions) return false;
   // After a failed round, wait for new data rather than fail again at once.
   if (last_round_failed_ && new_since_training_ == 0) return false;
   if (published_ == nullptr) return true;
@@ -211,10 +220,11 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce() 
     config = config_;
     start = published_;
     training_ = true;
+    training_requested_ = false;
     new_since_training_ = 0;
     episode_ended_ = false;
   }
-  const uint64_t version = start ? start->version + 1 : 1;
+  const uint64_t version = start ? start->version + 1 : 1;  // seeds the fresh model only
   auto finish = [&](absl::Status status) {
     absl::MutexLock lock(&mu_);
     training_ = false;
@@ -237,19 +247,43 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce() 
   if (!trained.ok()) return finish(trained.status());
   const double seconds =
       std::chrono::duration<double>(std::chrono::steady_clock::now() - begin).count();
-  std::shared_ptr<const PublishedModel> published = Publish(
-      version, std::move(trained->first), std::move(trained->second), seconds, absl::Now());
-
-  store::CheckpointRecord checkpoint;
-  checkpoint.model_version = version;
-  checkpoint.created_at = published->finished_at;
-  checkpoint.report = EncodeReport(*published);
-  checkpoint.model = model::SerializeEnsemble(published->ensemble);
-  if (absl::Status s = store_->PutCheckpoint(robot_id_, checkpoint); !s.ok()) return finish(s);
-
+  auto published = Publish(std::move(trained->first), std::move(trained->second), seconds);
+  if (!published.ok()) return finish(published.status());
   absl::MutexLock lock(&mu_);
   training_ = false;
   last_round_failed_ = false;
+  return published;
+}
+
+absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::PublishModel(
+    model::Ensemble ensemble, model::TrainingReport report) {
+  RobotConfig config = this->config();
+  if (ensemble.state_dim() != config.state_dim || ensemble.action_dim() != config.action_dim) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "the model has state_dim %d and action_dim %d, robot \"%s\" has %d and %d",
+        ensemble.state_dim(), ensemble.action_dim(), config.name, config.state_dim,
+        config.action_dim));
+  }
+  return Publish(std::move(ensemble), std::move(report), 0.0);
+}
+
+absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
+    model::Ensemble ensemble, model::TrainingReport report, double seconds) {
+  absl::MutexLock publish_lock(&publish_mu_);
+  uint64_t version;
+  {
+    absl::MutexLock lock(&mu_);
+    version = published_ ? published_->version + 1 : 1;
+  }
+  std::shared_ptr<const PublishedModel> published =
+      MakePublished(version, std::move(ensemble), std::move(report), seconds, absl::Now());
+  store::CheckpointRecord checkpoint;
+  checkpoint.model_version = version;
+  checkpoint.created_at = published->finished_at;
+  checkpoint.report = ReportToWire(*published).SerializeAsString();
+  checkpoint.model = model::SerializeEnsemble(published->ensemble);
+  if (absl::Status s = store_->PutCheckpoint(robot_id_, checkpoint); !s.ok()) return s;
+  absl::MutexLock lock(&mu_);
   published_ = published;
   return published;
 }

@@ -24,10 +24,16 @@
 #include "core/model/trainer.h"
 #include "core/plan/planner.h"
 #include "core/plan/rollout.h"
+#include "foray/v1/types.pb.h"
 #include "server/robot/config.h"
 #include "server/store/store.h"
 
 namespace foray::robot {
+
+// A published model's training report on the wire, and back (checkpoints store the wire form).
+struct PublishedModel;
+v1::TrainingReport ReportToWire(const PublishedModel& model);
+model::TrainingReport ReportFromWire(const v1::TrainingReport& report, double* seconds);
 
 // An immutable published model version. Shared as std::shared_ptr<const PublishedModel>:
 // planners keep the version they started with while training publishes the next one.
@@ -92,20 +98,32 @@ class RobotRuntime {
   // initial distribution within the limits (from_prior).
   absl::StatusOr<PlanOutcome> Plan(PlanInput input);
 
-  // Whether the training policy asks for a round now.
+  // Asks the trainer for a round as soon as possible (at least 2 transitions needed).
+  void RequestTraining();
+  // Whether the training policy (or a request) asks for a round now.
   bool WantsTraining() const;
   // Trains one round on the caller's thread (warm start from the published model), publishes
   // the new version and writes its checkpoint. FailedPrecondition with too few transitions.
   absl::StatusOr<std::shared_ptr<const PublishedModel>> TrainOnce();
 
+  // Publishes a model from elsewhere (a restored checkpoint or an import) as the next version
+  // and writes its checkpoint. InvalidArgument when its dimensions are not the robot's.
+  absl::StatusOr<std::shared_ptr<const PublishedModel>> PublishModel(model::Ensemble ensemble,
+                                                                     model::TrainingReport report);
+
  private:
   model::TransitionData Snapshot() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
+  absl::StatusOr<std::shared_ptr<const PublishedModel>> Publish(model::Ensemble ensemble,
+                                                                model::TrainingReport report,
+                                                                double seconds);
   void AddToDataset(const store::TransitionRecord& t) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
 
   const std::string robot_id_;
   store::Store* const store_;
 
   absl::Mutex append_mu_ ABSL_ACQUIRED_BEFORE(mu_);
+  // Serialises publishing: choosing the next version, writing its checkpoint, the swap.
+  absl::Mutex publish_mu_ ABSL_ACQUIRED_BEFORE(mu_);
 
   mutable absl::Mutex mu_;
   RobotConfig config_ ABSL_GUARDED_BY(mu_);
@@ -117,6 +135,7 @@ class RobotRuntime {
   bool episode_ended_ ABSL_GUARDED_BY(mu_) = false;
   bool training_ ABSL_GUARDED_BY(mu_) = false;
   bool last_round_failed_ ABSL_GUARDED_BY(mu_) = false;
+  bool training_requested_ ABSL_GUARDED_BY(mu_) = false;
   std::shared_ptr<const PublishedModel> published_ ABSL_GUARDED_BY(mu_);
   std::optional<plan::CemWarmStart> warm_start_ ABSL_GUARDED_BY(mu_);
   uint64_t plans_ ABSL_GUARDED_BY(mu_) = 0;

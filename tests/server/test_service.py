@@ -311,3 +311,95 @@ def test_session_stream_acks_plans_and_survives_a_bad_message(forayd):
     assert "state has 1 values" in replies[4].error.message
     assert replies[5].HasField("plan") and replies[5].plan.request_id == 77
     assert stored(forayd, robot.robot.robot_id) == (3, 3)
+
+
+def numpy_forward(model, states, actions):
+    """The EnsembleModel format written out in numpy (proto/foray/v1/models.proto): per member
+    y = x W + b per layer, SiLU between layers, then mean and log-variance with the soft bounds
+    lv = max - softplus(max - raw), lv = min + softplus(lv - min). Returns next-state means and
+    variances (members, rows, state_dim) in robot units."""
+    import numpy as np
+
+    def floats(b):
+        return np.frombuffer(b, dtype="<f4").astype(np.float64)
+
+    x = np.concatenate([states, actions], axis=1)
+    x = (x - floats(model.input_mean)) / floats(model.input_std)
+    softplus = lambda v: np.logaddexp(0.0, v)
+    out_mean, out_std = floats(model.output_mean), floats(model.output_std)
+    max_lv, min_lv = floats(model.max_log_var), floats(model.min_log_var)
+    d = model.state_dim + 1
+    means, variances = [], []
+    for member in model.members:
+        h = x
+        for i, layer in enumerate(member.layers):
+            w = floats(layer.weights).reshape(layer.cols, layer.rows).T  # column-major (rows, cols)
+            h = h @ w + floats(layer.bias)
+            if i + 1 < len(member.layers):
+                h = h / (1.0 + np.exp(-h))
+        mu, raw = h[:, :d], h[:, d:]
+        lv = max_lv - softplus(max_lv - raw)
+        lv = min_lv + softplus(lv - min_lv)
+        sd = model.state_dim
+        means.append(states + mu[:, :sd] * out_std[:sd] + out_mean[:sd])
+        variances.append(np.exp(lv[:, :sd]) * out_std[:sd] ** 2)
+    return np.array(means), np.array(variances)
+
+
+def test_models_predict_matches_the_exported_weights_and_checkpoints_restore(forayd):
+    import numpy as np
+    from foray.v1 import models_pb2 as mod
+    from foray.v1 import models_pb2_grpc
+
+    c = Client(forayd)
+    models = models_pb2_grpc.ModelsStub(c.channel)
+    robot = c.register(spec("modeller", 3, 1, min_transitions=50, every_n=100000))
+    auth = [("authorization", f"Bearer {robot.token}")]
+    rid = robot.robot.robot_id
+    rows = [mod.PredictRequest.Row(state=[0.1 * i, -0.2, 0.3], action=[0.5 - 0.1 * i]) for i in range(8)]
+    expect_error(CODE.FAILED_PRECONDITION, "no model yet", models.Predict,
+                 mod.PredictRequest(robot_id=rid, rows=rows), metadata=auth)
+    c.append(robot, transitions(3, 1, 1, 150, episode_len=1000))
+    assert c.wait_model(rid, 1).model_version == 1
+
+    predicted = models.Predict(mod.PredictRequest(robot_id=rid, rows=rows), metadata=auth)
+    exported = models.ExportModel(mod.ExportModelRequest(robot_id=rid), metadata=auth)
+    assert predicted.model_version == 1 and exported.model_version == 1
+    states = np.array([list(r.state) for r in rows])
+    actions = np.array([list(r.action) for r in rows])
+    ref_mean, ref_var = numpy_forward(exported, states, actions)
+    got_mean = np.array([[list(m.mean) for m in row.next_state] for row in predicted.rows]).transpose(1, 0, 2)
+    got_var = np.array([[list(m.variance) for m in row.next_state] for row in predicted.rows]).transpose(1, 0, 2)
+    assert got_mean.shape == (5, 8, 3)
+    np.testing.assert_allclose(got_mean, ref_mean, rtol=1e-4, atol=1e-5)
+    np.testing.assert_allclose(got_var, ref_var, rtol=1e-3)
+    # Pairwise-KL information gain (Kolchinsky & Tracey 2017) from the reference Gaussians.
+    for r, row in enumerate(predicted.rows):
+        mu, var = ref_mean[:, r, :], ref_var[:, r, :]
+        kl = 0.5 * (np.log(var[None] / var[:, None]) + var[:, None] / var[None]
+                    + (mu[:, None] - mu[None]) ** 2 / var[None] - 1).sum(-1)
+        expected = -np.mean(np.log(np.mean(np.exp(-kl), axis=1)))
+        assert abs(row.information_gain - expected) <= 1e-3 + 1e-3 * expected
+
+    report = models.TrainNow(mod.TrainNowRequest(robot_id=rid, wait=True), metadata=auth, timeout=120).report
+    assert report.model_version == 2 and report.epochs >= 1 and report.transitions == 150
+    listed = models.ListCheckpoints(mod.ListCheckpointsRequest(robot_id=rid), metadata=auth)
+    assert [cp.model_version for cp in listed.checkpoints] == [2, 1]
+    assert all(cp.size_bytes > 0 for cp in listed.checkpoints)
+
+    restored = models.RestoreCheckpoint(mod.RestoreCheckpointRequest(robot_id=rid, model_version=1),
+                                        metadata=auth)
+    assert restored.model_version == 3
+    again = models.ExportModel(mod.ExportModelRequest(robot_id=rid), metadata=auth)
+    assert again.model_version == 3
+    assert [l.weights for m in again.members for l in m.layers] == \
+        [l.weights for m in exported.members for l in m.layers]
+
+    wrong = mod.EnsembleModel()
+    wrong.CopyFrom(exported)
+    wrong.state_dim = 4
+    expect_error(CODE.INVALID_ARGUMENT, "members[0].layers[0] is 4x32", models.ImportModel,
+                 mod.ImportModelRequest(robot_id=rid, model=wrong), metadata=auth)
+    imported = models.ImportModel(mod.ImportModelRequest(robot_id=rid, model=exported), metadata=auth)
+    assert imported.model_version == 4
+    assert c.plan(robot, [0.0, 0.0, 0.0]).model_version == 4
