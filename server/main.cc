@@ -48,6 +48,9 @@ ABSL_FLAG(int, http_port, 0,
 ABSL_FLAG(std::string, admin_token_file, "",
           "File holding the admin token (first line). Empty: DATA_DIR/admin-token, created with "
           "a fresh random token (mode 0600) when missing.");
+ABSL_FLAG(std::string, tls_cert, "",
+          "PEM certificate chain of the server; with --tls_key, gRPC is served over TLS only.");
+ABSL_FLAG(std::string, tls_key, "", "PEM private key matching --tls_cert.");
 ABSL_FLAG(double, shutdown_grace_s, 5.0,
           "Seconds in-flight calls get to finish after SIGINT/SIGTERM before they are cancelled.");
 
@@ -62,6 +65,37 @@ constexpr char kCaution[] =
 struct PendingServices {
   foray::v1::Monitoring::Service monitoring;
 };
+
+bool ReadFile(const std::string& path, std::string* contents) {
+  std::ifstream in(path, std::ios::binary);
+  if (!in) return false;
+  std::ostringstream buffer;
+  buffer << in.rdbuf();
+  *contents = buffer.str();
+  return true;
+}
+
+// TLS when a certificate and key are configured, plaintext otherwise; nullptr on a bad setup.
+std::shared_ptr<grpc::ServerCredentials> Credentials(bool* tls) {
+  const std::string cert_path = absl::GetFlag(FLAGS_tls_cert);
+  const std::string key_path = absl::GetFlag(FLAGS_tls_key);
+  *tls = false;
+  if (cert_path.empty() && key_path.empty()) return grpc::InsecureServerCredentials();
+  if (cert_path.empty() || key_path.empty()) {
+    std::fprintf(stderr, "forayd: TLS needs both --tls_cert and --tls_key\n");
+    return nullptr;
+  }
+  grpc::SslServerCredentialsOptions::PemKeyCertPair pair;
+  if (!ReadFile(cert_path, &pair.cert_chain) || !ReadFile(key_path, &pair.private_key)) {
+    std::fprintf(stderr, "forayd: cannot read \"%s\" or \"%s\"\n", cert_path.c_str(),
+                 key_path.c_str());
+    return nullptr;
+  }
+  grpc::SslServerCredentialsOptions options;
+  options.pem_key_cert_pairs.push_back(std::move(pair));
+  *tls = true;
+  return grpc::SslServerCredentials(options);
+}
 
 // Reads the admin token from `path`, or creates the file with a fresh token when it is missing.
 bool LoadAdminToken(const std::filesystem::path& path, bool create, std::string* token) {
@@ -152,7 +186,10 @@ int main(int argc, char** argv) {
   grpc::ServerBuilder builder;
   int bound_port = 0;
   const std::string listen = absl::GetFlag(FLAGS_listen);
-  builder.AddListeningPort(listen, grpc::InsecureServerCredentials(), &bound_port);
+  bool tls = false;
+  std::shared_ptr<grpc::ServerCredentials> credentials = Credentials(&tls);
+  if (credentials == nullptr) return 2;
+  builder.AddListeningPort(listen, credentials, &bound_port);
   builder.RegisterService(&registry);
   builder.RegisterService(&session);
   builder.RegisterService(&models);
@@ -167,8 +204,9 @@ int main(int argc, char** argv) {
   trainer.Start();
 
   std::fprintf(stderr, "%s\n", kCaution);
-  std::fprintf(stderr, "forayd: serving gRPC on %s (port %d), data in %s, %zu robots\n",
-               listen.c_str(), bound_port, data_dir.c_str(), directory.List(true).size());
+  std::fprintf(stderr, "forayd: serving gRPC%s on %s (port %d), data in %s, %zu robots\n",
+               tls ? " over TLS" : "", listen.c_str(), bound_port, data_dir.c_str(),
+               directory.List(true).size());
   std::fflush(stderr);
 
   int signal_number = 0;

@@ -11,15 +11,17 @@ import pytest
 
 
 class Forayd:
-    def __init__(self, data_dir):
+    def __init__(self, data_dir, extra_args=()):
         self.data_dir = data_dir
+        self.extra_args = list(extra_args)
         self.log_path = os.path.join(data_dir, "forayd.log")
         self._start()
 
     def _start(self):
         self.log = open(self.log_path, "w+")
         self.process = subprocess.Popen(
-            [os.environ["FORAYD"], "--listen=127.0.0.1:0", f"--data_dir={self.data_dir}"],
+            [os.environ["FORAYD"], "--listen=127.0.0.1:0", f"--data_dir={self.data_dir}"]
+            + self.extra_args,
             stdout=self.log, stderr=subprocess.STDOUT)
         self.port = self._wait_for_port(timeout_s=20)
         self.address = f"127.0.0.1:{self.port}"

@@ -403,3 +403,34 @@ def test_models_predict_matches_the_exported_weights_and_checkpoints_restore(for
     imported = models.ImportModel(mod.ImportModelRequest(robot_id=rid, model=exported), metadata=auth)
     assert imported.model_version == 4
     assert c.plan(robot, [0.0, 0.0, 0.0]).model_version == 4
+
+
+def test_tls_when_a_certificate_and_key_are_given(tmp_path):
+    """A self-signed certificate for 127.0.0.1 made by openssl at test time."""
+    import subprocess
+    from conftest import Forayd
+
+    cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
+    subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
+                    "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1",
+                    "-keyout", str(key), "-out", str(cert)], check=True, capture_output=True)
+    data = tmp_path / "data"
+    data.mkdir()
+    server = Forayd(str(data), [f"--tls_cert={cert}", f"--tls_key={key}"])
+    try:
+        assert "over TLS" in server.output()
+        credentials = grpc.ssl_channel_credentials(root_certificates=cert.read_bytes())
+        with grpc.secure_channel(server.address, credentials) as channel:
+            stub = registry_pb2_grpc.RobotRegistryStub(channel)
+            robot = stub.RegisterRobot(reg.RegisterRobotRequest(spec=spec("secure", 1, 1)),
+                                       metadata=[("authorization", f"Bearer {server.admin_token}")],
+                                       timeout=10)
+            assert robot.robot.robot_id.startswith("r-")
+        with grpc.insecure_channel(server.address) as channel:
+            stub = registry_pb2_grpc.RobotRegistryStub(channel)
+            with pytest.raises(grpc.RpcError) as info:
+                stub.ListRobots(reg.ListRobotsRequest(),
+                                metadata=[("authorization", f"Bearer {server.admin_token}")], timeout=5)
+            assert info.value.code() == CODE.UNAVAILABLE
+    finally:
+        assert server.stop() == 0
