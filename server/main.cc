@@ -8,6 +8,7 @@
 
 #include <sys/stat.h>
 
+#include <algorithm>
 #include <csignal>
 #include <cstdio>
 #include <filesystem>
@@ -16,6 +17,7 @@
 #include <sstream>
 #include <string>
 #include <system_error>
+#include <thread>
 
 #include "absl/flags/flag.h"
 #include "absl/flags/parse.h"
@@ -168,19 +170,22 @@ int main(int argc, char** argv) {
     std::fprintf(stderr, "forayd: loading the robots failed: %s\n", std::string(s.message()).c_str());
     return 2;
   }
+  // One plan per core computes at a time; a few more may wait for a core.
+  const int cores = static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
+  foray::sched::PlanGate gate(cores, /*max_waiting=*/4 * cores);
   foray::sched::TrainingLoop trainer([&directory] {
     std::vector<std::shared_ptr<foray::robot::RobotRuntime>> runtimes;
     for (const auto& entry : directory.List(/*include_archived=*/false)) {
       runtimes.push_back(entry->runtime);
     }
     return runtimes;
-  });
+  }, &gate);
 
   grpc::EnableDefaultHealthCheckService(true);
   grpc::reflection::InitProtoReflectionServerBuilderPlugin();
 
   foray::api::RegistryService registry(&directory);
-  foray::api::SessionService session(&directory);
+  foray::api::SessionService session(&directory, &gate);
   foray::api::ModelsService models(&directory);
   PendingServices pending;
   grpc::ServerBuilder builder;

@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <cmath>
 #include <limits>
+#include <thread>
 
 #include "absl/strings/str_format.h"
 #include "core/explore/information_gain.h"
@@ -113,16 +114,6 @@ void PlanToWire(const robot::PlanOutcome& outcome, const robot::RobotConfig& con
   plan->set_request_id(request_id);
 }
 
-absl::Status Plan(const RobotEntry& entry, const v1::PlanRequest& request, v1::Plan* response) {
-  const robot::RobotConfig config = entry.runtime->config();
-  absl::StatusOr<robot::PlanInput> input = PlanInputFromWire(request, config);
-  if (!input.ok()) return input.status();
-  absl::StatusOr<robot::PlanOutcome> outcome = entry.runtime->Plan(*std::move(input));
-  if (!outcome.ok()) return outcome.status();
-  PlanToWire(*outcome, config, request.request_id(), response);
-  return absl::OkStatus();
-}
-
 absl::Status Append(const RobotEntry& entry,
                     const google::protobuf::RepeatedPtrField<v1::Transition>& transitions,
                     v1::Ack* ack) {
@@ -138,6 +129,33 @@ absl::Status Append(const RobotEntry& entry,
 }
 
 }  // namespace
+
+absl::Status SessionService::Plan(const RobotEntry& entry, const v1::PlanRequest& request,
+                                  v1::Plan* response) {
+  const absl::Time arrived = absl::Now();
+  const robot::RobotConfig config = entry.runtime->config();
+  absl::StatusOr<robot::PlanInput> input = PlanInputFromWire(request, config);
+  if (!input.ok()) return input.status();
+  // The deadline counts from arrival: time spent waiting for a core is the plan's own.
+  absl::StatusOr<sched::PlanGate::Ticket> ticket = gate_->Enter(arrived + input->budget);
+  if (!ticket.ok()) return ticket.status();
+  input->budget -= absl::Now() - arrived;
+  // Idle cores join this plan: its rollouts are split over them.
+  const int threads = 1 + ticket->Borrow(gate_->slots() - 1);
+  if (threads > 1) {
+    input->context.tasks = threads;
+    input->context.parallel = [](int n, const std::function<void(int)>& task) {
+      std::vector<std::thread> helpers;
+      for (int i = 1; i < n; ++i) helpers.emplace_back(task, i);
+      task(0);
+      for (std::thread& h : helpers) h.join();
+    };
+  }
+  absl::StatusOr<robot::PlanOutcome> outcome = entry.runtime->Plan(*std::move(input));
+  if (!outcome.ok()) return outcome.status();
+  PlanToWire(*outcome, config, request.request_id(), response);
+  return absl::OkStatus();
+}
 
 grpc::Status RegistryService::RegisterRobot(grpc::ServerContext* context,
                                             const v1::RegisterRobotRequest* request,

@@ -8,6 +8,7 @@
 #include "foray/v1/registry.grpc.pb.h"
 #include "foray/v1/session.grpc.pb.h"
 #include "server/api/directory.h"
+#include "server/sched/plan_gate.h"
 
 namespace foray::api {
 
@@ -33,7 +34,9 @@ class RegistryService final : public v1::RobotRegistry::Service {
 
 class SessionService final : public v1::RobotSession::Service {
  public:
-  explicit SessionService(RobotDirectory* directory) : directory_(directory) {}
+  // `gate` admits plans to the cores; both must outlive the service.
+  SessionService(RobotDirectory* directory, sched::PlanGate* gate)
+      : directory_(directory), gate_(gate) {}
 
   grpc::Status Connect(
       grpc::ServerContext* context,
@@ -45,7 +48,10 @@ class SessionService final : public v1::RobotSession::Service {
                            v1::Plan* response) override;
 
  private:
+  absl::Status Plan(const RobotEntry& entry, const v1::PlanRequest& request, v1::Plan* response);
+
   RobotDirectory* const directory_;
+  sched::PlanGate* const gate_;
 };
 
 class ModelsService final : public v1::Models::Service {

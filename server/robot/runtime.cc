@@ -204,7 +204,8 @@ model::TransitionData RobotRuntime::Snapshot() const {
   return d;
 }
 
-absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce() {
+absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce(
+    const std::function<void()>& between_epochs) {
   model::TransitionData data;
   RobotConfig config;
   std::shared_ptr<const PublishedModel> start;
@@ -243,11 +244,14 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce() 
   model::TrainingOptions options = config.training;
   options.seed = options.seed * 1000003u + version;
   const auto begin = std::chrono::steady_clock::now();
-  auto trained = model::TrainEnsemble(std::move(initial), data, options);
-  if (!trained.ok()) return finish(trained.status());
+  auto trainer = model::EnsembleTrainer::Create(std::move(initial), data, options);
+  if (!trainer.ok()) return finish(trainer.status());
+  while (!(*trainer)->RunEpoch()) {
+    if (between_epochs) between_epochs();
+  }
   const double seconds =
       std::chrono::duration<double>(std::chrono::steady_clock::now() - begin).count();
-  auto published = Publish(std::move(trained->first), std::move(trained->second), seconds);
+  auto published = Publish((*trainer)->best(), (*trainer)->Report(), seconds);
   if (!published.ok()) return finish(published.status());
   absl::MutexLock lock(&mu_);
   training_ = false;

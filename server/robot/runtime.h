@@ -11,6 +11,7 @@
 #define FORAY_SERVER_ROBOT_RUNTIME_H_
 
 #include <cstdint>
+#include <functional>
 #include <memory>
 #include <optional>
 #include <string>
@@ -103,8 +104,11 @@ class RobotRuntime {
   // Whether the training policy (or a request) asks for a round now.
   bool WantsTraining() const;
   // Trains one round on the caller's thread (warm start from the published model), publishes
-  // the new version and writes its checkpoint. FailedPrecondition with too few transitions.
-  absl::StatusOr<std::shared_ptr<const PublishedModel>> TrainOnce();
+  // the new version and writes its checkpoint. `between_epochs` (may be empty) runs after every
+  // epoch: the scheduler pauses training there while plans need the cores.
+  // FailedPrecondition with too few transitions.
+  absl::StatusOr<std::shared_ptr<const PublishedModel>> TrainOnce(
+      const std::function<void()>& between_epochs = {});
 
   // Publishes a model from elsewhere (a restored checkpoint or an import) as the next version
   // and writes its checkpoint. InvalidArgument when its dimensions are not the robot's.

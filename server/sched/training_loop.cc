@@ -5,8 +5,9 @@
 
 namespace foray::sched {
 
-TrainingLoop::TrainingLoop(RobotSource robots, absl::Duration idle_poll)
-    : robots_(std::move(robots)), idle_poll_(idle_poll) {}
+TrainingLoop::TrainingLoop(RobotSource robots, const PlanGate* gate, absl::Duration idle_poll,
+                           absl::Duration max_pause)
+    : robots_(std::move(robots)), gate_(gate), idle_poll_(idle_poll), max_pause_(max_pause) {}
 
 TrainingLoop::~TrainingLoop() { Stop(); }
 
@@ -43,7 +44,9 @@ void TrainingLoop::Run() {
     for (size_t i = 0; i < robots.size(); ++i) {
       const auto& runtime = robots[(next + i) % robots.size()];
       if (!runtime->WantsTraining()) continue;
-      auto published = runtime->TrainOnce();
+      auto published = runtime->TrainOnce([this] {
+        if (gate_ != nullptr) gate_->WaitForIdleCore(max_pause_);
+      });
       if (!published.ok()) {
         std::fprintf(stderr, "forayd: training robot %s failed: %s\n", runtime->robot_id().c_str(),
                      std::string(published.status().message()).c_str());

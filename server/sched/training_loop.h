@@ -1,6 +1,7 @@
 // The background trainer: one thread that visits the robots in turn (round robin, so that no
 // robot starves another) and runs a training round for each whose policy asks for one. Plans
-// never wait for it: they run on the rpc threads with the published model version.
+// never wait for it: they run on the rpc threads with the published model version, and
+// training steps aside between epochs while they need every core.
 // Thread-safe; Stop() joins the thread (a round in progress finishes first).
 #ifndef FORAY_SERVER_SCHED_TRAINING_LOOP_H_
 #define FORAY_SERVER_SCHED_TRAINING_LOOP_H_
@@ -14,6 +15,7 @@
 #include "absl/synchronization/mutex.h"
 #include "absl/time/time.h"
 #include "server/robot/runtime.h"
+#include "server/sched/plan_gate.h"
 
 namespace foray::sched {
 
@@ -22,8 +24,12 @@ class TrainingLoop {
   // `robots` lists the current runtimes; it is called on every pass.
   using RobotSource = std::function<std::vector<std::shared_ptr<robot::RobotRuntime>>()>;
 
-  // Not copyable or movable (owns a thread).
-  TrainingLoop(RobotSource robots, absl::Duration idle_poll = absl::Milliseconds(50));
+  // Not copyable or movable (owns a thread). `gate` (may be null; must outlive the loop) is
+  // the plans' admission: between epochs training waits while every core is planning (at most
+  // `max_pause` per epoch, so that training still makes progress under constant load).
+  TrainingLoop(RobotSource robots, const PlanGate* gate,
+               absl::Duration idle_poll = absl::Milliseconds(50),
+               absl::Duration max_pause = absl::Seconds(1));
   TrainingLoop(const TrainingLoop&) = delete;
   TrainingLoop& operator=(const TrainingLoop&) = delete;
   ~TrainingLoop();
@@ -37,7 +43,9 @@ class TrainingLoop {
   void Run();
 
   const RobotSource robots_;
+  const PlanGate* const gate_;
   const absl::Duration idle_poll_;
+  const absl::Duration max_pause_;
   mutable absl::Mutex mu_;
   bool stopping_ ABSL_GUARDED_BY(mu_) = false;
   int rounds_ ABSL_GUARDED_BY(mu_) = 0;

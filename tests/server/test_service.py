@@ -434,3 +434,35 @@ def test_tls_when_a_certificate_and_key_are_given(tmp_path):
             assert info.value.code() == CODE.UNAVAILABLE
     finally:
         assert server.stop() == 0
+
+
+def test_overload_answers_resource_exhausted_and_nothing_hangs(forayd):
+    """More simultaneous plans than cores plus the waiting room: the excess is refused at once
+    with RESOURCE_EXHAUSTED; every admitted plan completes."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    c = Client(forayd)
+    heavy = spec("busy", 4, 2, min_transitions=50, every_n=100000)
+    heavy.planner.population = 3000
+    heavy.planner.elites = 100
+    heavy.planner.horizon = 20
+    robot = c.register(heavy)
+    c.append(robot, transitions(4, 2, 1, 100, episode_len=1000))
+    c.wait_model(robot.robot.robot_id, 1)
+
+    def one(_):
+        try:
+            plan = c.plan(robot, [0.0] * 4, deadline_ms=3000)
+            return "ok" if len(plan.steps) == 20 else "bad"
+        except grpc.RpcError as e:
+            return (e.code(), e.details())
+
+    with ThreadPoolExecutor(max_workers=40) as pool:
+        results = list(pool.map(one, range(40), timeout=120))
+    refused = [r for r in results if r != "ok"]
+    print(f"overload: {results.count('ok')} admitted, {len(refused)} refused")
+    assert "bad" not in results
+    assert results.count("ok") >= 2
+    assert refused, "40 simultaneous heavy plans on this machine should overflow the waiting room"
+    for code, details in refused:
+        assert code == CODE.RESOURCE_EXHAUSTED and "busy" in details, (code, details)
