@@ -221,16 +221,56 @@ grpc::Status SessionService::PlanActions(grpc::ServerContext* context,
   return ToGrpc(Plan(**entry, request->request(), response));
 }
 
+namespace {
+
+// Messages read from a session stream by its reader thread, taken by the handler in groups.
+class Inbox {
+ public:
+  void Push(v1::SessionClientMessage message) {
+    absl::MutexLock lock(&mu_);
+    queue_.push_back(std::move(message));
+  }
+  void Close() {
+    absl::MutexLock lock(&mu_);
+    closed_ = true;
+  }
+  // Everything queued, waiting until there is something; empty when closed and drained.
+  std::vector<v1::SessionClientMessage> TakeAll() {
+    absl::MutexLock lock(&mu_);
+    auto ready = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return closed_ || !queue_.empty(); };
+    mu_.Await(absl::Condition(&ready));
+    std::vector<v1::SessionClientMessage> out;
+    out.swap(queue_);
+    return out;
+  }
+
+ private:
+  absl::Mutex mu_;
+  std::vector<v1::SessionClientMessage> queue_ ABSL_GUARDED_BY(mu_);
+  bool closed_ ABSL_GUARDED_BY(mu_) = false;
+};
+
+v1::SessionServerMessage ErrorReply(const absl::Status& s, uint64_t seq, uint64_t request_id) {
+  v1::SessionServerMessage out;
+  out.mutable_error()->set_code(static_cast<int>(s.code()));
+  out.mutable_error()->set_message(std::string(s.message()));
+  out.mutable_error()->set_seq(seq);
+  out.mutable_error()->set_request_id(request_id);
+  return out;
+}
+
+}  // namespace
+
 grpc::Status SessionService::Connect(
     grpc::ServerContext* context,
     grpc::ServerReaderWriter<v1::SessionServerMessage, v1::SessionClientMessage>* stream) {
-  v1::SessionClientMessage in;
-  if (!stream->Read(&in)) return grpc::Status::OK;  // the client left before saying hello
-  if (!in.has_hello()) {
+  v1::SessionClientMessage first;
+  if (!stream->Read(&first)) return grpc::Status::OK;  // the client left before saying hello
+  if (!first.has_hello()) {
     return grpc::Status(grpc::StatusCode::INVALID_ARGUMENT,
                         "the first message of a session must be a hello");
   }
-  auto authorized = directory_->Authorize(*context, in.hello().robot_id(), /*admin_ok=*/false);
+  auto authorized = directory_->Authorize(*context, first.hello().robot_id(), /*admin_ok=*/false);
   if (!authorized.ok()) return ToGrpc(authorized.status());
   const std::shared_ptr<const RobotEntry> entry = *authorized;
   {
@@ -241,34 +281,69 @@ grpc::Status SessionService::Connect(
     *out.mutable_welcome()->mutable_spec() = entry->spec;
     if (!stream->Write(out)) return grpc::Status::OK;
   }
-  // One message at a time: a transition is acknowledged after its commit; a bad message gets
-  // an error reply and the stream goes on.
-  while (stream->Read(&in)) {
-    v1::SessionServerMessage out;
-    if (in.has_transition()) {
-      google::protobuf::RepeatedPtrField<v1::Transition> one;
-      *one.Add() = in.transition();
-      absl::Status s = Append(*entry, one, out.mutable_ack());
-      if (!s.ok()) {
-        out.clear_ack();
-        out.mutable_error()->set_code(static_cast<int>(s.code()));
-        out.mutable_error()->set_message(std::string(s.message()));
-        out.mutable_error()->set_seq(in.transition().seq());
+  // A reader thread queues what arrives while this thread commits: the transitions that arrived
+  // during one commit go into the next as one group (one SQLite transaction, one ack).
+  Inbox inbox;
+  std::thread reader([&] {
+    v1::SessionClientMessage in;
+    while (stream->Read(&in)) inbox.Push(std::move(in));
+    inbox.Close();
+  });
+  const robot::RobotConfig config = entry->runtime->config();
+  uint64_t last_seq_seen = 0;
+  bool writing = true;
+  for (;;) {
+    std::vector<v1::SessionClientMessage> messages = inbox.TakeAll();
+    if (messages.empty()) break;
+    std::vector<v1::SessionServerMessage> replies;
+    google::protobuf::RepeatedPtrField<v1::Transition> group;
+    auto flush = [&] {
+      if (group.empty()) return;
+      v1::SessionServerMessage ack;
+      if (absl::Status s = Append(*entry, group, ack.mutable_ack()); !s.ok()) {
+        ack = ErrorReply(s, group.Get(0).seq(), 0);
       }
-    } else if (in.has_plan_request()) {
-      absl::Status s = Plan(*entry, in.plan_request(), out.mutable_plan());
-      if (!s.ok()) {
-        out.clear_plan();
-        out.mutable_error()->set_code(static_cast<int>(s.code()));
-        out.mutable_error()->set_message(std::string(s.message()));
-        out.mutable_error()->set_request_id(in.plan_request().request_id());
+      replies.push_back(std::move(ack));
+      group.Clear();
+    };
+    for (v1::SessionClientMessage& in : messages) {
+      if (in.has_transition()) {
+        google::protobuf::RepeatedPtrField<v1::Transition> one;
+        *one.Add() = in.transition();
+        absl::Status valid = TransitionsFromWire(one, config).status();
+        if (valid.ok() && in.transition().seq() <= last_seq_seen) {
+          valid = absl::InvalidArgumentError(absl::StrFormat(
+              "transition seq %d comes after seq %d in this session; seq must increase",
+              in.transition().seq(), last_seq_seen));
+        }
+        if (!valid.ok()) {
+          flush();  // keep the replies in the order of the messages
+          replies.push_back(ErrorReply(valid, in.transition().seq(), 0));
+          continue;
+        }
+        last_seq_seen = in.transition().seq();
+        *group.Add() = std::move(*in.mutable_transition());
+      } else if (in.has_plan_request()) {
+        flush();
+        v1::SessionServerMessage out;
+        if (absl::Status s = Plan(*entry, in.plan_request(), out.mutable_plan()); !s.ok()) {
+          out = ErrorReply(s, 0, in.plan_request().request_id());
+        }
+        replies.push_back(std::move(out));
+      } else {
+        flush();
+        replies.push_back(ErrorReply(
+            absl::InvalidArgumentError("expected a transition or a plan request after the hello"),
+            0, 0));
       }
-    } else {
-      out.mutable_error()->set_code(static_cast<int>(absl::StatusCode::kInvalidArgument));
-      out.mutable_error()->set_message("expected a transition or a plan request after the hello");
     }
-    if (!stream->Write(out)) break;
+    flush();
+    for (const v1::SessionServerMessage& reply : replies) {
+      if (writing && !stream->Write(reply)) writing = false;
+    }
+    if (!writing) context->TryCancel();  // the client is gone: end the reader's Read too
   }
+  reader.join();
   return grpc::Status::OK;
 }
 
