@@ -45,8 +45,10 @@ PYTHONPATH="$PWD/client/python" /usr/bin/python3 -m foray_client.probe \
 
 echo
 echo "demo: forayd is serving gRPC on $ADDRESS with data in $DATA_DIR."
-echo "demo: this build has the server alone: simulated robots and the dashboard are not"
-echo "      part of it yet, so no robot is learning. Press Ctrl-C to stop."
+echo "demo: the admin token (for registering robots) is in $DATA_DIR/admin-token;"
+echo "      README.md, 'How a robot connects', registers a robot and asks for a plan."
+echo "demo: simulated robots and the dashboard are not part of this build yet, so no robot"
+echo "      is learning until a client connects. Press Ctrl-C to stop."
 if [ "$MINUTES" != "0" ]; then
   sleep "$(awk "BEGIN {print $MINUTES * 60}")" &
   wait $! || true
