@@ -485,3 +485,16 @@ def test_overload_answers_resource_exhausted_and_nothing_hangs(forayd):
     assert refused, "40 simultaneous heavy plans on this machine should overflow the waiting room"
     for code, details in refused:
         assert code == CODE.RESOURCE_EXHAUSTED and "busy" in details, (code, details)
+
+
+def test_readme_robot_example_runs_against_a_real_server(forayd, capsys):
+    """The Python example in README.md, run as written (address and token path substituted)."""
+    readme = open(os.path.join(os.path.dirname(__file__), "..", "..", "README.md")).read()
+    section = readme[readme.index("## How a robot connects"):]
+    code = section[section.index("```python") + len("```python"):]
+    code = code[:code.index("```")]
+    code = code.replace("127.0.0.1:50151", forayd.address)
+    code = code.replace("foray-data/admin-token", os.path.join(forayd.data_dir, "admin-token"))
+    exec(compile(code, "README.md", "exec"), {})
+    printed = capsys.readouterr().out.split()
+    assert printed[0] == "1" and printed[1] == "True"  # durable seq 1; no model yet
