@@ -41,7 +41,7 @@ class PhysicsReferenceTest : public ::testing::Test {
       Eigen::VectorXd s = cases.row(c).head(4).transpose();
       const Eigen::VectorXd u = cases.row(c).tail(inputs).transpose();
       for (int k = 0; k <= 10; ++k) {
-        if (k > 0) s = Integrate(f, s, u, 0.5, 0.002);
+        if (k > 0) s = Integrate(f, s, u, 0.5, kSimulationStep);
         const Eigen::VectorXd want = traj.row(c * 11 + k).transpose();
         EXPECT_LT((s - want).cwiseAbs().maxCoeff(), 1e-4) << "case " << c << " t " << 0.5 * k;
       }
