@@ -1,0 +1,287 @@
+// foray-sim: simulated robots of our own that connect to forayd as ordinary clients. Each robot
+// registers once (its token is kept under --state_dir), then runs episodes: at every control
+// step it asks for a plan from its current state, applies the plan's first action to its
+// physics, and streams the transition. A line per episode shows how learning goes.
+
+#include <atomic>
+#include <chrono>
+#include <csignal>
+#include <cstdio>
+#include <filesystem>
+#include <fstream>
+#include <memory>
+#include <mutex>
+#include <string>
+#include <thread>
+#include <vector>
+
+#include "absl/flags/flag.h"
+#include "absl/flags/parse.h"
+#include "absl/flags/usage.h"
+#include "absl/strings/str_cat.h"
+#include "absl/strings/str_format.h"
+#include "absl/strings/str_split.h"
+#include "absl/strings/strip.h"
+#include "client/sim/scenario.h"
+#include "foray/v1/registry.grpc.pb.h"
+#include "foray/v1/session.grpc.pb.h"
+#include "grpcpp/grpcpp.h"
+
+ABSL_FLAG(std::string, address, "127.0.0.1:50151", "forayd's gRPC address, host:port.");
+ABSL_FLAG(std::string, admin_token_file, "./foray-data/admin-token",
+          "File with the admin token, used once per robot to register it.");
+ABSL_FLAG(std::string, state_dir, "./foray-data/sim",
+          "Where each simulated robot keeps its id and token between runs.");
+ABSL_FLAG(std::string, robots, "gantry,arm", "Comma-separated scenarios, one robot each.");
+ABSL_FLAG(std::string, name_prefix, "sim", "Robots are named PREFIX-SCENARIO-N.");
+ABSL_FLAG(int, episodes, 20, "Episodes per robot; 0 runs until Ctrl-C.");
+ABSL_FLAG(int, steps, 0, "Control steps per episode; 0: the scenario's own length.");
+ABSL_FLAG(uint64_t, seed, 1, "Seed of the robots' initial states.");
+ABSL_FLAG(bool, realtime, false, "Pace each step to the control period instead of running flat out.");
+ABSL_FLAG(double, deadline_ms, 100.0, "Planning time per step, milliseconds.");
+ABSL_FLAG(double, reward_weight, 1.0, "Objective weight of the expected reward (at registration).");
+ABSL_FLAG(double, information_weight, 1.0, "Objective weight of the information gain (at registration).");
+ABSL_FLAG(int, min_transitions, 200, "Transitions before the first model (at registration).");
+ABSL_FLAG(int, train_every, 500, "Retrain after this many new transitions (at registration).");
+
+namespace {
+
+using foray::sim::Scenario;
+namespace v1 = foray::v1;
+
+constexpr char kCaution[] =
+    "foray-sim drives simulated robots only. Foray is not a safety system: on real robots keep\n"
+    "emergency stops and safety-rated limits in place and follow your lab's risk assessment.";
+
+std::atomic<bool> g_stop{false};
+
+void OnSignal(int) { g_stop = true; }
+
+std::mutex g_print_mu;
+void Say(const std::string& line) {
+  std::lock_guard<std::mutex> lock(g_print_mu);
+  std::printf("%s\n", line.c_str());
+  std::fflush(stdout);
+}
+
+struct Identity {
+  std::string robot_id, token;
+};
+
+v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
+  v1::RobotSpec spec;
+  spec.set_name(name);
+  for (const auto& d : s.state_dims()) {
+    auto* dim = spec.add_state();
+    dim->set_label(d.label);
+    dim->set_unit(d.unit);
+  }
+  for (const auto& d : s.action_dims()) {
+    auto* dim = spec.add_action();
+    dim->set_label(d.label);
+    dim->set_unit(d.unit);
+  }
+  for (const auto& r : s.action_ranges()) {
+    auto* limit = spec.add_action_limits();
+    limit->set_min(r.min);
+    limit->set_max(r.max);
+    limit->set_max_step(r.max_step);
+  }
+  spec.set_control_period_s(s.control_period_s());
+  spec.mutable_model()->add_hidden_widths(64);
+  spec.mutable_model()->add_hidden_widths(64);
+  spec.mutable_training()->set_min_transitions(absl::GetFlag(FLAGS_min_transitions));
+  spec.mutable_training()->set_every_n_transitions(absl::GetFlag(FLAGS_train_every));
+  spec.mutable_training()->set_max_epochs(20);
+  spec.mutable_planner()->set_horizon(15);
+  spec.mutable_planner()->set_population(150);
+  spec.mutable_planner()->set_elites(15);
+  spec.mutable_planner()->set_iterations(3);
+  spec.mutable_objective()->set_reward_weight(absl::GetFlag(FLAGS_reward_weight));
+  spec.mutable_objective()->set_information_weight(absl::GetFlag(FLAGS_information_weight));
+  for (int i : s.coverage_indices()) spec.add_coverage_indices(i);
+  for (double v : s.coverage_lower()) spec.add_coverage_lower(v);
+  for (double v : s.coverage_upper()) spec.add_coverage_upper(v);
+  return spec;
+}
+
+// The robot's id and token from --state_dir, or a fresh registration saved there.
+bool Identify(v1::RobotRegistry::Stub& registry, const Scenario& scenario, const std::string& name,
+              Identity* id) {
+  const std::filesystem::path dir = absl::GetFlag(FLAGS_state_dir);
+  const std::filesystem::path file = dir / (name + ".token");
+  if (std::ifstream in(file); in >> id->robot_id >> id->token) return true;
+
+  std::ifstream admin_in(absl::GetFlag(FLAGS_admin_token_file));
+  std::string admin;
+  if (!std::getline(admin_in, admin)) {
+    Say(absl::StrFormat("%s: cannot read the admin token from %s (start forayd first, or pass "
+                        "--admin_token_file)", name, absl::GetFlag(FLAGS_admin_token_file)));
+    return false;
+  }
+  grpc::ClientContext context;
+  context.AddMetadata("authorization", "Bearer " + std::string(absl::StripAsciiWhitespace(admin)));
+  context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
+  v1::RegisterRobotRequest request;
+  *request.mutable_spec() = SpecFor(scenario, name);
+  v1::RegisterRobotResponse response;
+  const grpc::Status status = registry.RegisterRobot(&context, request, &response);
+  if (!status.ok()) {
+    Say(absl::StrFormat("%s: registering failed: %s", name, status.error_message()));
+    return false;
+  }
+  id->robot_id = response.robot().robot_id();
+  id->token = response.token();
+  std::filesystem::create_directories(dir);
+  std::ofstream out(file);
+  out << id->robot_id << " " << id->token << "\n";
+  std::filesystem::permissions(file, std::filesystem::perms::owner_read | std::filesystem::perms::owner_write);
+  Say(absl::StrFormat("%s: registered as %s; hidden zone: %s", name, id->robot_id,
+                      scenario.ZoneDescription()));
+  return true;
+}
+
+// Runs the episodes of one robot; returns false on an error that stops it.
+bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& kind, int index) {
+  auto scenario = foray::sim::MakeScenario(kind, absl::GetFlag(FLAGS_seed) * 1000 + index);
+  if (!scenario.ok()) {
+    Say(std::string(scenario.status().message()));
+    return false;
+  }
+  Scenario& sim = **scenario;
+  const std::string name = absl::StrFormat("%s-%s-%d", absl::GetFlag(FLAGS_name_prefix), kind, index);
+  auto registry = v1::RobotRegistry::NewStub(channel);
+  auto session = v1::RobotSession::NewStub(channel);
+  Identity id;
+  if (!Identify(*registry, sim, name, &id)) return false;
+  const std::string bearer = "Bearer " + id.token;
+
+  uint64_t seq = 0;
+  {
+    grpc::ClientContext context;
+    context.AddMetadata("authorization", bearer);
+    v1::GetRobotRequest request;
+    request.set_robot_id(id.robot_id);
+    v1::Robot robot;
+    const grpc::Status status = registry->GetRobot(&context, request, &robot);
+    if (!status.ok()) {
+      Say(absl::StrFormat("%s: %s (delete %s to register anew)", name, status.error_message(),
+                          absl::GetFlag(FLAGS_state_dir)));
+      return false;
+    }
+    seq = robot.last_seq();
+  }
+  const int steps = absl::GetFlag(FLAGS_steps) > 0 ? absl::GetFlag(FLAGS_steps) : sim.episode_steps();
+  const int episodes = absl::GetFlag(FLAGS_episodes);
+  uint64_t episode_id = seq / steps + 1;
+  const int action_dim = static_cast<int>(sim.action_dims().size());
+
+  for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
+    Eigen::VectorXd state = sim.Reset();
+    Eigen::VectorXd previous = Eigen::VectorXd::Zero(action_dim);
+    v1::AppendTransitionsRequest batch;
+    batch.set_robot_id(id.robot_id);
+    double episode_return = 0.0, plan_ms = 0.0, gain = 0.0;
+    int first_reward = -1, from_prior = 0;
+    uint64_t model_version = 0;
+    auto flush = [&]() -> bool {
+      if (batch.transitions_size() == 0) return true;
+      grpc::ClientContext context;
+      context.AddMetadata("authorization", bearer);
+      context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(30));
+      v1::Ack ack;
+      const grpc::Status status = session->AppendTransitions(&context, batch, &ack);
+      if (!status.ok()) {
+        Say(absl::StrFormat("%s: sending transitions failed: %s", name, status.error_message()));
+        return false;
+      }
+      batch.clear_transitions();
+      return true;
+    };
+    for (int t = 0; t < steps && !g_stop; ++t) {
+      const auto step_start = std::chrono::steady_clock::now();
+      v1::PlanActionsRequest request;
+      request.set_robot_id(id.robot_id);
+      for (int k = 0; k < state.size(); ++k) request.mutable_request()->add_state(state[k]);
+      for (int j = 0; j < action_dim; ++j) request.mutable_request()->add_previous_action(previous[j]);
+      request.mutable_request()->set_deadline_ms(absl::GetFlag(FLAGS_deadline_ms));
+      grpc::ClientContext context;
+      context.AddMetadata("authorization", bearer);
+      context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
+      v1::Plan plan;
+      const grpc::Status status = session->PlanActions(&context, request, &plan);
+      Eigen::VectorXd action = previous;  // hold the last action when no plan comes
+      if (status.ok() && plan.steps_size() > 0) {
+        for (int j = 0; j < action_dim; ++j) action[j] = plan.steps(0).action(j);
+        plan_ms += plan.compute_ms();
+        gain += plan.steps(0).information_gain();
+        from_prior += plan.from_prior() ? 1 : 0;
+        model_version = plan.model_version();
+      } else if (!status.ok()) {
+        Say(absl::StrFormat("%s: no plan (%s); holding the last action", name, status.error_message()));
+      }
+      const Eigen::VectorXd next = sim.Step(action);
+      const double reward = sim.Reward(next);
+      if (reward > 0 && first_reward < 0) first_reward = t;
+      episode_return += reward;
+      v1::Transition* tr = batch.add_transitions();
+      tr->set_seq(++seq);
+      tr->set_episode(episode_id);
+      tr->set_step(static_cast<uint32_t>(t));
+      for (int k = 0; k < state.size(); ++k) tr->add_state(state[k]);
+      for (int j = 0; j < action_dim; ++j) tr->add_action(action[j]);
+      for (int k = 0; k < next.size(); ++k) tr->add_next_state(next[k]);
+      tr->set_reward(reward);
+      tr->set_terminal(t + 1 == steps);
+      state = next;
+      previous = action;
+      if (batch.transitions_size() >= 20 && !flush()) return false;
+      if (absl::GetFlag(FLAGS_realtime)) {
+        std::this_thread::sleep_until(step_start + std::chrono::duration<double>(sim.control_period_s()));
+      }
+    }
+    if (!flush()) return false;
+    Say(absl::StrFormat(
+        "%s episode %d: return %.0f (%s), %d transitions sent, model v%d, plan %.1f ms, "
+        "information gain %.3f nats/step%s",
+        name, episode_id, episode_return,
+        first_reward >= 0 ? absl::StrFormat("zone reached at step %d", first_reward) : "zone not reached",
+        seq, model_version, plan_ms / steps, gain / steps,
+        from_prior > 0 ? absl::StrFormat(", %d random steps (no model yet)", from_prior) : ""));
+  }
+  return true;
+}
+
+}  // namespace
+
+int main(int argc, char** argv) {
+  absl::SetProgramUsageMessage(absl::StrCat(
+      "Simulated robots (an overhead gantry, a two-link arm) that learn through forayd.\n\n",
+      kCaution, "\n\nUsage: foray-sim [flags]"));
+  absl::ParseCommandLine(argc, argv);
+  std::signal(SIGINT, OnSignal);
+  std::signal(SIGTERM, OnSignal);
+  std::fprintf(stderr, "%s\n", kCaution);
+
+  const std::vector<std::string> kinds = absl::StrSplit(absl::GetFlag(FLAGS_robots), ',', absl::SkipEmpty());
+  if (kinds.empty()) {
+    std::fprintf(stderr, "foray-sim: --robots is empty; name gantry and/or arm\n");
+    return 2;
+  }
+  for (const std::string& kind : kinds) {
+    if (!foray::sim::MakeScenario(kind, 0).ok()) {
+      std::fprintf(stderr, "foray-sim: unknown robot \"%s\" in --robots; use gantry or arm\n", kind.c_str());
+      return 2;
+    }
+  }
+  auto channel = grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials());
+  std::vector<std::thread> threads;
+  std::atomic<int> failed{0};
+  for (size_t i = 0; i < kinds.size(); ++i) {
+    threads.emplace_back([&, i] {
+      if (!RunRobot(channel, kinds[i], static_cast<int>(i + 1))) ++failed;
+    });
+  }
+  for (std::thread& t : threads) t.join();
+  return failed > 0 ? 1 : 0;
+}

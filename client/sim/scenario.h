@@ -1,0 +1,58 @@
+// Simulated robots of our own, each a physics model stepped with RK4 at kSimulationStep under
+// a zero-order hold of the action for one control period, with a sparse reward inside a zone
+// the planner is not told about. A scenario object is one robot: not thread-safe.
+//
+//   auto robot = MakeScenario("gantry", /*seed=*/3);
+//   Eigen::VectorXd s = robot->Reset();
+//   Eigen::VectorXd next = robot->Step(action);
+//   double r = robot->Reward(next);
+#ifndef FORAY_CLIENT_SIM_SCENARIO_H_
+#define FORAY_CLIENT_SIM_SCENARIO_H_
+
+#include <memory>
+#include <random>
+#include <string>
+#include <vector>
+
+#include "Eigen/Core"
+#include "absl/status/statusor.h"
+
+namespace foray::sim {
+
+struct Dim {
+  std::string label, unit;
+};
+
+struct ActionRange {
+  double min, max, max_step;  // action units; max_step per control period, 0: none
+};
+
+class Scenario {
+ public:
+  virtual ~Scenario() = default;
+  virtual std::string kind() const = 0;
+  virtual std::vector<Dim> state_dims() const = 0;
+  virtual std::vector<Dim> action_dims() const = 0;
+  virtual std::vector<ActionRange> action_ranges() const = 0;
+  virtual double control_period_s() const = 0;
+  virtual int episode_steps() const = 0;
+  // Two state indices for the coverage map, and their ranges.
+  virtual std::vector<int> coverage_indices() const = 0;
+  virtual std::vector<double> coverage_lower() const = 0;
+  virtual std::vector<double> coverage_upper() const = 0;
+  // The state at the start of an episode.
+  virtual Eigen::VectorXd Reset() = 0;
+  // The state one control period later; the action is clipped to the ranges first.
+  virtual Eigen::VectorXd Step(const Eigen::VectorXd& action) = 0;
+  // 1 inside the hidden zone, else 0.
+  virtual double Reward(const Eigen::VectorXd& state) const = 0;
+  // A description of the zone, for the terminal.
+  virtual std::string ZoneDescription() const = 0;
+};
+
+// "gantry" or "arm"; InvalidArgument for another name.
+absl::StatusOr<std::unique_ptr<Scenario>> MakeScenario(const std::string& kind, uint64_t seed);
+
+}  // namespace foray::sim
+
+#endif  // FORAY_CLIENT_SIM_SCENARIO_H_
