@@ -1,6 +1,7 @@
 #!/usr/bin/env bash
-# Starts a local Foray: installs what is missing, builds, and runs forayd on the embedded
-# default (SQLite under ./foray-data) on 127.0.0.1:50151 until Ctrl-C (data is kept).
+# Starts a local Foray: installs what is missing, builds, runs forayd on the embedded default
+# (SQLite under ./foray-data) on 127.0.0.1:50151 and two simulated robots (foray-sim: an
+# overhead gantry and a two-link arm) that learn through it, until Ctrl-C (data is kept).
 #
 #   ./deploy/demo.sh               # until Ctrl-C
 #   ./deploy/demo.sh --minutes 5   # stop by itself after five minutes
@@ -26,13 +27,18 @@ CAUTION
 ./deploy/install-deps.sh
 BUILD_DIR="${FORAY_BUILD_DIR:-build}"
 cmake -S . -B "$BUILD_DIR" -G Ninja -DCMAKE_BUILD_TYPE=Release >/dev/null
-cmake --build "$BUILD_DIR" --parallel "$(nproc)" --target forayd foray_proto_python
+cmake --build "$BUILD_DIR" --parallel "$(nproc)" --target forayd foray-sim foray_proto_python
 
 ADDRESS="127.0.0.1:50151"
 DATA_DIR="$PWD/foray-data"
 "$BUILD_DIR/server/forayd" --listen="$ADDRESS" --data_dir="$DATA_DIR" &
 SERVER_PID=$!
+SIM_PID=""
 stop() {
+  if [ -n "$SIM_PID" ]; then
+    kill -TERM "$SIM_PID" 2>/dev/null || true
+    wait "$SIM_PID" 2>/dev/null || true
+  fi
   kill -TERM "$SERVER_PID" 2>/dev/null || true
   wait "$SERVER_PID" 2>/dev/null || true
   echo "demo: stopped; data kept in $DATA_DIR"
@@ -45,13 +51,16 @@ PYTHONPATH="$PWD/client/python" /usr/bin/python3 -m foray_client.probe \
 
 echo
 echo "demo: forayd is serving gRPC on $ADDRESS with data in $DATA_DIR."
-echo "demo: the admin token (for registering robots) is in $DATA_DIR/admin-token;"
-echo "      README.md, 'How a robot connects', registers a robot and asks for a plan."
-echo "demo: simulated robots and the dashboard are not part of this build yet, so no robot"
-echo "      is learning until a client connects. Press Ctrl-C to stop."
+echo "demo: the admin token (for registering robots) is in $DATA_DIR/admin-token."
+echo "demo: two simulated robots now learn in real time; a line per episode shows the return"
+echo "      (steps inside the zone they are not told about), the model version and the"
+echo "      information gain of their plans. Press Ctrl-C to stop."
+"$BUILD_DIR/client/foray-sim" --address="$ADDRESS" --admin_token_file="$DATA_DIR/admin-token" \
+  --state_dir="$DATA_DIR/sim" --robots=gantry,arm --episodes=0 --realtime &
+SIM_PID=$!
 if [ "$MINUTES" != "0" ]; then
   sleep "$(awk "BEGIN {print $MINUTES * 60}")" &
   wait $! || true
 else
-  wait "$SERVER_PID"
+  wait "$SIM_PID"
 fi

@@ -100,8 +100,13 @@ void RobotRuntime::AddToDataset(const store::TransitionRecord& t) {
   for (double v : t.next_state) next_states_.push_back(static_cast<float>(v));
   rewards_.push_back(static_cast<float>(t.reward));
   if (t.seq > last_seq_) last_seq_ = t.seq;
-  if (t.terminal || (last_episode_ != 0 && t.episode != last_episode_)) episode_ended_ = true;
+  // An episode ends at a terminal transition, or (when the client sends none) where the
+  // episode id changes; either counts once.
+  if (t.terminal || (last_episode_ != 0 && t.episode != last_episode_ && !last_terminal_)) {
+    episode_ended_ = true;
+  }
   last_episode_ = t.episode;
+  last_terminal_ = t.terminal;
   ++new_since_training_;
 }
 
@@ -168,6 +173,7 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
   rewards_.clear();
   last_seq_ = 0;
   last_episode_ = 0;
+  last_terminal_ = false;
   const bool ended = episode_ended_;
   for (const store::TransitionRecord& t : *all) AddToDataset(t);
   new_since_training_ = pending;

@@ -135,6 +135,7 @@ class RobotRuntime {
   std::vector<float> states_, actions_, next_states_, rewards_ ABSL_GUARDED_BY(mu_);
   uint64_t last_seq_ ABSL_GUARDED_BY(mu_) = 0;
   uint64_t last_episode_ ABSL_GUARDED_BY(mu_) = 0;
+  bool last_terminal_ ABSL_GUARDED_BY(mu_) = false;
   int new_since_training_ ABSL_GUARDED_BY(mu_) = 0;
   bool episode_ended_ ABSL_GUARDED_BY(mu_) = false;
   bool training_ ABSL_GUARDED_BY(mu_) = false;

@@ -1,0 +1,50 @@
+"""foray-sim against a real forayd on loopback: it registers, runs its episodes, streams every
+transition once, and resumes its sequence numbers on the next run."""
+
+import os
+import sqlite3
+import subprocess
+import sys
+
+sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "server"))
+from conftest import forayd  # noqa: F401,E402  (the fixture)
+
+
+def run_sim(server, *args):
+    return subprocess.run(
+        [os.environ["FORAY_SIM"], f"--address={server.address}",
+         f"--admin_token_file={os.path.join(server.data_dir, 'admin-token')}",
+         f"--state_dir={os.path.join(server.data_dir, 'sim')}", *args],
+        capture_output=True, text=True, timeout=120)
+
+
+def stored(server):
+    db = sqlite3.connect(os.path.join(server.data_dir, "foray.db"))
+    try:
+        return db.execute("SELECT robot_id, COUNT(*), COUNT(DISTINCT seq), MAX(seq) FROM transitions "
+                          "GROUP BY robot_id").fetchall()
+    finally:
+        db.close()
+
+
+def test_sim_streams_its_episodes_and_resumes(forayd):  # noqa: F811
+    first = run_sim(forayd, "--robots=gantry", "--episodes=3", "--steps=30")
+    assert first.returncode == 0, first.stdout + first.stderr
+    assert "not a safety system" in first.stderr
+    lines = [l for l in first.stdout.splitlines() if " episode " in l]
+    assert len(lines) == 3 and lines[-1].startswith("sim-gantry-1 episode 3:")
+    assert "registered as r-" in first.stdout
+    ((robot_id, count, distinct, top),) = stored(forayd)
+    assert (count, distinct, top) == (90, 90, 90)
+
+    second = run_sim(forayd, "--robots=gantry", "--episodes=2", "--steps=30")
+    assert second.returncode == 0, second.stdout + second.stderr
+    assert "registered" not in second.stdout  # the kept token was used
+    assert "episode 4:" in second.stdout and "episode 5:" in second.stdout
+    assert stored(forayd) == [(robot_id, 150, 150, 150)]
+
+
+def test_sim_refuses_an_unknown_robot(forayd):  # noqa: F811
+    result = run_sim(forayd, "--robots=crane")
+    assert result.returncode == 2
+    assert 'unknown robot "crane"' in result.stderr
