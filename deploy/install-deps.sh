@@ -27,6 +27,7 @@ PACKAGES=(
   python3-scipy          # reference integrators and statistics in tests
   python3-torch          # reference network computations and benchmarks
   python3-pytest         # Python test runner
+  python3-matplotlib     # plots of the exploration benchmark
   libopenblas0-pthread   # optimised BLAS, so the numpy and PyTorch references run at full speed
 )
 

@@ -11,6 +11,7 @@
 #include <fstream>
 #include <memory>
 #include <mutex>
+#include <random>
 #include <string>
 #include <thread>
 #include <vector>
@@ -23,6 +24,7 @@
 #include "absl/strings/str_split.h"
 #include "absl/strings/strip.h"
 #include "client/sim/scenario.h"
+#include "foray/v1/models.grpc.pb.h"
 #include "foray/v1/registry.grpc.pb.h"
 #include "foray/v1/session.grpc.pb.h"
 #include "grpcpp/grpcpp.h"
@@ -41,6 +43,14 @@ ABSL_FLAG(bool, realtime, false, "Pace each step to the control period instead o
 ABSL_FLAG(double, deadline_ms, 100.0, "Planning time per step, milliseconds.");
 ABSL_FLAG(double, reward_weight, 1.0, "Objective weight of the expected reward (at registration).");
 ABSL_FLAG(double, information_weight, 1.0, "Objective weight of the information gain (at registration).");
+ABSL_FLAG(std::string, strategy, "explore",
+          "explore: plans with reward + information gain; reward: information weight 0; "
+          "noise: no model, the nominal controller's action plus Gaussian noise.");
+ABSL_FLAG(double, noise_fraction, 0.3,
+          "noise strategy: standard deviation of the noise, fraction of each action's half range.");
+ABSL_FLAG(bool, train_each_episode, false,
+          "After each episode, wait for a training round on everything sent so far (benchmarks).");
+ABSL_FLAG(std::string, report, "", "Append one JSON line per episode to this file.");
 ABSL_FLAG(int, min_transitions, 200, "Transitions before the first model (at registration).");
 ABSL_FLAG(int, train_every, 500, "Retrain after this many new transitions (at registration).");
 
@@ -98,7 +108,8 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
   spec.mutable_planner()->set_elites(15);
   spec.mutable_planner()->set_iterations(3);
   spec.mutable_objective()->set_reward_weight(absl::GetFlag(FLAGS_reward_weight));
-  spec.mutable_objective()->set_information_weight(absl::GetFlag(FLAGS_information_weight));
+  spec.mutable_objective()->set_information_weight(
+      absl::GetFlag(FLAGS_strategy) == "reward" ? 0.0 : absl::GetFlag(FLAGS_information_weight));
   for (int i : s.coverage_indices()) spec.add_coverage_indices(i);
   for (double v : s.coverage_lower()) spec.add_coverage_lower(v);
   for (double v : s.coverage_upper()) spec.add_coverage_upper(v);
@@ -175,6 +186,11 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
   const int episodes = absl::GetFlag(FLAGS_episodes);
   uint64_t episode_id = seq / steps + 1;
   const int action_dim = static_cast<int>(sim.action_dims().size());
+  const std::vector<foray::sim::ActionRange> ranges = sim.action_ranges();
+  const bool noise_baseline = absl::GetFlag(FLAGS_strategy) == "noise";
+  std::mt19937_64 rng(absl::GetFlag(FLAGS_seed) * 7919 + index);
+  std::normal_distribution<double> normal(0.0, 1.0);
+  auto models = v1::Models::NewStub(channel);
 
   for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
     Eigen::VectorXd state = sim.Reset();
@@ -182,7 +198,8 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
     v1::AppendTransitionsRequest batch;
     batch.set_robot_id(id.robot_id);
     double episode_return = 0.0, plan_ms = 0.0, gain = 0.0;
-    int first_reward = -1, from_prior = 0;
+    int first_reward = -1, from_prior = 0, plans = 0;
+    const auto episode_start = std::chrono::steady_clock::now();
     uint64_t model_version = 0;
     auto flush = [&]() -> bool {
       if (batch.transitions_size() == 0) return true;
@@ -200,6 +217,18 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
     };
     for (int t = 0; t < steps && !g_stop; ++t) {
       const auto step_start = std::chrono::steady_clock::now();
+      Eigen::VectorXd action = previous;  // hold the last action when no plan comes
+      if (noise_baseline) {
+        action = sim.Nominal(state);
+        for (int j = 0; j < action_dim; ++j) {
+          const auto& r = ranges[j];
+          action[j] += absl::GetFlag(FLAGS_noise_fraction) * 0.5 * (r.max - r.min) * normal(rng);
+          if (r.max_step > 0) {
+            action[j] = std::clamp(action[j], previous[j] - r.max_step, previous[j] + r.max_step);
+          }
+          action[j] = std::clamp(action[j], r.min, r.max);
+        }
+      } else {
       v1::PlanActionsRequest request;
       request.set_robot_id(id.robot_id);
       for (int k = 0; k < state.size(); ++k) request.mutable_request()->add_state(state[k]);
@@ -210,7 +239,7 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
       context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
       v1::Plan plan;
       const grpc::Status status = session->PlanActions(&context, request, &plan);
-      Eigen::VectorXd action = previous;  // hold the last action when no plan comes
+      ++plans;
       if (status.ok() && plan.steps_size() > 0) {
         for (int j = 0; j < action_dim; ++j) action[j] = plan.steps(0).action(j);
         plan_ms += plan.compute_ms();
@@ -219,6 +248,7 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
         model_version = plan.model_version();
       } else if (!status.ok()) {
         Say(absl::StrFormat("%s: no plan (%s); holding the last action", name, status.error_message()));
+      }
       }
       const Eigen::VectorXd next = sim.Step(action);
       const double reward = sim.Reward(next);
@@ -241,6 +271,30 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
       }
     }
     if (!flush()) return false;
+    const double episode_s =
+        std::chrono::duration<double>(std::chrono::steady_clock::now() - episode_start).count();
+    if (!absl::GetFlag(FLAGS_report).empty()) {
+      std::lock_guard<std::mutex> lock(g_print_mu);
+      std::ofstream report(absl::GetFlag(FLAGS_report), std::ios::app);
+      report << absl::StrFormat(
+          "{\"robot\": \"%s\", \"robot_id\": \"%s\", \"scenario\": \"%s\", \"strategy\": \"%s\", "
+          "\"episode\": %d, \"return\": %g, \"first_reward_step\": %d, \"model_version\": %d, "
+          "\"plans\": %d, \"plan_ms\": %g, \"information_gain\": %g, \"seconds\": %g}\n",
+          name, id.robot_id, kind, absl::GetFlag(FLAGS_strategy), episode_id, episode_return,
+          first_reward, model_version, plans, plans > 0 ? plan_ms / plans : 0.0,
+          plans > 0 ? gain / plans : 0.0, episode_s);
+    }
+    if (absl::GetFlag(FLAGS_train_each_episode) && !noise_baseline && !g_stop) {
+      grpc::ClientContext context;
+      context.AddMetadata("authorization", bearer);
+      context.set_deadline(std::chrono::system_clock::now() + std::chrono::minutes(10));
+      v1::TrainNowRequest request;
+      request.set_robot_id(id.robot_id);
+      request.set_wait(true);
+      v1::TrainNowResponse response;
+      const grpc::Status status = models->TrainNow(&context, request, &response);
+      if (!status.ok()) Say(absl::StrFormat("%s: training failed: %s", name, status.error_message()));
+    }
     Say(absl::StrFormat(
         "%s episode %d: return %.0f (%s), %d transitions sent, model v%d, plan %.1f ms, "
         "information gain %.3f nats/step%s",
@@ -266,6 +320,12 @@ int main(int argc, char** argv) {
   const std::vector<std::string> kinds = absl::StrSplit(absl::GetFlag(FLAGS_robots), ',', absl::SkipEmpty());
   if (kinds.empty()) {
     std::fprintf(stderr, "foray-sim: --robots is empty; name gantry and/or arm\n");
+    return 2;
+  }
+  const std::string strategy = absl::GetFlag(FLAGS_strategy);
+  if (strategy != "explore" && strategy != "reward" && strategy != "noise") {
+    std::fprintf(stderr, "foray-sim: --strategy is \"%s\"; use explore, reward or noise\n",
+                 strategy.c_str());
     return 2;
   }
   for (const std::string& kind : kinds) {

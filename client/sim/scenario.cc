@@ -54,6 +54,9 @@ class GantryScenario final : public Scenario {
     }
     return s_;
   }
+  Eigen::VectorXd Nominal(const Eigen::VectorXd& s) const override {
+    return Eigen::VectorXd::Constant(1, -4.0 * s[0] - 4.0 * s[1]);
+  }
   double Reward(const Eigen::VectorXd& s) const override {
     const double payload = s[0] + params_.cable_length * std::sin(s[2]);
     return payload >= kZoneLow && payload <= kZoneHigh && std::abs(s[1]) < 0.5 ? 1.0 : 0.0;
@@ -106,6 +109,9 @@ class ArmScenario final : public Scenario {
   Eigen::VectorXd Step(const Eigen::VectorXd& action) override {
     s_ = Hold(f_, s_, Clip(action, action_ranges()), control_period_s());
     return s_;
+  }
+  Eigen::VectorXd Nominal(const Eigen::VectorXd& s) const override {
+    return Eigen::Vector2d(-2.0 * (s[0] + 0.8) - 0.5 * s[2], -2.0 * (s[1] - 0.5) - 0.5 * s[3]);
   }
   double Reward(const Eigen::VectorXd& s) const override {
     return (ArmTip(params_, s) - kTarget).norm() <= kRadius ? 1.0 : 0.0;

@@ -44,6 +44,9 @@ class Scenario {
   virtual Eigen::VectorXd Reset() = 0;
   // The state one control period later; the action is clipped to the ranges first.
   virtual Eigen::VectorXd Step(const Eigen::VectorXd& action) = 0;
+  // The action of a fixed nominal controller (a PD hold of the start pose), the base of the
+  // no-model baseline that adds Gaussian noise to it.
+  virtual Eigen::VectorXd Nominal(const Eigen::VectorXd& state) const = 0;
   // 1 inside the hidden zone, else 0.
   virtual double Reward(const Eigen::VectorXd& state) const = 0;
   // A description of the zone, for the terminal.

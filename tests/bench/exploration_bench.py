@@ -1,0 +1,236 @@
+"""Does exploration pay? The simulated robots learn from scratch through a real forayd on
+loopback, under three strategies, for several seeds each:
+
+  explore  Foray's planner, expected reward + information gain (weights 1 and 1);
+  reward   the same planner with the information weight 0;
+  noise    no model: a fixed nominal controller (a PD hold of the start pose) plus Gaussian
+           noise of 0.3 of each action's half range, clipped to the bounds and rate limits.
+
+Every run starts with an empty data directory and a fresh forayd; the model is retrained on
+everything sent after each episode (foray-sim --train_each_episode). Per run it records the
+episode of first reward (the hidden zone discovered), the state-space coverage after each
+episode (fraction of occupied cells of a 20x20 grid over the robot's two coverage dimensions,
+read from the SQLite store), the return per episode, the final model's holdout error, wall time
+and plans. Writes exploration_bench.json, prints a summary table, and draws PNG plots with
+matplotlib.
+
+    /usr/bin/python3 tests/bench/exploration_bench.py --build build --out build/bench/exploration
+"""
+
+import argparse
+import json
+import os
+import re
+import signal
+import sqlite3
+import subprocess
+import sys
+import tempfile
+import time
+
+import numpy as np
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+GRID = 20
+
+
+def start_forayd(forayd, data_dir):
+    log_path = os.path.join(data_dir, "forayd.log")
+    log = open(log_path, "w+")
+    process = subprocess.Popen([forayd, "--listen=127.0.0.1:0", f"--data_dir={data_dir}"],
+                               stdout=log, stderr=subprocess.STDOUT)
+    deadline = time.monotonic() + 20
+    while time.monotonic() < deadline:
+        with open(log_path) as f:
+            match = re.search(r"\(port (\d+)\)", f.read())
+        if match:
+            return process, f"127.0.0.1:{match.group(1)}"
+        if process.poll() is not None:
+            break
+        time.sleep(0.05)
+    raise RuntimeError(open(log_path).read())
+
+
+def stop(process):
+    process.send_signal(signal.SIGTERM)
+    try:
+        process.wait(timeout=30)
+    except subprocess.TimeoutExpired:
+        process.kill()
+
+
+def read_store(data_dir, python_dir):
+    """The robot's spec, its transitions' states in seq order with their episode ids, and the
+    newest checkpoint's training report, straight from the SQLite file."""
+    sys.path.insert(0, python_dir)
+    from foray.v1 import types_pb2
+
+    db = sqlite3.connect(os.path.join(data_dir, "foray.db"))
+    try:
+        robot_id, spec_bytes = db.execute("SELECT robot_id, spec FROM robots").fetchone()
+        spec = types_pb2.RobotSpec.FromString(spec_bytes)
+        rows = db.execute("SELECT episode, next_state FROM transitions WHERE robot_id = ? ORDER BY seq",
+                          (robot_id,)).fetchall()
+        report = db.execute("SELECT report FROM checkpoints WHERE robot_id = ? "
+                            "ORDER BY model_version DESC LIMIT 1", (robot_id,)).fetchone()
+    finally:
+        db.close()
+    episodes = np.array([r[0] for r in rows])
+    states = np.array([np.frombuffer(r[1], dtype="<f8") for r in rows])
+    training = types_pb2.TrainingReport.FromString(report[0]) if report else None
+    return spec, episodes, states, training
+
+
+def cells(spec, states):
+    """Indices of the occupied cells of the coverage grid, one per state."""
+    i, j = spec.coverage_indices[0], spec.coverage_indices[1]
+    lo, hi = np.array(spec.coverage_lower), np.array(spec.coverage_upper)
+    u = np.clip(((states[:, [i, j]] - lo) / (hi - lo) * GRID).astype(int), 0, GRID - 1)
+    return u[:, 0] * GRID + u[:, 1]
+
+
+def run_one(args, scenario, strategy, seed):
+    with tempfile.TemporaryDirectory(prefix="foray-bench-") as data_dir:
+        process, address = start_forayd(os.path.join(args.build, "server", "forayd"), data_dir)
+        report_path = os.path.join(data_dir, "report.jsonl")
+        start = time.monotonic()
+        try:
+            result = subprocess.run(
+                [os.path.join(args.build, "client", "foray-sim"), f"--address={address}",
+                 f"--admin_token_file={os.path.join(data_dir, 'admin-token')}",
+                 f"--state_dir={os.path.join(data_dir, 'sim')}", f"--robots={scenario}",
+                 f"--episodes={args.episodes}", f"--steps={args.steps}", f"--seed={seed}",
+                 f"--strategy={strategy}", "--train_each_episode",
+                 f"--min_transitions={args.steps}", "--train_every=1000000",
+                 f"--deadline_ms={args.deadline_ms}", f"--report={report_path}",
+                 f"--name_prefix=bench-{strategy}-s{seed}"],
+                capture_output=True, text=True, timeout=3600)
+            if result.returncode != 0:
+                raise RuntimeError(result.stdout + result.stderr)
+            wall = time.monotonic() - start
+            spec, episode_ids, states, training = read_store(data_dir, os.path.join(args.build, "python"))
+        finally:
+            stop(process)
+        episodes = [json.loads(line) for line in open(report_path)]
+    occupied, coverage = set(), []
+    visit = np.zeros(GRID * GRID, dtype=int)
+    for e in episodes:
+        mine = cells(spec, states[episode_ids == e["episode"]])
+        occupied.update(mine.tolist())
+        np.add.at(visit, mine, 1)
+        coverage.append(len(occupied) / (GRID * GRID))
+    returns = [e["return"] for e in episodes]
+    first = next((k + 1 for k, r in enumerate(returns) if r > 0), None)
+    return {
+        "scenario": scenario, "strategy": strategy, "seed": seed,
+        "first_discovery_episode": first,
+        "returns": returns, "coverage": coverage,
+        "visits": visit.reshape(GRID, GRID).tolist(),
+        "holdout_mse": training.holdout_mse if training else None,
+        "holdout_nll": training.holdout_nll if training else None,
+        "plans": sum(e["plans"] for e in episodes),
+        "plan_ms": float(np.mean([e["plan_ms"] for e in episodes if e["plans"] > 0])) if any(
+            e["plans"] > 0 for e in episodes) else 0.0,
+        "wall_s": wall,
+    }
+
+
+def summarise(runs, episodes):
+    rows = []
+    for scenario in sorted({r["scenario"] for r in runs}):
+        for strategy in ("explore", "reward", "noise"):
+            mine = [r for r in runs if r["scenario"] == scenario and r["strategy"] == strategy]
+            if not mine:
+                continue
+            found = [r["first_discovery_episode"] for r in mine if r["first_discovery_episode"]]
+            late = [sum(1 for x in r["returns"][-5:] if x > 0) for r in mine if r["first_discovery_episode"]]
+            rows.append({
+                "scenario": scenario, "strategy": strategy, "runs": len(mine),
+                "discovered": len(found),
+                "median_first_episode": float(np.median(found)) if found else None,
+                "final_coverage_mean": float(np.mean([r["coverage"][-1] for r in mine])),
+                "reached_in_4_of_last_5": sum(1 for n in late if n >= 4),
+                "wall_s_mean": float(np.mean([r["wall_s"] for r in mine])),
+            })
+    return rows
+
+
+def print_table(rows, episodes, steps):
+    print(f"budget: {episodes} episodes of {steps} steps per run")
+    print(f"{'scenario':8} {'strategy':8} {'found':>7} {'median ep':>9} {'coverage':>9} "
+          f"{'4 of last 5':>11} {'wall s':>7}")
+    for r in rows:
+        med = f"{r['median_first_episode']:.1f}" if r["median_first_episode"] else "-"
+        print(f"{r['scenario']:8} {r['strategy']:8} {r['discovered']:>3}/{r['runs']:<3} {med:>9} "
+              f"{r['final_coverage_mean']:9.3f} {r['reached_in_4_of_last_5']:>11} {r['wall_s_mean']:7.1f}")
+
+
+def plot(runs, out_dir):
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    colours = {"explore": "tab:green", "reward": "tab:blue", "noise": "tab:grey"}
+    for scenario in sorted({r["scenario"] for r in runs}):
+        fig, axes = plt.subplots(1, 2, figsize=(11, 4))
+        for strategy, colour in colours.items():
+            mine = [r for r in runs if r["scenario"] == scenario and r["strategy"] == strategy]
+            if not mine:
+                continue
+            for ax, key in zip(axes, ("coverage", "returns")):
+                data = np.array([r[key] for r in mine], dtype=float)
+                x = np.arange(1, data.shape[1] + 1)
+                ax.plot(x, data.mean(0), color=colour, label=strategy)
+                ax.fill_between(x, data.min(0), data.max(0), color=colour, alpha=0.2)
+        axes[0].set(title=f"{scenario}: coverage (20x20 grid)", xlabel="episode", ylabel="fraction of cells")
+        axes[1].set(title=f"{scenario}: return (steps in the hidden zone)", xlabel="episode", ylabel="return")
+        axes[0].legend()
+        fig.tight_layout()
+        fig.savefig(os.path.join(out_dir, f"{scenario}_coverage_return.png"), dpi=110)
+        plt.close(fig)
+
+        strategies = [s for s in colours if any(r["scenario"] == scenario and r["strategy"] == s for r in runs)]
+        fig, axes = plt.subplots(1, len(strategies), figsize=(4 * len(strategies), 4))
+        for ax, strategy in zip(np.atleast_1d(axes), strategies):
+            visits = sum(np.array(r["visits"]) for r in runs
+                         if r["scenario"] == scenario and r["strategy"] == strategy)
+            ax.imshow(np.log1p(visits).T, origin="lower", cmap="viridis")
+            ax.set(title=f"{scenario} / {strategy}: visits (log)", xticks=[], yticks=[])
+        fig.tight_layout()
+        fig.savefig(os.path.join(out_dir, f"{scenario}_visits.png"), dpi=110)
+        plt.close(fig)
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--build", default="build")
+    parser.add_argument("--out", default="build/bench/exploration")
+    parser.add_argument("--scenarios", default="gantry,arm")
+    parser.add_argument("--strategies", default="explore,reward,noise")
+    parser.add_argument("--seeds", type=int, default=10)
+    parser.add_argument("--episodes", type=int, default=15)
+    parser.add_argument("--steps", type=int, default=100)
+    parser.add_argument("--deadline_ms", type=float, default=100)
+    parser.add_argument("--no-plots", action="store_true")
+    args = parser.parse_args(argv)
+    os.makedirs(args.out, exist_ok=True)
+    runs = []
+    for scenario in args.scenarios.split(","):
+        for seed in range(1, args.seeds + 1):
+            for strategy in args.strategies.split(","):
+                run = run_one(args, scenario, strategy, seed)
+                runs.append(run)
+                print(f"{scenario} {strategy} seed {seed}: first reward episode "
+                      f"{run['first_discovery_episode']}, coverage {run['coverage'][-1]:.3f}, "
+                      f"{run['wall_s']:.0f} s", flush=True)
+    rows = summarise(runs, args.episodes)
+    with open(os.path.join(args.out, "exploration_bench.json"), "w") as f:
+        json.dump({"settings": vars(args), "summary": rows, "runs": runs}, f, indent=1)
+    print_table(rows, args.episodes, args.steps)
+    if not args.no_plots:
+        plot(runs, args.out)
+    return runs, rows
+
+
+if __name__ == "__main__":
+    main()
