@@ -1,7 +1,6 @@
 // forayd: the Foray planning server.
 //
-// Serves the foray.v1 gRPC services (registry, robot sessions and models; monitoring is
-// registered and answers UNIMPLEMENTED for now), standard gRPC health checking and server
+// Serves the foray.v1 gRPC services (registry, robot sessions, models, monitoring), standard gRPC health checking and server
 // reflection, trains each robot's ensemble in the background, and stops cleanly on SIGINT or
 // SIGTERM: no new calls, in-flight calls finish within the grace period, the trainer finishes
 // its round, the database closes.
@@ -61,12 +60,6 @@ namespace {
 constexpr char kCaution[] =
     "Foray plans robot motions but is not a safety system: keep emergency stops and\n"
     "safety-rated limits in place and follow your lab's risk assessment and local rules.";
-
-// The foray.v1 services not implemented yet: registered from the generated bases, so every
-// rpc answers UNIMPLEMENTED and the contract stays visible through reflection.
-struct PendingServices {
-  foray::v1::Monitoring::Service monitoring;
-};
 
 bool ReadFile(const std::string& path, std::string* contents) {
   std::ifstream in(path, std::ios::binary);
@@ -187,7 +180,7 @@ int main(int argc, char** argv) {
   foray::api::RegistryService registry(&directory);
   foray::api::SessionService session(&directory, &gate);
   foray::api::ModelsService models(&directory);
-  PendingServices pending;
+  foray::api::MonitoringService monitoring(&directory);
   grpc::ServerBuilder builder;
   int bound_port = 0;
   const std::string listen = absl::GetFlag(FLAGS_listen);
@@ -198,7 +191,7 @@ int main(int argc, char** argv) {
   builder.RegisterService(&registry);
   builder.RegisterService(&session);
   builder.RegisterService(&models);
-  builder.RegisterService(&pending.monitoring);
+  builder.RegisterService(&monitoring);
   std::unique_ptr<grpc::Server> server = builder.BuildAndStart();
   if (server == nullptr || bound_port == 0) {
     std::fprintf(stderr, "forayd: cannot listen on \"%s\" (address in use or malformed)\n",

@@ -238,6 +238,34 @@ absl::StatusOr<robot::RobotConfig> ConfigFromSpec(const v1::RobotSpec& spec) {
                                      c.state_dim));
     }
   }
+  if (spec.coverage_indices_size() == 2) {
+    c.coverage_indices = {static_cast<int>(spec.coverage_indices(0)),
+                          static_cast<int>(spec.coverage_indices(1))};
+  } else if (spec.coverage_indices_size() == 0) {
+    c.coverage_indices = {0, c.state_dim > 1 ? 1 : 0};
+  } else {
+    return Invalid(absl::StrFormat("spec.coverage_indices has %d entries, needs 2 (or none)",
+                                   spec.coverage_indices_size()));
+  }
+  if (spec.coverage_lower_size() != 0 || spec.coverage_upper_size() != 0) {
+    if (spec.coverage_lower_size() != 2 || spec.coverage_upper_size() != 2) {
+      return Invalid(absl::StrFormat(
+          "spec.coverage_lower and coverage_upper have %d and %d values, need 2 each (or none)",
+          spec.coverage_lower_size(), spec.coverage_upper_size()));
+    }
+    for (int k = 0; k < 2; ++k) {
+      if (!(spec.coverage_lower(k) < spec.coverage_upper(k))) {
+        return Invalid(absl::StrFormat("spec.coverage range %d is [%g, %g]; lower must be < upper",
+                                       k, spec.coverage_lower(k), spec.coverage_upper(k)));
+      }
+    }
+    c.coverage_lower.assign(spec.coverage_lower().begin(), spec.coverage_lower().end());
+    c.coverage_upper.assign(spec.coverage_upper().begin(), spec.coverage_upper().end());
+  }
+  if (spec.coverage_cells() != 0) c.coverage_cells = static_cast<int>(spec.coverage_cells());
+  if (c.coverage_cells < 1 || c.coverage_cells > 200) {
+    return Invalid(absl::StrFormat("spec.coverage_cells is %d, must be in 1..200", c.coverage_cells));
+  }
   return c;
 }
 

@@ -530,4 +530,149 @@ grpc::Status ModelsService::ImportModel(grpc::ServerContext* context,
   return grpc::Status::OK;
 }
 
+namespace {
+
+google::protobuf::Timestamp Stamp(absl::Time t) {
+  google::protobuf::Timestamp ts;
+  const int64_t us = absl::ToUnixMicros(t);
+  ts.set_seconds(us / 1000000);
+  ts.set_nanos(static_cast<int32_t>(us % 1000000) * 1000);
+  return ts;
+}
+
+v1::RobotProgress ProgressToWire(const RobotEntry& entry) {
+  const robot::ProgressView p = entry.runtime->Progress();
+  v1::RobotProgress out;
+  out.set_robot_id(entry.robot_id);
+  out.set_name(entry.spec.name());
+  out.set_transitions(p.status.transitions);
+  out.set_episodes(p.episodes);
+  out.set_model_version(p.status.model_version);
+  if (p.model) *out.mutable_last_training() = robot::ReportToWire(*p.model);
+  if (p.last_episode) {
+    v1::EpisodeSummary* e = out.mutable_last_episode();
+    e->set_episode(p.last_episode->episode);
+    e->set_steps(static_cast<uint32_t>(p.last_episode->steps));
+    e->set_return_(p.last_episode->episode_return);
+    e->set_information_gain(p.last_episode->information_gain);
+    *e->mutable_ended_at() = Stamp(p.last_episode->ended_at);
+  }
+  v1::Coverage* c = out.mutable_coverage();
+  for (int i : p.coverage_indices) c->add_indices(static_cast<uint32_t>(i));
+  for (double v : p.coverage_lower) c->add_lower(v);
+  for (double v : p.coverage_upper) c->add_upper(v);
+  c->set_cells(static_cast<uint32_t>(p.coverage_cells));
+  for (uint32_t n : p.coverage_counts) c->add_counts(n);
+  v1::LatencySummary* l = out.mutable_plan_latency();
+  l->set_plans(p.plans);
+  l->set_p50_ms(p.p50_ms);
+  l->set_p90_ms(p.p90_ms);
+  l->set_p99_ms(p.p99_ms);
+  l->set_deadline_misses(p.deadline_misses);
+  out.set_queued_training(p.status.training ? 1 : 0);
+  out.set_archived(entry.archived);
+  return out;
+}
+
+}  // namespace
+
+absl::StatusOr<std::vector<std::shared_ptr<const RobotEntry>>> MonitoringService::Visible(
+    const grpc::ServerContext& context, const std::string& robot_id) const {
+  if (robot_id.empty()) {
+    if (absl::Status s = directory_->CheckAdmin(context); !s.ok()) return s;
+    return directory_->List(/*include_archived=*/true);
+  }
+  auto entry = directory_->Authorize(context, robot_id, /*admin_ok=*/true);
+  if (!entry.ok()) return entry.status();
+  return std::vector<std::shared_ptr<const RobotEntry>>{*entry};
+}
+
+grpc::Status MonitoringService::GetProgress(grpc::ServerContext* context,
+                                            const v1::GetProgressRequest* request,
+                                            v1::ProgressSnapshot* response) {
+  auto robots = Visible(*context, request->robot_id());
+  if (!robots.ok()) return ToGrpc(robots.status());
+  for (const auto& entry : *robots) *response->add_robots() = ProgressToWire(*entry);
+  *response->mutable_taken_at() = Stamp(absl::Now());
+  return grpc::Status::OK;
+}
+
+grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
+                                              const v1::WatchProgressRequest* request,
+                                              grpc::ServerWriter<v1::ProgressEvent>* writer) {
+  auto robots = Visible(*context, request->robot_id());
+  if (!robots.ok()) return ToGrpc(robots.status());
+  // First where every robot stands now, then the records since the requested time (history
+  // from the store), then new records as they are written, until the client goes away.
+  for (const auto& entry : *robots) {
+    v1::ProgressEvent event;
+    event.set_robot_id(entry->robot_id);
+    *event.mutable_at() = Stamp(absl::Now());
+    *event.mutable_snapshot() = ProgressToWire(*entry);
+    if (!writer->Write(event)) return grpc::Status::OK;
+  }
+  const absl::Time since = request->has_since()
+                               ? absl::FromUnixSeconds(request->since().seconds()) +
+                                     absl::Nanoseconds(request->since().nanos())
+                               : absl::Now();
+  int64_t after_row = 0;
+  while (!context->IsCancelled()) {
+    auto records = directory_->store()->ReadProgress(after_row, since, request->robot_id());
+    if (!records.ok()) return ToGrpc(records.status());
+    for (const store::ProgressRecord& r : *records) {
+      after_row = r.row;
+      v1::ProgressEvent event;
+      event.set_robot_id(r.robot_id);
+      *event.mutable_at() = Stamp(r.at);
+      if (r.kind == "training") {
+        event.mutable_training()->ParseFromString(r.payload);
+      } else if (r.kind == "episode") {
+        event.mutable_episode()->ParseFromString(r.payload);
+      } else {
+        continue;
+      }
+      if (!writer->Write(event)) return grpc::Status::OK;
+    }
+    if (records->size() < 1000) absl::SleepFor(poll_);
+  }
+  return grpc::Status::OK;
+}
+
+grpc::Status MonitoringService::ExportTransitions(grpc::ServerContext* context,
+                                                  const v1::ExportTransitionsRequest* request,
+                                                  grpc::ServerWriter<v1::TransitionBatch>* writer) {
+  auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
+  if (!entry.ok()) return ToGrpc(entry.status());
+  const uint64_t from = std::max<uint64_t>(request->from_seq(), 1);
+  const uint64_t to = request->to_seq() == 0 ? UINT64_MAX : request->to_seq();
+  if (to < from) {
+    return ToGrpc(absl::InvalidArgumentError(absl::StrFormat(
+        "to_seq %d is below from_seq %d", request->to_seq(), request->from_seq())));
+  }
+  auto transitions = directory_->store()->LoadTransitions(request->robot_id(), from - 1);
+  if (!transitions.ok()) return ToGrpc(transitions.status());
+  v1::TransitionBatch batch;
+  auto send = [&] {
+    const bool ok = writer->Write(batch);
+    batch.Clear();
+    return ok;
+  };
+  for (const store::TransitionRecord& t : *transitions) {
+    if (t.seq > to || context->IsCancelled()) break;
+    v1::Transition* out = batch.add_transitions();
+    out->set_seq(t.seq);
+    out->set_episode(t.episode);
+    out->set_step(t.step);
+    for (double v : t.state) out->add_state(v);
+    for (double v : t.action) out->add_action(v);
+    for (double v : t.next_state) out->add_next_state(v);
+    out->set_reward(t.reward);
+    out->set_terminal(t.terminal);
+    *out->mutable_measured_at() = Stamp(t.measured_at);
+    if (batch.transitions_size() == 1000 && !send()) return grpc::Status::OK;
+  }
+  if (batch.transitions_size() > 0) send();
+  return grpc::Status::OK;
+}
+
 }  // namespace foray::api

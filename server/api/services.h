@@ -5,6 +5,7 @@
 #define FORAY_SERVER_API_SERVICES_H_
 
 #include "foray/v1/models.grpc.pb.h"
+#include "foray/v1/monitoring.grpc.pb.h"
 #include "foray/v1/registry.grpc.pb.h"
 #include "foray/v1/session.grpc.pb.h"
 #include "server/api/directory.h"
@@ -75,6 +76,32 @@ class ModelsService final : public v1::Models::Service {
 
  private:
   RobotDirectory* const directory_;
+};
+
+// Progress of learning: snapshots, a live stream resumable from a time, and transition export.
+// GetProgress and WatchProgress for all robots need the admin token; for one robot its own token
+// works too.
+class MonitoringService final : public v1::Monitoring::Service {
+ public:
+  // `poll` is how often a watch looks for new records.
+  explicit MonitoringService(RobotDirectory* directory, absl::Duration poll = absl::Milliseconds(200))
+      : directory_(directory), poll_(poll) {}
+
+  grpc::Status GetProgress(grpc::ServerContext* context, const v1::GetProgressRequest* request,
+                           v1::ProgressSnapshot* response) override;
+  grpc::Status WatchProgress(grpc::ServerContext* context, const v1::WatchProgressRequest* request,
+                             grpc::ServerWriter<v1::ProgressEvent>* writer) override;
+  grpc::Status ExportTransitions(grpc::ServerContext* context,
+                                 const v1::ExportTransitionsRequest* request,
+                                 grpc::ServerWriter<v1::TransitionBatch>* writer) override;
+
+ private:
+  // The robots a call may see: one (its own token or the admin's) or all (admin).
+  absl::StatusOr<std::vector<std::shared_ptr<const RobotEntry>>> Visible(
+      const grpc::ServerContext& context, const std::string& robot_id) const;
+
+  RobotDirectory* const directory_;
+  const absl::Duration poll_;
 };
 
 }  // namespace foray::api

@@ -6,6 +6,7 @@
 
 #include <cstdint>
 #include <string>
+#include <vector>
 
 #include "core/explore/objective.h"
 #include "core/model/ensemble.h"
@@ -34,6 +35,11 @@ struct RobotConfig {
   TrainingPolicy policy;
   plan::PlannerOptions planner;
   explore::ObjectiveOptions objective;
+  // The coverage grid: two state indices, their ranges (empty: the data's own range) and the
+  // cells per side.
+  std::vector<int> coverage_indices = {0, 1};
+  std::vector<double> coverage_lower, coverage_upper;
+  int coverage_cells = 20;
 };
 
 }  // namespace foray::robot

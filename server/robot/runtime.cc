@@ -1,11 +1,13 @@
 #include "server/robot/runtime.h"
 
+#include <algorithm>
 #include <chrono>
 #include <utility>
 
 #include "absl/strings/str_format.h"
 #include "core/model/serialize.h"
 #include "core/util/random.h"
+#include "foray/v1/monitoring.pb.h"
 #include "foray/v1/types.pb.h"
 
 namespace foray::robot {
@@ -89,12 +91,111 @@ RobotStatus RobotRuntime::Status() const {
   return s;
 }
 
+ProgressView RobotRuntime::Progress() const {
+  absl::MutexLock lock(&mu_);
+  ProgressView v;
+  v.status.last_seq = last_seq_;
+  v.status.transitions = rewards_.size();
+  v.status.model_version = published_ ? published_->version : 0;
+  v.status.training = training_;
+  v.episodes = episodes_;
+  v.last_episode = last_episode_record_;
+  v.model = published_;
+  v.plans = plans_;
+  v.deadline_misses = deadline_misses_;
+  if (!latencies_ms_.empty()) {
+    std::vector<double> sorted = latencies_ms_;
+    std::sort(sorted.begin(), sorted.end());
+    auto at = [&](double q) { return sorted[static_cast<size_t>(q * (sorted.size() - 1) + 0.5)]; };
+    v.p50_ms = at(0.5);
+    v.p90_ms = at(0.9);
+    v.p99_ms = at(0.99);
+  }
+  // Coverage of the next states on the grid; ranges from the config or from the data.
+  const int sd = config_.state_dim, n = static_cast<int>(rewards_.size());
+  const int cells = config_.coverage_cells;
+  v.coverage_indices = config_.coverage_indices;
+  v.coverage_cells = cells;
+  v.coverage_lower = config_.coverage_lower;
+  v.coverage_upper = config_.coverage_upper;
+  if (v.coverage_lower.empty()) {
+    v.coverage_lower = {0.0, 0.0};
+    v.coverage_upper = {1.0, 1.0};
+    for (int k = 0; k < 2 && n > 0; ++k) {
+      float lo = next_states_[config_.coverage_indices[k]], hi = lo;
+      for (int r = 1; r < n; ++r) {
+        const float x = next_states_[static_cast<size_t>(r) * sd + config_.coverage_indices[k]];
+        lo = std::min(lo, x);
+        hi = std::max(hi, x);
+      }
+      v.coverage_lower[k] = lo;
+      v.coverage_upper[k] = hi > lo ? hi : lo + 1.0;
+    }
+  }
+  v.coverage_counts.assign(static_cast<size_t>(cells) * cells, 0);
+  for (int r = 0; r < n; ++r) {
+    int cell[2];
+    for (int k = 0; k < 2; ++k) {
+      const double x = next_states_[static_cast<size_t>(r) * sd + config_.coverage_indices[k]];
+      const double u = (x - v.coverage_lower[k]) / (v.coverage_upper[k] - v.coverage_lower[k]);
+      cell[k] = std::clamp(static_cast<int>(u * cells), 0, cells - 1);
+    }
+    ++v.coverage_counts[static_cast<size_t>(cell[0]) * cells + cell[1]];
+  }
+  return v;
+}
+
 std::shared_ptr<const PublishedModel> RobotRuntime::published() const {
   absl::MutexLock lock(&mu_);
   return published_;
 }
 
+void RobotRuntime::CloseEpisode() {
+  if (current_steps_ == 0) return;
+  EpisodeRecord e;
+  e.episode = current_episode_;
+  e.steps = current_steps_;
+  e.episode_return = current_return_;
+  e.information_gain = plan_gain_count_ > 0 ? plan_gain_sum_ / plan_gain_count_ : 0.0;
+  e.ended_at = absl::Now();
+  ++episodes_;
+  last_episode_record_ = e;
+  if (!replaying_) unrecorded_.push_back(e);
+  current_steps_ = 0;
+  current_return_ = 0.0;
+  plan_gain_sum_ = 0.0;
+  plan_gain_count_ = 0;
+}
+
+void RobotRuntime::RecordProgress() {
+  std::vector<EpisodeRecord> records;
+  {
+    absl::MutexLock lock(&mu_);
+    records.swap(unrecorded_);
+  }
+  for (const EpisodeRecord& e : records) {
+    v1::EpisodeSummary summary;
+    summary.set_episode(e.episode);
+    summary.set_steps(static_cast<uint32_t>(e.steps));
+    summary.set_return_(e.episode_return);
+    summary.set_information_gain(e.information_gain);
+    summary.mutable_ended_at()->set_seconds(absl::ToUnixSeconds(e.ended_at));
+    store::ProgressRecord record;
+    record.robot_id = robot_id_;
+    record.at = e.ended_at;
+    record.kind = "episode";
+    record.payload = summary.SerializeAsString();
+    // Progress is informational: a failed write must not fail the transitions' ack.
+    store_->AppendProgress(record).IgnoreError();
+  }
+}
+
 void RobotRuntime::AddToDataset(const store::TransitionRecord& t) {
+  if (current_steps_ > 0 && t.episode != current_episode_) CloseEpisode();
+  current_episode_ = t.episode;
+  ++current_steps_;
+  current_return_ += t.reward;
+  if (t.terminal) CloseEpisode();
   for (double v : t.state) states_.push_back(static_cast<float>(v));
   for (double v : t.action) actions_.push_back(static_cast<float>(v));
   for (double v : t.next_state) next_states_.push_back(static_cast<float>(v));
@@ -133,7 +234,9 @@ absl::Status RobotRuntime::Load() {
     return checkpoint.status();
   }
   absl::MutexLock lock(&mu_);
+  replaying_ = true;
   for (const store::TransitionRecord& t : *transitions) AddToDataset(t);
+  replaying_ = false;
   // What was stored before the restart is already in the checkpoint's model (or will be in
   // the next round's): no round is owed for it.
   new_since_training_ = 0;
@@ -156,10 +259,13 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
   uint32_t beyond = 0;
   for (const store::TransitionRecord& t : batch) beyond += t.seq > before ? 1 : 0;
   if (beyond == result->accepted) {
-    absl::MutexLock lock(&mu_);
-    for (const store::TransitionRecord& t : batch) {
-      if (t.seq > before) AddToDataset(t);
+    {
+      absl::MutexLock lock(&mu_);
+      for (const store::TransitionRecord& t : batch) {
+        if (t.seq > before) AddToDataset(t);
+      }
     }
+    RecordProgress();
     return result;
   }
   // Some accepted transitions filled gaps below the last seq (rare): mirror the store anew.
@@ -175,7 +281,11 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
   last_episode_ = 0;
   last_terminal_ = false;
   const bool ended = episode_ended_;
+  replaying_ = true;  // a rebuild: the finished episodes are on record already
+  episodes_ = 0;
+  current_steps_ = 0;
   for (const store::TransitionRecord& t : *all) AddToDataset(t);
+  replaying_ = false;
   new_since_training_ = pending;
   episode_ended_ = ended;
   return result;
@@ -293,8 +403,16 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
   checkpoint.report = ReportToWire(*published).SerializeAsString();
   checkpoint.model = model::SerializeEnsemble(published->ensemble);
   if (absl::Status s = store_->PutCheckpoint(robot_id_, checkpoint); !s.ok()) return s;
-  absl::MutexLock lock(&mu_);
-  published_ = published;
+  {
+    absl::MutexLock lock(&mu_);
+    published_ = published;
+  }
+  store::ProgressRecord record;
+  record.robot_id = robot_id_;
+  record.at = published->finished_at;
+  record.kind = "training";
+  record.payload = checkpoint.report;
+  store_->AppendProgress(record).IgnoreError();  // informational, like episode records
   return published;
 }
 
@@ -375,6 +493,19 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     warm_start_ = outcome.result.warm_start;
   }
   outcome.compute_ms = absl::ToDoubleMilliseconds(absl::Now() - start);
+  {
+    absl::MutexLock lock(&mu_);
+    if (latencies_ms_.size() < 1000) {
+      latencies_ms_.push_back(outcome.compute_ms);
+    } else {
+      latencies_ms_[plans_ % 1000] = outcome.compute_ms;
+    }
+    if (outcome.compute_ms > absl::ToDoubleMilliseconds(input.budget)) ++deadline_misses_;
+    if (!outcome.from_prior && outcome.result.information_gain.size() > 0) {
+      plan_gain_sum_ += outcome.result.information_gain[0];
+      ++plan_gain_count_;
+    }
+  }
   return outcome;
 }
 

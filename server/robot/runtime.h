@@ -72,6 +72,34 @@ struct RobotStatus {
   bool training = false;
 };
 
+// One finished episode: steps, return, mean information gain of the plans made during it
+// (the first step of each plan, the one executed), when it ended.
+struct EpisodeRecord {
+  uint64_t episode = 0;
+  int steps = 0;
+  double episode_return = 0.0;
+  double information_gain = 0.0;  // nats per executed step
+  absl::Time ended_at;
+};
+
+// How a robot's learning goes, for monitoring.
+struct ProgressView {
+  RobotStatus status;
+  uint64_t episodes = 0;
+  std::optional<EpisodeRecord> last_episode;
+  std::shared_ptr<const PublishedModel> model;  // null before the first
+  // Coverage: visited-state counts on a cells x cells grid over two state dimensions, row
+  // (first index) major.
+  std::vector<int> coverage_indices;
+  std::vector<double> coverage_lower, coverage_upper;
+  int coverage_cells = 0;
+  std::vector<uint32_t> coverage_counts;
+  // Plan latency over the last 1,000 plans, milliseconds.
+  uint64_t plans = 0;
+  double p50_ms = 0, p90_ms = 0, p99_ms = 0;
+  uint64_t deadline_misses = 0;
+};
+
 class RobotRuntime {
  public:
   // Not copyable or movable (shared by the services through std::shared_ptr).
@@ -87,6 +115,7 @@ class RobotRuntime {
   void UpdateSettings(const plan::PlannerOptions& planner, const explore::ObjectiveOptions& objective,
                       const model::TrainingOptions& training, const TrainingPolicy& policy);
   RobotStatus Status() const;
+  ProgressView Progress() const;
   std::shared_ptr<const PublishedModel> published() const;
 
   // Mirrors the stored transitions and publishes the newest checkpoint, without retraining.
@@ -144,6 +173,22 @@ class RobotRuntime {
   std::shared_ptr<const PublishedModel> published_ ABSL_GUARDED_BY(mu_);
   std::optional<plan::CemWarmStart> warm_start_ ABSL_GUARDED_BY(mu_);
   uint64_t plans_ ABSL_GUARDED_BY(mu_) = 0;
+
+  // Progress: the episode in progress, finished ones, plan latencies.
+  bool replaying_ ABSL_GUARDED_BY(mu_) = false;  // Load(): episodes are on record already
+  uint64_t current_episode_ ABSL_GUARDED_BY(mu_) = 0;
+  int current_steps_ ABSL_GUARDED_BY(mu_) = 0;
+  double current_return_ ABSL_GUARDED_BY(mu_) = 0.0;
+  double plan_gain_sum_ ABSL_GUARDED_BY(mu_) = 0.0;
+  int plan_gain_count_ ABSL_GUARDED_BY(mu_) = 0;
+  uint64_t episodes_ ABSL_GUARDED_BY(mu_) = 0;
+  std::optional<EpisodeRecord> last_episode_record_ ABSL_GUARDED_BY(mu_);
+  std::vector<EpisodeRecord> unrecorded_ ABSL_GUARDED_BY(mu_);  // to write to the store
+  std::vector<double> latencies_ms_ ABSL_GUARDED_BY(mu_);       // ring of the last 1,000
+  uint64_t deadline_misses_ ABSL_GUARDED_BY(mu_) = 0;
+
+  void CloseEpisode() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  void RecordProgress();  // writes unrecorded_ episodes to the store
 };
 
 }  // namespace foray::robot

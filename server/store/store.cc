@@ -2,6 +2,7 @@
 
 #include <sqlite3.h>
 
+#include <cstdint>
 #include <cstring>
 #include <utility>
 
@@ -338,6 +339,46 @@ absl::StatusOr<std::pair<uint64_t, uint64_t>> Store::TransitionSummary(
   st.BindText(1, robot_id);
   if (st.Step() != SQLITE_ROW) return SqlError(db_, "summarising transitions");
   return std::make_pair(static_cast<uint64_t>(st.Int(0)), static_cast<uint64_t>(st.Int(1)));
+}
+
+absl::Status Store::AppendProgress(const ProgressRecord& record) {
+  absl::MutexLock lock(&mu_);
+  Statement st(db_, "INSERT INTO progress (robot_id, at_us, kind, payload) VALUES (?, ?, ?, ?)");
+  if (!st.ok()) return SqlError(db_, "preparing a progress insert");
+  st.BindText(1, record.robot_id);
+  st.Bind(2, Micros(record.at));
+  st.BindText(3, record.kind);
+  st.BindBlob(4, record.payload);
+  if (st.Step() != SQLITE_DONE) return SqlError(db_, "writing a progress record");
+  return absl::OkStatus();
+}
+
+absl::StatusOr<std::vector<ProgressRecord>> Store::ReadProgress(int64_t after_row, absl::Time since,
+                                                                const std::string& robot_id,
+                                                                int limit) const {
+  absl::MutexLock lock(&mu_);
+  Statement st(db_,
+               "SELECT rowid, robot_id, at_us, kind, payload FROM progress WHERE rowid > ? AND "
+               "at_us >= ? AND (? = '' OR robot_id = ?) ORDER BY rowid LIMIT ?");
+  if (!st.ok()) return SqlError(db_, "preparing a progress read");
+  st.Bind(1, after_row);
+  st.Bind(2, since == absl::InfinitePast() ? INT64_MIN : Micros(since));
+  st.BindText(3, robot_id);
+  st.BindText(4, robot_id);
+  st.Bind(5, static_cast<int64_t>(limit));
+  std::vector<ProgressRecord> out;
+  int rc;
+  while ((rc = st.Step()) == SQLITE_ROW) {
+    ProgressRecord r;
+    r.row = st.Int(0);
+    r.robot_id = st.Text(1);
+    r.at = absl::FromUnixMicros(st.Int(2));
+    r.kind = st.Text(3);
+    r.payload = st.Blob(4);
+    out.push_back(std::move(r));
+  }
+  if (rc != SQLITE_DONE) return SqlError(db_, "reading progress");
+  return out;
 }
 
 absl::Status Store::PutCheckpoint(const std::string& robot_id, const CheckpointRecord& c) {

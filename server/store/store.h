@@ -60,6 +60,15 @@ struct CheckpointRecord {
   uint64_t size_bytes = 0;
 };
 
+// One progress record: a training report or an episode summary, as serialised wire messages.
+struct ProgressRecord {
+  int64_t row = 0;  // increasing with every record written
+  std::string robot_id;
+  absl::Time at;
+  std::string kind;     // "training" or "episode"
+  std::string payload;  // serialised foray.v1.TrainingReport or foray.v1.EpisodeSummary
+};
+
 class Store {
  public:
   // Not copyable or movable (owns the connection).
@@ -92,6 +101,14 @@ class Store {
   // Highest stored seq and the number of transitions; 0 and 0 when none.
   absl::StatusOr<std::pair<uint64_t, uint64_t>> TransitionSummary(
       const std::string& robot_id) const;
+
+  // Appends a progress record (row is assigned).
+  absl::Status AppendProgress(const ProgressRecord& record);
+  // Records with row > after_row and at >= since, of one robot (empty: all), in row order,
+  // at most `limit`.
+  absl::StatusOr<std::vector<ProgressRecord>> ReadProgress(int64_t after_row, absl::Time since,
+                                                           const std::string& robot_id,
+                                                           int limit = 1000) const;
 
   // AlreadyExists when the version is taken.
   absl::Status PutCheckpoint(const std::string& robot_id, const CheckpointRecord& checkpoint);

@@ -498,3 +498,51 @@ def test_readme_robot_example_runs_against_a_real_server(forayd, capsys):
     exec(compile(code, "README.md", "exec"), {})
     printed = capsys.readouterr().out.split()
     assert printed[0] == "1" and printed[1] == "True"  # durable seq 1; no model yet
+
+
+def test_progress_snapshot_watch_and_export(forayd):
+    from foray.v1 import monitoring_pb2 as mon
+    from foray.v1 import monitoring_pb2_grpc
+    from google.protobuf import timestamp_pb2
+
+    c = Client(forayd)
+    monitoring = monitoring_pb2_grpc.MonitoringStub(c.channel)
+    robot = c.register(spec("watched", 2, 1, min_transitions=40, every_n=100000))
+    auth = [("authorization", f"Bearer {robot.token}")]
+    rid = robot.robot.robot_id
+    start = timestamp_pb2.Timestamp(seconds=int(time.time()) - 1)
+    batch = transitions(2, 1, 1, 100, episode_len=50)  # two episodes, each ending terminal
+    c.append(robot, batch)
+    c.wait_model(rid, 1)
+    for _ in range(3):
+        c.plan(robot, [0.1, 0.2])
+
+    snap = monitoring.GetProgress(mon.GetProgressRequest(robot_id=rid), metadata=auth).robots[0]
+    assert (snap.transitions, snap.episodes, snap.model_version) == (100, 2, 1)
+    assert snap.last_episode.episode == 2 and snap.last_episode.steps == 50
+    assert abs(snap.last_episode.__getattribute__("return") - sum(t.reward for t in batch[50:])) < 1e-9
+    assert snap.last_training.model_version == 1 and snap.last_training.epochs >= 1
+    assert snap.plan_latency.plans == 3 and snap.plan_latency.p50_ms > 0
+    assert snap.coverage.cells == 20 and sum(snap.coverage.counts) == 100
+    expect_error(CODE.PERMISSION_DENIED, "admin token", monitoring.GetProgress,
+                 mon.GetProgressRequest(), metadata=auth)  # all robots: admin only
+
+    # A late watcher asks from before the data: snapshot, then the two episodes and the training.
+    events = []
+    stream = monitoring.WatchProgress(mon.WatchProgressRequest(robot_id=rid, since=start),
+                                      metadata=auth, timeout=10)
+    try:
+        for event in stream:
+            events.append(event.WhichOneof("event"))
+            if events.count("episode") == 2 and "training" in events:
+                break
+    finally:
+        stream.cancel()
+    assert events[0] == "snapshot"
+    assert events.count("episode") == 2 and events.count("training") == 1
+
+    exported = [t for b in monitoring.ExportTransitions(
+        mon.ExportTransitionsRequest(robot_id=rid, from_seq=11, to_seq=60), metadata=auth)
+        for t in b.transitions]
+    assert [t.seq for t in exported] == list(range(11, 61))
+    assert list(exported[0].state) == list(batch[10].state)
