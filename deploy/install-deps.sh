@@ -28,6 +28,8 @@ PACKAGES=(
   python3-torch          # reference network computations and benchmarks
   python3-pytest         # Python test runner
   python3-matplotlib     # plots of the exploration benchmark
+  python3-prometheus-client # parses /metrics in the tests
+  libcpp-httplib-dev     # HTTP server of /metrics and the JSON API
   libopenblas0-pthread   # optimised BLAS, so the numpy and PyTorch references run at full speed
 )
 

@@ -38,6 +38,7 @@
 #include "server/api/directory.h"
 #include "server/api/services.h"
 #include "server/sched/training_loop.h"
+#include "server/web/web_server.h"
 #include "server/store/store.h"
 
 ABSL_FLAG(std::string, listen, "127.0.0.1:50151",
@@ -45,7 +46,11 @@ ABSL_FLAG(std::string, listen, "127.0.0.1:50151",
 ABSL_FLAG(std::string, data_dir, "./foray-data",
           "Directory for the SQLite database and checkpoints; created if missing.");
 ABSL_FLAG(int, http_port, 0,
-          "Port of the HTTP dashboard and /metrics (0: no HTTP server).");
+          "Port of the HTTP side (/metrics and /api/robots); 0: no HTTP server.");
+ABSL_FLAG(std::string, http_host, "127.0.0.1",
+          "Address the HTTP side listens on; 0.0.0.0 to reach it from other machines.");
+ABSL_FLAG(std::string, viewer_token_file, "",
+          "File with a viewer token that every HTTP request must carry; empty: none needed.");
 ABSL_FLAG(std::string, admin_token_file, "",
           "File holding the admin token (first line). Empty: DATA_DIR/admin-token, created with "
           "a fresh random token (mode 0600) when missing.");
@@ -92,7 +97,8 @@ std::shared_ptr<grpc::ServerCredentials> Credentials(bool* tls) {
   return grpc::SslServerCredentials(options);
 }
 
-// Reads the admin token from `path`, or creates the file with a fresh token when it is missing.
+// Reads a token from the first line of `path`, or (with create) makes the file with a fresh
+// token when it is missing.
 bool LoadAdminToken(const std::filesystem::path& path, bool create, std::string* token) {
   std::ifstream in(path);
   if (in) {
@@ -152,6 +158,13 @@ int main(int argc, char** argv) {
     return 2;
   }
 
+  std::string viewer_hash;
+  if (const std::string viewer_file = absl::GetFlag(FLAGS_viewer_token_file); !viewer_file.empty()) {
+    std::string viewer;
+    if (!LoadAdminToken(viewer_file, /*create=*/false, &viewer)) return 2;
+    viewer_hash = foray::api::HashToken(viewer);
+  }
+
   absl::StatusOr<std::unique_ptr<foray::store::Store>> store =
       foray::store::Store::Open((data_dir / "foray.db").string());
   if (!store.ok()) {
@@ -201,6 +214,16 @@ int main(int argc, char** argv) {
   server->GetHealthCheckService()->SetServingStatus(true);
   trainer.Start();
 
+  foray::web::WebServer web(&directory, &gate, viewer_hash);
+  if (const int http_port = absl::GetFlag(FLAGS_http_port); http_port != 0) {
+    if (absl::Status s = web.Start(absl::GetFlag(FLAGS_http_host), http_port); !s.ok()) {
+      std::fprintf(stderr, "forayd: %s\n", std::string(s.message()).c_str());
+      return 2;
+    }
+    std::fprintf(stderr, "forayd: serving HTTP on %s:%d (/metrics, /api/robots)\n",
+                 absl::GetFlag(FLAGS_http_host).c_str(), http_port);
+  }
+
   std::fprintf(stderr, "%s\n", kCaution);
   std::fprintf(stderr, "forayd: serving gRPC%s on %s (port %d), data in %s, %zu robots\n",
                tls ? " over TLS" : "", listen.c_str(), bound_port, data_dir.c_str(),
@@ -215,6 +238,7 @@ int main(int argc, char** argv) {
   const absl::Duration grace = absl::Seconds(absl::GetFlag(FLAGS_shutdown_grace_s));
   server->Shutdown(absl::ToChronoTime(absl::Now() + grace));
   server->Wait();
+  web.Stop();
   trainer.Stop();
   std::fprintf(stderr, "forayd: stopped\n");
   return 0;

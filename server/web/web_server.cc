@@ -1,0 +1,193 @@
+#include "server/web/web_server.h"
+
+#include <httplib.h>
+
+#include <cmath>
+#include <map>
+#include <vector>
+
+#include "absl/strings/match.h"
+#include "absl/strings/str_cat.h"
+#include "absl/strings/str_format.h"
+#include "absl/strings/str_replace.h"
+#include "server/api/auth.h"
+
+namespace foray::web {
+namespace {
+
+// Label values escape backslash, double quote and newline (exposition format 0.0.4).
+std::string LabelValue(const std::string& v) {
+  return absl::StrReplaceAll(v, {{"\\", "\\\\"}, {"\"", "\\\""}, {"\n", "\\n"}});
+}
+
+std::string JsonString(const std::string& v) {
+  std::string out = "\"";
+  for (char c : v) {
+    switch (c) {
+      case '"': out += "\\\""; break;
+      case '\\': out += "\\\\"; break;
+      case '\n': out += "\\n"; break;
+      default:
+        if (static_cast<unsigned char>(c) < 0x20) {
+          out += absl::StrFormat("\\u%04x", c);
+        } else {
+          out += c;
+        }
+    }
+  }
+  return out + "\"";
+}
+
+std::string Number(double v) { return std::isfinite(v) ? absl::StrFormat("%.17g", v) : "null"; }
+
+double CoverageFraction(const robot::ProgressView& p) {
+  if (p.coverage_counts.empty()) return 0.0;
+  int occupied = 0;
+  for (uint32_t n : p.coverage_counts) occupied += n > 0 ? 1 : 0;
+  return static_cast<double>(occupied) / p.coverage_counts.size();
+}
+
+// One metric family: HELP, TYPE, then a sample per robot.
+struct Family {
+  std::string name, type, help;
+  std::vector<std::pair<std::string, double>> samples;  // label set, value
+};
+
+}  // namespace
+
+std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanGate& gate) {
+  std::map<std::string, Family> families;
+  auto add = [&](const std::string& name, const std::string& type, const std::string& help,
+                 const std::string& labels, double value) {
+    Family& f = families[name];
+    f.name = name;
+    f.type = type;
+    f.help = help;
+    f.samples.emplace_back(labels, value);
+  };
+  for (const auto& entry : directory.List(/*include_archived=*/false)) {
+    const robot::ProgressView p = entry->runtime->Progress();
+    const std::string robot = absl::StrFormat("robot_id=\"%s\",name=\"%s\"", LabelValue(entry->robot_id),
+                                              LabelValue(entry->spec.name()));
+    add("foray_robot_transitions_total", "counter", "Transitions stored for the robot.", robot,
+        static_cast<double>(p.status.transitions));
+    add("foray_robot_episodes_total", "counter", "Episodes finished by the robot.", robot,
+        static_cast<double>(p.episodes));
+    add("foray_robot_model_version", "gauge", "Published model version (0: none yet).", robot,
+        static_cast<double>(p.status.model_version));
+    add("foray_robot_plans_total", "counter", "Plans computed for the robot.", robot,
+        static_cast<double>(p.plans));
+    add("foray_robot_plan_deadline_misses_total", "counter",
+        "Plans that took longer than their deadline.", robot, static_cast<double>(p.deadline_misses));
+    for (const auto& [q, v] : {std::pair{"0.5", p.p50_ms}, {"0.9", p.p90_ms}, {"0.99", p.p99_ms}}) {
+      add("foray_robot_plan_latency_milliseconds", "gauge",
+          "Plan compute time over the last 1000 plans, by quantile.",
+          absl::StrCat(robot, ",quantile=\"", q, "\""), v);
+    }
+    add("foray_robot_coverage_ratio", "gauge",
+        "Fraction of the coverage grid's cells the robot has visited.", robot, CoverageFraction(p));
+    if (p.model) {
+      add("foray_robot_holdout_nll", "gauge", "Holdout NLL of the published model, nats.", robot,
+          p.model->report.holdout_nll);
+      add("foray_robot_holdout_mse", "gauge",
+          "Holdout MSE of the published model, normalised units.", robot, p.model->report.holdout_mse);
+    }
+    if (p.last_episode) {
+      add("foray_robot_last_episode_return", "gauge", "Return of the robot's last episode.", robot,
+          p.last_episode->episode_return);
+      add("foray_robot_last_episode_information_gain", "gauge",
+          "Mean information gain of the executed plans in the last episode, nats.", robot,
+          p.last_episode->information_gain);
+    }
+    add("foray_robot_training", "gauge", "1 while a training round runs for the robot.", robot,
+        p.status.training ? 1.0 : 0.0);
+  }
+  add("foray_planner_busy_cores", "gauge", "Plans computing now (at most one per core).", "",
+      static_cast<double>(gate.busy()));
+  add("foray_planner_cores", "gauge", "Plans that may compute at once.", "",
+      static_cast<double>(gate.slots()));
+  std::string out;
+  for (const auto& [name, f] : families) {
+    absl::StrAppend(&out, "# HELP ", name, " ", f.help, "\n# TYPE ", name, " ", f.type, "\n");
+    for (const auto& [labels, value] : f.samples) {
+      absl::StrAppend(&out, name, labels.empty() ? "" : absl::StrCat("{", labels, "}"), " ",
+                      Number(value), "\n");
+    }
+  }
+  return out;
+}
+
+std::string RobotsJson(const api::RobotDirectory& directory) {
+  std::string out = "{\"robots\": [";
+  bool first = true;
+  for (const auto& entry : directory.List(/*include_archived=*/false)) {
+    const robot::ProgressView p = entry->runtime->Progress();
+    if (!first) out += ", ";
+    first = false;
+    absl::StrAppend(&out, "{\"robot_id\": ", JsonString(entry->robot_id),
+                    ", \"name\": ", JsonString(entry->spec.name()),
+                    ", \"transitions\": ", p.status.transitions, ", \"episodes\": ", p.episodes,
+                    ", \"model_version\": ", p.status.model_version,
+                    ", \"training\": ", p.status.training ? "true" : "false",
+                    ", \"plans\": ", p.plans, ", \"plan_p50_ms\": ", Number(p.p50_ms),
+                    ", \"plan_p99_ms\": ", Number(p.p99_ms),
+                    ", \"deadline_misses\": ", p.deadline_misses,
+                    ", \"coverage_ratio\": ", Number(CoverageFraction(p)));
+    if (p.model) {
+      absl::StrAppend(&out, ", \"holdout_nll\": ", Number(p.model->report.holdout_nll),
+                      ", \"holdout_mse\": ", Number(p.model->report.holdout_mse));
+    }
+    if (p.last_episode) {
+      absl::StrAppend(&out, ", \"last_episode\": {\"episode\": ", p.last_episode->episode,
+                      ", \"return\": ", Number(p.last_episode->episode_return),
+                      ", \"information_gain\": ", Number(p.last_episode->information_gain), "}");
+    }
+    absl::StrAppend(&out, ", \"coverage\": {\"cells\": ", p.coverage_cells, ", \"counts\": [");
+    for (size_t i = 0; i < p.coverage_counts.size(); ++i) {
+      absl::StrAppend(&out, i == 0 ? "" : ",", p.coverage_counts[i]);
+    }
+    out += "]}}";
+  }
+  return out + "]}";
+}
+
+WebServer::WebServer(const api::RobotDirectory* directory, const sched::PlanGate* gate,
+                     std::string viewer_token_hash)
+    : directory_(directory), gate_(gate), viewer_token_hash_(std::move(viewer_token_hash)) {}
+
+WebServer::~WebServer() { Stop(); }
+
+absl::Status WebServer::Start(const std::string& host, int port) {
+  server_ = std::make_unique<httplib::Server>();
+  auto allowed = [this](const httplib::Request& req, httplib::Response& res) {
+    if (viewer_token_hash_.empty()) return true;
+    std::string token = req.get_param_value("token");
+    const std::string header = req.get_header_value("Authorization");
+    if (absl::StartsWith(header, "Bearer ")) token = header.substr(7);
+    if (!token.empty() && api::SameHash(api::HashToken(token), viewer_token_hash_)) return true;
+    res.status = 401;
+    res.set_content("a viewer token is needed: Authorization: Bearer <token> or ?token=<token>\n",
+                    "text/plain");
+    return false;
+  };
+  server_->Get("/metrics", [this, allowed](const httplib::Request& req, httplib::Response& res) {
+    if (!allowed(req, res)) return;
+    res.set_content(MetricsText(*directory_, *gate_), "text/plain; version=0.0.4; charset=utf-8");
+  });
+  server_->Get("/api/robots", [this, allowed](const httplib::Request& req, httplib::Response& res) {
+    if (!allowed(req, res)) return;
+    res.set_content(RobotsJson(*directory_), "application/json");
+  });
+  if (!server_->bind_to_port(host.c_str(), port)) {
+    return absl::UnavailableError(absl::StrFormat("cannot serve HTTP on %s:%d", host, port));
+  }
+  thread_ = std::thread([this] { server_->listen_after_bind(); });
+  return absl::OkStatus();
+}
+
+void WebServer::Stop() {
+  if (server_) server_->stop();
+  if (thread_.joinable()) thread_.join();
+}
+
+}  // namespace foray::web

@@ -1,0 +1,81 @@
+"""The HTTP side of forayd: /metrics parsed as the Prometheus text format by
+prometheus_client.parser (Debian's python3-prometheus-client), its counters checked against the
+SQLite store, the JSON API, and the viewer token."""
+
+import json
+import os
+import socket
+import sqlite3
+import tempfile
+import urllib.error
+import urllib.request
+
+from prometheus_client.parser import text_string_to_metric_families
+
+from conftest import Forayd
+from test_service import Client, spec, transitions
+
+
+def free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def get(url, token=None):
+    request = urllib.request.Request(url)
+    if token:
+        request.add_header("Authorization", f"Bearer {token}")
+    with urllib.request.urlopen(request, timeout=10) as response:
+        return response.status, response.headers.get("Content-Type"), response.read().decode()
+
+
+def test_metrics_and_json_match_the_store():
+    with tempfile.TemporaryDirectory(prefix="foray-web-") as data_dir:
+        viewer = os.path.join(data_dir, "viewer-token")
+        with open(viewer, "w") as f:
+            f.write("viewer-secret\n")
+        port = free_port()
+        server = Forayd(data_dir, [f"--http_port={port}", f"--viewer_token_file={viewer}"])
+        try:
+            c = Client(server)
+            robot = c.register(spec("measured", 2, 1, min_transitions=40, every_n=100000))
+            c.append(robot, transitions(2, 1, 1, 100, episode_len=50))
+            c.wait_model(robot.robot.robot_id, 1)
+            c.plan(robot, [0.0, 0.0])
+            base = f"http://127.0.0.1:{port}"
+
+            try:
+                get(base + "/metrics")
+                raise AssertionError("/metrics without the viewer token should be refused")
+            except urllib.error.HTTPError as e:
+                assert e.code == 401
+
+            status, content_type, text = get(base + "/metrics", token="viewer-secret")
+            assert status == 200 and content_type.startswith("text/plain; version=0.0.4")
+            samples = {}
+            for family in text_string_to_metric_families(text):
+                for s in family.samples:
+                    if s.labels.get("robot_id") == robot.robot.robot_id:
+                        samples[(s.name, s.labels.get("quantile"))] = s.value
+            db = sqlite3.connect(os.path.join(data_dir, "foray.db"))
+            stored = db.execute("SELECT COUNT(*) FROM transitions WHERE robot_id = ?",
+                                (robot.robot.robot_id,)).fetchone()[0]
+            checkpoints = db.execute("SELECT MAX(model_version) FROM checkpoints WHERE robot_id = ?",
+                                     (robot.robot.robot_id,)).fetchone()[0]
+            db.close()
+            # The parser drops the _total suffix from a counter's family name, not its samples.
+            assert samples[("foray_robot_transitions_total", None)] == stored == 100
+            assert samples[("foray_robot_episodes_total", None)] == 2
+            assert samples[("foray_robot_model_version", None)] == checkpoints
+            assert samples[("foray_robot_plans_total", None)] == 1
+            assert samples[("foray_robot_plan_latency_milliseconds", "0.5")] > 0
+            assert 0 < samples[("foray_robot_coverage_ratio", None)] <= 1
+
+            status, content_type, body = get(base + "/api/robots?token=viewer-secret")
+            robots = json.loads(body)["robots"]
+            assert content_type == "application/json" and len(robots) == 1
+            assert robots[0]["transitions"] == 100 and robots[0]["episodes"] == 2
+            assert sum(robots[0]["coverage"]["counts"]) == 100
+        finally:
+            assert server.stop() == 0
