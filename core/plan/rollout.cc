@@ -166,15 +166,7 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
     }
     if (want_information) {
       start = Clock::now();
-      explore::GaussianSet<float> set;
-      set.members = nb;
-      set.rows = rows;
-      set.dim = sd;
-      set.mean = pred.mean.data();
-      set.log_var = pred.log_var.data();
-      set.member_stride = static_cast<std::ptrdiff_t>(rows) * od;
-      set.row_stride = od;
-      explore::Information(objective.estimator, set, ws->information.data(),
+      explore::Information(objective.estimator, pred.StateDeltaSet(), ws->information.data(),
                            objective.monte_carlo_samples, seed + 7919u * (t + 1));
       if (stats != nullptr) stats->information_seconds += SecondsSince(start);
     }

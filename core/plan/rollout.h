@@ -43,6 +43,20 @@ struct MemberPredictions {
   // Scratch a model may use between calls.
   std::vector<float> input;
   model::InferenceEnsemble::Workspace forward;
+
+  // The members' Gaussians over the state delta (the first output_dim - 1 outputs) at every
+  // row, in model units: what the information gain is computed on. Borrows this object.
+  explore::GaussianSet<float> StateDeltaSet() const {
+    explore::GaussianSet<float> set;
+    set.members = members;
+    set.rows = rows;
+    set.dim = output_dim - 1;
+    set.mean = mean.data();
+    set.log_var = log_var.data();
+    set.member_stride = static_cast<std::ptrdiff_t>(rows) * output_dim;
+    set.row_stride = output_dim;
+    return set;
+  }
 };
 
 // What a rollout needs from a dynamics-and-reward model.

@@ -47,6 +47,14 @@ float FloatAtMost(double x) {
   return f;
 }
 
+google::protobuf::Timestamp ToTimestamp(absl::Time t) {
+  google::protobuf::Timestamp ts;
+  const int64_t micros = absl::ToUnixMicros(t);
+  ts.set_seconds(micros / 1000000);
+  ts.set_nanos(static_cast<int32_t>(micros % 1000000) * 1000);
+  return ts;
+}
+
 grpc::Status ToGrpc(const absl::Status& status) {
   if (status.ok()) return grpc::Status::OK;
   // absl and gRPC share the canonical code numbers.

@@ -24,6 +24,9 @@ namespace foray::api {
 float FloatAtLeast(double x);
 float FloatAtMost(double x);
 
+// absl::Time as a protobuf Timestamp (microsecond resolution).
+google::protobuf::Timestamp ToTimestamp(absl::Time t);
+
 // The one place where absl::Status becomes grpc::Status.
 grpc::Status ToGrpc(const absl::Status& status);
 

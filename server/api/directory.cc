@@ -5,17 +5,6 @@
 #include "server/api/convert.h"
 
 namespace foray::api {
-namespace {
-
-google::protobuf::Timestamp ToTimestamp(absl::Time t) {
-  google::protobuf::Timestamp ts;
-  const int64_t micros = absl::ToUnixMicros(t);
-  ts.set_seconds(micros / 1000000);
-  ts.set_nanos(static_cast<int32_t>(micros % 1000000) * 1000);
-  return ts;
-}
-
-}  // namespace
 
 RobotDirectory::RobotDirectory(store::Store* store, std::string admin_token_hash)
     : store_(store), admin_token_hash_(std::move(admin_token_hash)) {}

@@ -107,10 +107,8 @@ void PlanToWire(const robot::PlanOutcome& outcome, const robot::RobotConfig& con
   plan->set_iterations(static_cast<uint32_t>(r.iterations));
   plan->set_compute_ms(outcome.compute_ms);
   // A plan is worth executing for at most its horizon of control periods.
-  const int64_t valid_us = absl::ToUnixMicros(absl::Now()) +
-                           static_cast<int64_t>(std::llround(1e6 * config.control_period_s * horizon));
-  plan->mutable_valid_until()->set_seconds(valid_us / 1000000);
-  plan->mutable_valid_until()->set_nanos(static_cast<int32_t>(valid_us % 1000000) * 1000);
+  *plan->mutable_valid_until() =
+      ToTimestamp(absl::Now() + absl::Seconds(config.control_period_s * horizon));
   plan->set_request_id(request_id);
 }
 
@@ -393,16 +391,9 @@ absl::Status PredictRows(const RobotEntry& entry, const v1::PredictRequest& requ
   plan::MemberPredictions pred;
   (*model)->rollout->Evaluate(states.data(), actions.data(), n, &pred);
   const int nb = pred.members, od = pred.output_dim;
-  explore::GaussianSet<float> set;
-  set.members = nb;
-  set.rows = n;
-  set.dim = sd;
-  set.mean = pred.mean.data();
-  set.log_var = pred.log_var.data();
-  set.member_stride = static_cast<std::ptrdiff_t>(n) * od;
-  set.row_stride = od;
   std::vector<float> gain(n);
-  explore::Information(estimator.estimator, set, gain.data(), estimator.monte_carlo_samples, 1);
+  explore::Information(estimator.estimator, pred.StateDeltaSet(), gain.data(),
+                       estimator.monte_carlo_samples, 1);
   for (int r = 0; r < n; ++r) {
     v1::PredictResponse::Row* row = response->add_rows();
     for (int b = 0; b < nb; ++b) {
@@ -532,14 +523,6 @@ grpc::Status ModelsService::ImportModel(grpc::ServerContext* context,
 
 namespace {
 
-google::protobuf::Timestamp Stamp(absl::Time t) {
-  google::protobuf::Timestamp ts;
-  const int64_t us = absl::ToUnixMicros(t);
-  ts.set_seconds(us / 1000000);
-  ts.set_nanos(static_cast<int32_t>(us % 1000000) * 1000);
-  return ts;
-}
-
 v1::RobotProgress ProgressToWire(const RobotEntry& entry) {
   const robot::ProgressView p = entry.runtime->Progress();
   v1::RobotProgress out;
@@ -555,7 +538,7 @@ v1::RobotProgress ProgressToWire(const RobotEntry& entry) {
     e->set_steps(static_cast<uint32_t>(p.last_episode->steps));
     e->set_return_(p.last_episode->episode_return);
     e->set_information_gain(p.last_episode->information_gain);
-    *e->mutable_ended_at() = Stamp(p.last_episode->ended_at);
+    *e->mutable_ended_at() = ToTimestamp(p.last_episode->ended_at);
   }
   v1::Coverage* c = out.mutable_coverage();
   for (int i : p.coverage_indices) c->add_indices(static_cast<uint32_t>(i));
@@ -593,7 +576,7 @@ grpc::Status MonitoringService::GetProgress(grpc::ServerContext* context,
   auto robots = Visible(*context, request->robot_id());
   if (!robots.ok()) return ToGrpc(robots.status());
   for (const auto& entry : *robots) *response->add_robots() = ProgressToWire(*entry);
-  *response->mutable_taken_at() = Stamp(absl::Now());
+  *response->mutable_taken_at() = ToTimestamp(absl::Now());
   return grpc::Status::OK;
 }
 
@@ -607,7 +590,7 @@ grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
   for (const auto& entry : *robots) {
     v1::ProgressEvent event;
     event.set_robot_id(entry->robot_id);
-    *event.mutable_at() = Stamp(absl::Now());
+    *event.mutable_at() = ToTimestamp(absl::Now());
     *event.mutable_snapshot() = ProgressToWire(*entry);
     if (!writer->Write(event)) return grpc::Status::OK;
   }
@@ -623,7 +606,7 @@ grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
       after_row = r.row;
       v1::ProgressEvent event;
       event.set_robot_id(r.robot_id);
-      *event.mutable_at() = Stamp(r.at);
+      *event.mutable_at() = ToTimestamp(r.at);
       if (r.kind == "training") {
         event.mutable_training()->ParseFromString(r.payload);
       } else if (r.kind == "episode") {
@@ -668,7 +651,7 @@ grpc::Status MonitoringService::ExportTransitions(grpc::ServerContext* context,
     for (double v : t.next_state) out->add_next_state(v);
     out->set_reward(t.reward);
     out->set_terminal(t.terminal);
-    *out->mutable_measured_at() = Stamp(t.measured_at);
+    *out->mutable_measured_at() = ToTimestamp(t.measured_at);
     if (batch.transitions_size() == 1000 && !send()) return grpc::Status::OK;
   }
   if (batch.transitions_size() > 0) send();
