@@ -10,7 +10,9 @@
 #include "absl/strings/str_cat.h"
 #include "absl/strings/str_format.h"
 #include "absl/strings/str_replace.h"
+#include "foray/v1/monitoring.pb.h"
 #include "server/api/auth.h"
+#include "server/web/dashboard_html.h"
 
 namespace foray::web {
 namespace {
@@ -151,6 +153,31 @@ std::string RobotsJson(const api::RobotDirectory& directory) {
   return out + "]}";
 }
 
+std::string HistoryJson(const store::Store& store, const std::string& robot_id) {
+  std::string episodes, trainings;
+  auto records = store.ReadProgress(0, absl::InfinitePast(), robot_id, 100000);
+  if (records.ok()) {
+    for (const store::ProgressRecord& r : *records) {
+      if (r.kind == "episode") {
+        v1::EpisodeSummary e;
+        if (!e.ParseFromString(r.payload)) continue;
+        absl::StrAppend(&episodes, episodes.empty() ? "" : ", ", "{\"episode\": ", e.episode(),
+                        ", \"steps\": ", e.steps(), ", \"return\": ", Number(e.return_()),
+                        ", \"information_gain\": ", Number(e.information_gain()), "}");
+      } else if (r.kind == "training") {
+        v1::TrainingReport t;
+        if (!t.ParseFromString(r.payload)) continue;
+        absl::StrAppend(&trainings, trainings.empty() ? "" : ", ", "{\"model_version\": ",
+                        t.model_version(), ", \"epochs\": ", t.epochs(),
+                        ", \"holdout_nll\": ", Number(t.holdout_nll()),
+                        ", \"holdout_mse\": ", Number(t.holdout_mse()), "}");
+      }
+    }
+  }
+  return absl::StrCat("{\"robot_id\": ", JsonString(robot_id), ", \"episodes\": [", episodes,
+                      "], \"trainings\": [", trainings, "]}");
+}
+
 WebServer::WebServer(const api::RobotDirectory* directory, const sched::PlanGate* gate,
                      std::string viewer_token_hash)
     : directory_(directory), gate_(gate), viewer_token_hash_(std::move(viewer_token_hash)) {}
@@ -177,6 +204,16 @@ absl::Status WebServer::Start(const std::string& host, int port) {
   server_->Get("/api/robots", [this, allowed](const httplib::Request& req, httplib::Response& res) {
     if (!allowed(req, res)) return;
     res.set_content(RobotsJson(*directory_), "application/json");
+  });
+  server_->Get(R"(/api/robots/([A-Za-z0-9_.-]+)/history)",
+               [this, allowed](const httplib::Request& req, httplib::Response& res) {
+                 if (!allowed(req, res)) return;
+                 res.set_content(HistoryJson(*directory_->store(), req.matches[1]),
+                                 "application/json");
+               });
+  server_->Get("/", [allowed](const httplib::Request& req, httplib::Response& res) {
+    if (!allowed(req, res)) return;
+    res.set_content(kDashboardHtml, "text/html; charset=utf-8");
   });
   if (!server_->bind_to_port(host.c_str(), port)) {
     return absl::UnavailableError(absl::StrFormat("cannot serve HTTP on %s:%d", host, port));

@@ -1,6 +1,6 @@
-// The HTTP side of forayd, on its own port: /metrics in the Prometheus text exposition format
-// (version 0.0.4) with per-robot labels, and /api/robots, the JSON the dashboard reads. Read
-// only. When a viewer token is configured every request must carry it
+// The HTTP side of forayd, on its own port: the dashboard page at /, /metrics in the
+// Prometheus text exposition format (version 0.0.4) with per-robot labels, and the JSON the
+// dashboard reads (/api/robots, /api/robots/ID/history). Read only. When a viewer token is configured every request must carry it
 // (`Authorization: Bearer <token>` or `?token=<token>`). Serves from its own threads; Start and
 // Stop from one thread.
 #ifndef FORAY_SERVER_WEB_WEB_SERVER_H_
@@ -25,6 +25,9 @@ std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanG
 
 // The JSON of /api/robots: one object per robot with its progress.
 std::string RobotsJson(const api::RobotDirectory& directory);
+
+// The JSON of /api/robots/ID/history: the robot's recorded episodes and training rounds.
+std::string HistoryJson(const store::Store& store, const std::string& robot_id);
 
 class WebServer {
  public:

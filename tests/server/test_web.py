@@ -77,5 +77,16 @@ def test_metrics_and_json_match_the_store():
             assert content_type == "application/json" and len(robots) == 1
             assert robots[0]["transitions"] == 100 and robots[0]["episodes"] == 2
             assert sum(robots[0]["coverage"]["counts"]) == 100
+
+            status, _, body = get(f"{base}/api/robots/{robot.robot.robot_id}/history",
+                                  token="viewer-secret")
+            history = json.loads(body)
+            assert [e["episode"] for e in history["episodes"]] == [1, 2]
+            assert [e["steps"] for e in history["episodes"]] == [50, 50]
+            assert [t["model_version"] for t in history["trainings"]] == [1]
+
+            status, content_type, page = get(base + "/?token=viewer-secret")
+            assert content_type.startswith("text/html") and "Foray · learning progress" in page
+            assert "not a safety system" in page
         finally:
             assert server.stop() == 0
