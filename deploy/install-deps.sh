@@ -29,9 +29,14 @@ PACKAGES=(
   python3-pytest         # Python test runner
   python3-matplotlib     # plots of the exploration benchmark
   python3-prometheus-client # parses /metrics in the tests
-  libcpp-httplib-dev     # HTTP server of /metrics and the JSON API
+  libcpp-httplib-dev     # HTTP server of /metrics, the JSON API and the dashboard
+  chromium               # the browser of the dashboard test (headless)
+  nodejs                 # runs the browser test's driver (npm: with it, or Debian's npm below)
   libopenblas0-pthread   # optimised BLAS, so the numpy and PyTorch references run at full speed
 )
+
+SUDO=""
+if [ "$(id -u)" -ne 0 ] && command -v sudo >/dev/null 2>&1; then SUDO="sudo"; fi
 
 missing=()
 for pkg in "${PACKAGES[@]}"; do
@@ -40,8 +45,24 @@ for pkg in "${PACKAGES[@]}"; do
   fi
 done
 
+# The browser test's driver (playwright-core from the npm registry), pinned in
+# tests/browser/package.json; installed once into tests/browser/node_modules.
+install_node_modules() {
+  local dir
+  dir="$(cd "$(dirname "$0")/.." && pwd)/tests/browser"
+  if ! command -v npm >/dev/null 2>&1; then
+    # Debian's nodejs comes without npm; a nodejs from elsewhere may bring its own.
+    $SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends npm
+  fi
+  if [ ! -d "$dir/node_modules/playwright-core" ]; then
+    echo "install-deps: npm install in tests/browser"
+    (cd "$dir" && npm install --no-audit --no-fund --loglevel=error)
+  fi
+}
+
 if [ ${#missing[@]} -eq 0 ]; then
   echo "install-deps: all ${#PACKAGES[@]} packages present"
+  install_node_modules
   exit 0
 fi
 
@@ -58,4 +79,5 @@ fi
 echo "install-deps: installing ${missing[*]}"
 $SUDO env DEBIAN_FRONTEND=noninteractive apt-get update -qq
 $SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends "${missing[@]}"
+install_node_modules
 echo "install-deps: done"
