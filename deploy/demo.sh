@@ -53,7 +53,7 @@ PYTHONPATH="$PWD/client/python" /usr/bin/python3 -m foray_client.probe \
 echo
 echo "demo: forayd is serving gRPC on $ADDRESS with data in $DATA_DIR."
 echo "demo: the admin token (for registering robots) is in $DATA_DIR/admin-token."
-echo "demo: metrics at http://127.0.0.1:$HTTP_PORT/metrics, JSON at http://127.0.0.1:$HTTP_PORT/api/robots."
+echo "demo: dashboard at http://127.0.0.1:$HTTP_PORT/ (metrics at /metrics)."
 echo "demo: two simulated robots now learn in real time; a line per episode shows the return"
 echo "      (steps inside the zone they are not told about), the model version and the"
 echo "      information gain of their plans. Press Ctrl-C to stop."

@@ -43,6 +43,12 @@ try {
     await page.waitForTimeout(1000);
   }
   await page.screenshot({ path: path.join(outDir, "dashboard-later.png"), fullPage: true });
+  // The overview lists the robot and links to a page of its own.
+  await page.locator("nav a", { hasText: robotName }).click();
+  await page.waitForURL(/[?&]robot=/);
+  await card.waitFor({ timeout: 10000 });
+  result.ownPageCards = await page.locator("section.robot").count();
+  if (result.ownPageCards !== 1) throw new Error(`the robot's page shows ${result.ownPageCards} robots`);
   await page.setViewportSize({ width: 390, height: 844 });
   await page.waitForTimeout(300);
   result.phoneOverflow = await page.evaluate(() => document.documentElement.scrollWidth - window.innerWidth);

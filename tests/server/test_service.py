@@ -541,6 +541,17 @@ def test_progress_snapshot_watch_and_export(forayd):
     assert events[0] == "snapshot"
     assert events.count("episode") == 2 and events.count("training") == 1
 
+    # Then live: a watcher from now sees an episode that ends after it connected.
+    stream = monitoring.WatchProgress(mon.WatchProgressRequest(robot_id=rid), metadata=auth, timeout=10)
+    try:
+        first = next(stream)
+        assert first.WhichOneof("event") == "snapshot"
+        c.append(robot, transitions(2, 1, 101, 50, episode_len=50))  # episode 3 ends
+        live = next(e for e in stream if e.WhichOneof("event") == "episode")
+        assert live.episode.episode == 3 and live.episode.steps == 50
+    finally:
+        stream.cancel()
+
     exported = [t for b in monitoring.ExportTransitions(
         mon.ExportTransitionsRequest(robot_id=rid, from_seq=11, to_seq=60), metadata=auth)
         for t in b.transitions]
