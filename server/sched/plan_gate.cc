@@ -47,6 +47,11 @@ int PlanGate::busy() const {
   return busy_;
 }
 
+int PlanGate::waiting() const {
+  absl::MutexLock lock(&mu_);
+  return waiting_;
+}
+
 void PlanGate::WaitForIdleCore(absl::Duration limit) const {
   absl::MutexLock lock(&mu_);
   auto idle = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return busy_ < slots_; };

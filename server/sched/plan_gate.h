@@ -46,6 +46,8 @@ class PlanGate {
   int slots() const { return slots_; }
   // Slots in use now.
   int busy() const;
+  // Plans waiting for a slot now.
+  int waiting() const;
   // Waits (at most `limit`) until fewer than all slots are busy; used by training between
   // epochs, so that plans go first.
   void WaitForIdleCore(absl::Duration limit) const;

@@ -108,6 +108,8 @@ std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanG
       static_cast<double>(gate.busy()));
   add("foray_planner_cores", "gauge", "Plans that may compute at once.", "",
       static_cast<double>(gate.slots()));
+  add("foray_planner_waiting_plans", "gauge", "Plans waiting for a core now.", "",
+      static_cast<double>(gate.waiting()));
   std::string out;
   for (const auto& [name, f] : families) {
     absl::StrAppend(&out, "# HELP ", name, " ", f.help, "\n# TYPE ", name, " ", f.type, "\n");

@@ -71,6 +71,9 @@ def test_metrics_and_json_match_the_store():
             assert samples[("foray_robot_plans_total", None)] == 1
             assert samples[("foray_robot_plan_latency_milliseconds", "0.5")] > 0
             assert 0 < samples[("foray_robot_coverage_ratio", None)] <= 1
+            families = {f.name: f for f in text_string_to_metric_families(text)}
+            assert families["foray_planner_waiting_plans"].samples[0].value == 0  # queue depth
+            assert families["foray_planner_cores"].samples[0].value >= 1
 
             status, content_type, body = get(base + "/api/robots?token=viewer-secret")
             robots = json.loads(body)["robots"]

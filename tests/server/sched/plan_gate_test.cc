@@ -28,13 +28,19 @@ TEST(PlanGateTest, AWaitingPlanGetsTheNextFreeSlot) {
   PlanGate gate(1, /*max_waiting=*/1);
   auto first = gate.Enter(Soon());
   ASSERT_TRUE(first.ok());
-  std::thread releaser([t = std::move(*first)]() mutable {
-    absl::SleepFor(absl::Milliseconds(50));
+  // The first ticket is released only once the second plan is seen waiting (the queue depth
+  // that /metrics reports), so the check does not depend on timing.
+  int seen_waiting = 0;
+  std::thread releaser([&gate, &seen_waiting, t = std::move(*first)]() mutable {
+    for (int i = 0; i < 5000 && gate.waiting() == 0; ++i) absl::SleepFor(absl::Milliseconds(1));
+    seen_waiting = gate.waiting();
     auto gone = std::move(t);
   });
   auto second = gate.Enter(Soon());
-  EXPECT_TRUE(second.ok());
   releaser.join();
+  EXPECT_TRUE(second.ok());
+  EXPECT_EQ(seen_waiting, 1);
+  EXPECT_EQ(gate.waiting(), 0);
 }
 
 TEST(PlanGateTest, NoPlanWaitsPastItsDeadline) {
