@@ -171,7 +171,7 @@ int main(int argc, char** argv) {
     std::fprintf(stderr, "forayd: %s\n", std::string(store.status().message()).c_str());
     return 2;
   }
-  foray::api::RobotDirectory directory(store->get(), foray::api::HashToken(admin_token));
+  foray::api::RobotDirectory directory(store->get(), foray::api::HashToken(admin_token), viewer_hash);
   if (absl::Status s = directory.LoadAll(); !s.ok()) {
     std::fprintf(stderr, "forayd: loading the robots failed: %s\n", std::string(s.message()).c_str());
     return 2;

@@ -6,8 +6,17 @@
 
 namespace foray::api {
 
-RobotDirectory::RobotDirectory(store::Store* store, std::string admin_token_hash)
-    : store_(store), admin_token_hash_(std::move(admin_token_hash)) {}
+RobotDirectory::RobotDirectory(store::Store* store, std::string admin_token_hash,
+                               std::string viewer_token_hash)
+    : store_(store),
+      admin_token_hash_(std::move(admin_token_hash)),
+      viewer_token_hash_(std::move(viewer_token_hash)) {}
+
+bool RobotDirectory::IsViewer(const grpc::ServerContext& context) const {
+  if (viewer_token_hash_.empty()) return false;
+  absl::StatusOr<std::string> token = BearerToken(context);
+  return token.ok() && SameHash(HashToken(*token), viewer_token_hash_);
+}
 
 absl::Status RobotDirectory::LoadAll() {
   absl::StatusOr<std::vector<store::RobotRecord>> records = store_->ListRobots();

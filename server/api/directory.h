@@ -32,8 +32,10 @@ struct RobotEntry {
 
 class RobotDirectory {
  public:
-  // `store` must outlive the directory. `admin_token_hash` is HashToken of the admin token.
-  RobotDirectory(store::Store* store, std::string admin_token_hash);
+  // `store` must outlive the directory. `admin_token_hash` is HashToken of the admin token;
+  // `viewer_token_hash` that of the viewer token (empty: none), which may read progress only.
+  RobotDirectory(store::Store* store, std::string admin_token_hash,
+                 std::string viewer_token_hash = "");
   RobotDirectory(const RobotDirectory&) = delete;
   RobotDirectory& operator=(const RobotDirectory&) = delete;
 
@@ -50,6 +52,8 @@ class RobotDirectory {
 
   // Unauthenticated without a known token; PermissionDenied for a token that is not the admin's.
   absl::Status CheckAdmin(const grpc::ServerContext& context) const;
+  // Whether the call carries the viewer token (read-only access to every robot's progress).
+  bool IsViewer(const grpc::ServerContext& context) const;
   // The robot `robot_id` when the call carries its own token (or, with admin_ok, the admin
   // token). Unauthenticated without a known token; PermissionDenied for another robot's token
   // or an archived robot; NotFound (for the admin) when no such robot exists.
@@ -67,6 +71,7 @@ class RobotDirectory {
 
   store::Store* const store_;
   const std::string admin_token_hash_;
+  const std::string viewer_token_hash_;
   mutable absl::Mutex mu_;
   std::map<std::string, std::shared_ptr<const RobotEntry>> robots_ ABSL_GUARDED_BY(mu_);
 };

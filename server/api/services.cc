@@ -561,6 +561,14 @@ v1::RobotProgress ProgressToWire(const RobotEntry& entry) {
 
 absl::StatusOr<std::vector<std::shared_ptr<const RobotEntry>>> MonitoringService::Visible(
     const grpc::ServerContext& context, const std::string& robot_id) const {
+  if (directory_->IsViewer(context)) {  // read-only access to every robot's progress
+    std::vector<std::shared_ptr<const RobotEntry>> all = directory_->List(/*include_archived=*/true);
+    if (robot_id.empty()) return all;
+    for (auto& entry : all) {
+      if (entry->robot_id == robot_id) return std::vector<std::shared_ptr<const RobotEntry>>{entry};
+    }
+    return absl::NotFoundError(absl::StrFormat("robot \"%s\" is not registered", robot_id));
+  }
   if (robot_id.empty()) {
     if (absl::Status s = directory_->CheckAdmin(context); !s.ok()) return s;
     return directory_->List(/*include_archived=*/true);

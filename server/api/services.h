@@ -79,8 +79,8 @@ class ModelsService final : public v1::Models::Service {
 };
 
 // Progress of learning: snapshots, a live stream resumable from a time, and transition export.
-// GetProgress and WatchProgress for all robots need the admin token; for one robot its own token
-// works too.
+// GetProgress and WatchProgress accept the admin or the viewer token for every robot, and a
+// robot's own token for that robot; ExportTransitions the admin or the robot's own token.
 class MonitoringService final : public v1::Monitoring::Service {
  public:
   // `poll` is how often a watch looks for new records.

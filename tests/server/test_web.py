@@ -88,6 +88,21 @@ def test_metrics_and_json_match_the_store():
             assert [e["steps"] for e in history["episodes"]] == [50, 50]
             assert [t["model_version"] for t in history["trainings"]] == [1]
 
+            # The viewer token also reads progress over gRPC, and nothing else.
+            from foray.v1 import monitoring_pb2 as mon, monitoring_pb2_grpc, session_pb2 as ses
+            import grpc
+            viewer_md = [("authorization", "Bearer viewer-secret")]
+            progress = monitoring_pb2_grpc.MonitoringStub(c.channel).GetProgress(
+                mon.GetProgressRequest(), metadata=viewer_md)
+            assert [p.robot_id for p in progress.robots] == [robot.robot.robot_id]
+            try:
+                c.session.AppendTransitions(ses.AppendTransitionsRequest(
+                    robot_id=robot.robot.robot_id, transitions=transitions(2, 1, 101, 1)),
+                    metadata=viewer_md)
+                raise AssertionError("the viewer token must not write transitions")
+            except grpc.RpcError as e:
+                assert e.code() == grpc.StatusCode.UNAUTHENTICATED
+
             status, content_type, page = get(base + "/?token=viewer-secret")
             assert content_type.startswith("text/html") and "Foray · learning progress" in page
             assert "not a safety system" in page
