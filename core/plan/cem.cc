@@ -21,6 +21,29 @@ RowMatrixXf Shifted(const RowMatrixXf& m, int shift) {
   return out;
 }
 
+// The first sampling distribution of a cold start: the middle of the bounds, and a standard
+// deviation of initial_std_fraction of each range. mean, stddev: (horizon, dim).
+void InitialDistribution(const CemOptions& options, const SequenceLimits& limits,
+                         RowMatrixXf* mean, RowMatrixXf* stddev) {
+  const Eigen::VectorXf range = limits.upper - limits.lower;
+  mean->resize(options.horizon, limits.dim());
+  stddev->resize(options.horizon, limits.dim());
+  mean->rowwise() = (0.5f * (limits.upper + limits.lower)).transpose();
+  stddev->rowwise() = (static_cast<float>(options.initial_std_fraction) * range).transpose();
+}
+
+// One sequence of N(mean, stddev^2) with coloured noise along the horizon, projected into the
+// limits. out: horizon * dim floats.
+void DrawSequence(const ColoredNoise& noise, const RowMatrixXf& mean, const RowMatrixXf& stddev,
+                  const SequenceLimits& limits, Rng* rng, float* out) {
+  const int h = static_cast<int>(mean.rows()), d = static_cast<int>(mean.cols());
+  for (int j = 0; j < d; ++j) noise.Sample([rng] { return rng->Normal(); }, out + j, d);
+  for (int t = 0; t < h; ++t) {
+    for (int j = 0; j < d; ++j) out[t * d + j] = mean(t, j) + stddev(t, j) * out[t * d + j];
+  }
+  limits.Project(out, h);
+}
+
 }  // namespace
 
 ColoredNoise::ColoredNoise(int horizon, double beta) : basis_(horizon, horizon) {
@@ -169,6 +192,19 @@ absl::Status CemOptions::Validate() const {
   return absl::OkStatus();
 }
 
+absl::StatusOr<RowMatrixXf> SampleFromPrior(const CemOptions& options,
+                                           const SequenceLimits& limits) {
+  if (absl::Status s = options.Validate(); !s.ok()) return s;
+  if (absl::Status s = limits.Validate(); !s.ok()) return s;
+  RowMatrixXf mean, stddev;
+  InitialDistribution(options, limits, &mean, &stddev);
+  Rng rng(options.seed);
+  RowMatrixXf out(options.horizon, limits.dim());
+  DrawSequence(ColoredNoise(options.horizon, options.noise_beta), mean, stddev, limits, &rng,
+               out.data());
+  return out;
+}
+
 absl::StatusOr<CemResult> MaximizeCem(const CemOptions& options, const SequenceLimits& limits,
                                       const ScoreFunction& score, const CemWarmStart* warm_start,
                                       int shift, absl::Time deadline,
@@ -179,18 +215,17 @@ absl::StatusOr<CemResult> MaximizeCem(const CemOptions& options, const SequenceL
   auto now = [&] { return now_fn ? now_fn() : absl::Now(); };
 
   const int h = options.horizon, d = limits.dim(), width = h * d, k_elites = options.elites;
-  const Eigen::VectorXf range = limits.upper - limits.lower;
-  const Eigen::RowVectorXf centre = (0.5f * (limits.upper + limits.lower)).transpose();
   const Eigen::RowVectorXf min_std =
-      (static_cast<float>(options.min_std_fraction) * range).transpose();
+      (static_cast<float>(options.min_std_fraction) * (limits.upper - limits.lower)).transpose();
 
-  RowMatrixXf mean(h, d), stddev(h, d);
+  RowMatrixXf mean, stddev;
+  InitialDistribution(options, limits, &mean, &stddev);
   std::vector<RowMatrixXf> kept;
   const int keep = static_cast<int>(std::lround(options.keep_fraction * k_elites));
   const bool warm = warm_start != nullptr && warm_start->mean.rows() == h &&
                     warm_start->mean.cols() == d;
   if (warm) {
-    mean = Shifted(warm_start->mean, shift);
+    mean = Shifted(warm_start->mean, shift);  // the spread stays the initial one
     for (const RowMatrixXf& e : warm_start->elites) {
       if (static_cast<int>(kept.size()) >= keep) break;
       if (e.rows() == h && e.cols() == d) {
@@ -199,14 +234,10 @@ absl::StatusOr<CemResult> MaximizeCem(const CemOptions& options, const SequenceL
         limits.Project(kept.back().data(), h);
       }
     }
-  } else {
-    mean.rowwise() = centre;
   }
-  stddev.rowwise() = (static_cast<float>(options.initial_std_fraction) * range).transpose();
 
   const ColoredNoise noise(h, options.noise_beta);
   Rng rng(options.seed);
-  auto normal = [&rng] { return rng.Normal(); };
 
   CemResult result;
   result.best = mean;
@@ -237,14 +268,7 @@ absl::StatusOr<CemResult> MaximizeCem(const CemOptions& options, const SequenceL
       population.row(row++) = Eigen::Map<const Eigen::RowVectorXf>(e.data(), width);
     }
     for (int n = 0; n < fresh; ++n, ++row) {
-      float* seq = population.row(row).data();
-      for (int j = 0; j < d; ++j) noise.Sample(normal, seq + j, d);
-      for (int t = 0; t < h; ++t) {
-        for (int j = 0; j < d; ++j) {
-          seq[t * d + j] = mean(t, j) + stddev(t, j) * seq[t * d + j];
-        }
-      }
-      limits.Project(seq, h);
+      DrawSequence(noise, mean, stddev, limits, &rng, population.row(row).data());
     }
     if (last) {
       population.row(row) = Eigen::Map<const Eigen::RowVectorXf>(mean.data(), width);

@@ -103,6 +103,11 @@ struct CemResult {
 // A non-finite score ranks last.
 using ScoreFunction = std::function<void(const float* sequences, int n, float* scores)>;
 
+// One sequence drawn from the optimiser's cold-start distribution (the middle of the bounds,
+// initial_std_fraction of each range, coloured noise along the horizon), within the limits:
+// what a planner without a model can offer. (horizon, dim); deterministic under options.seed.
+absl::StatusOr<RowMatrixXf> SampleFromPrior(const CemOptions& options, const SequenceLimits& limits);
+
 // Runs CEM/iCEM. warm_start (may be null) is shifted by `shift` steps (the steps executed
 // since it was computed): its mean and elites lose their first `shift` rows and repeat the
 // last row. The first iteration always runs; before each later one the optimiser predicts its

@@ -112,18 +112,24 @@ void PlanToWire(const robot::PlanOutcome& outcome, const robot::RobotConfig& con
   plan->set_request_id(request_id);
 }
 
-absl::Status Append(const RobotEntry& entry,
-                    const google::protobuf::RepeatedPtrField<v1::Transition>& transitions,
-                    v1::Ack* ack) {
-  const robot::RobotConfig config = entry.runtime->config();
-  absl::StatusOr<std::vector<store::TransitionRecord>> batch = TransitionsFromWire(transitions, config);
-  if (!batch.ok()) return batch.status();
-  absl::StatusOr<store::AppendResult> result = entry.runtime->Append(*batch);
+// Stores validated transitions (durable on return) and fills the ack.
+absl::Status AppendRecords(const RobotEntry& entry, const std::vector<store::TransitionRecord>& batch,
+                           v1::Ack* ack) {
+  absl::StatusOr<store::AppendResult> result = entry.runtime->Append(batch);
   if (!result.ok()) return result.status();
   ack->set_durable_seq(result->durable_seq);
   ack->set_accepted(result->accepted);
   ack->set_duplicates(result->duplicates);
   return absl::OkStatus();
+}
+
+absl::Status Append(const RobotEntry& entry,
+                    const google::protobuf::RepeatedPtrField<v1::Transition>& transitions,
+                    v1::Ack* ack) {
+  absl::StatusOr<std::vector<store::TransitionRecord>> batch =
+      TransitionsFromWire(transitions, entry.runtime->config());
+  if (!batch.ok()) return batch.status();
+  return AppendRecords(entry, *batch, ack);
 }
 
 }  // namespace
@@ -294,33 +300,35 @@ grpc::Status SessionService::Connect(
     std::vector<v1::SessionClientMessage> messages = inbox.TakeAll();
     if (messages.empty()) break;
     std::vector<v1::SessionServerMessage> replies;
-    google::protobuf::RepeatedPtrField<v1::Transition> group;
+    std::vector<store::TransitionRecord> group;  // validated, in arrival order
     auto flush = [&] {
       if (group.empty()) return;
       v1::SessionServerMessage ack;
-      if (absl::Status s = Append(*entry, group, ack.mutable_ack()); !s.ok()) {
-        ack = ErrorReply(s, group.Get(0).seq(), 0);
+      if (absl::Status s = AppendRecords(*entry, group, ack.mutable_ack()); !s.ok()) {
+        ack = ErrorReply(s, group.front().seq, 0);
       }
       replies.push_back(std::move(ack));
-      group.Clear();
+      group.clear();
     };
     for (v1::SessionClientMessage& in : messages) {
       if (in.has_transition()) {
+        const uint64_t seq = in.transition().seq();
         google::protobuf::RepeatedPtrField<v1::Transition> one;
-        *one.Add() = in.transition();
-        absl::Status valid = TransitionsFromWire(one, config).status();
-        if (valid.ok() && in.transition().seq() <= last_seq_seen) {
+        one.Add()->Swap(in.mutable_transition());
+        absl::StatusOr<std::vector<store::TransitionRecord>> record = TransitionsFromWire(one, config);
+        absl::Status valid = record.status();
+        if (valid.ok() && seq <= last_seq_seen) {
           valid = absl::InvalidArgumentError(absl::StrFormat(
-              "transition seq %d comes after seq %d in this session; seq must increase",
-              in.transition().seq(), last_seq_seen));
+              "transition seq %d comes after seq %d in this session; seq must increase", seq,
+              last_seq_seen));
         }
         if (!valid.ok()) {
           flush();  // keep the replies in the order of the messages
-          replies.push_back(ErrorReply(valid, in.transition().seq(), 0));
+          replies.push_back(ErrorReply(valid, seq, 0));
           continue;
         }
-        last_seq_seen = in.transition().seq();
-        *group.Add() = std::move(*in.mutable_transition());
+        last_seq_seen = seq;
+        group.push_back(std::move(record->front()));
       } else if (in.has_plan_request()) {
         flush();
         v1::SessionServerMessage out;

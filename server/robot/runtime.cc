@@ -6,7 +6,6 @@
 
 #include "absl/strings/str_format.h"
 #include "core/model/serialize.h"
-#include "core/util/random.h"
 #include "foray/v1/monitoring.pb.h"
 #include "foray/v1/types.pb.h"
 
@@ -83,6 +82,10 @@ void RobotRuntime::UpdateSettings(const plan::PlannerOptions& planner,
 
 RobotStatus RobotRuntime::Status() const {
   absl::MutexLock lock(&mu_);
+  return StatusLocked();
+}
+
+RobotStatus RobotRuntime::StatusLocked() const {
   RobotStatus s;
   s.last_seq = last_seq_;
   s.transitions = rewards_.size();
@@ -94,10 +97,7 @@ RobotStatus RobotRuntime::Status() const {
 ProgressView RobotRuntime::Progress() const {
   absl::MutexLock lock(&mu_);
   ProgressView v;
-  v.status.last_seq = last_seq_;
-  v.status.transitions = rewards_.size();
-  v.status.model_version = published_ ? published_->version : 0;
-  v.status.training = training_;
+  v.status = StatusLocked();
   v.episodes = episodes_;
   v.last_episode = last_episode_record_;
   v.model = published_;
@@ -460,22 +460,9 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     // middle of the bounds), information gain off.
     const plan::PlannerOptions& p = input.planner;
     if (absl::Status s = p.Validate(); !s.ok()) return s;
-    if (absl::Status s = limits.Validate(); !s.ok()) return s;
-    const plan::ColoredNoise noise(p.horizon, p.noise_beta);
-    Rng rng(p.seed);
-    plan::RowMatrixXf actions(p.horizon, config.action_dim);
-    for (int j = 0; j < config.action_dim; ++j) {
-      noise.Sample([&] { return rng.Normal(); }, actions.data() + j, config.action_dim);
-    }
-    for (int t = 0; t < p.horizon; ++t) {
-      for (int j = 0; j < config.action_dim; ++j) {
-        const float range = limits.upper[j] - limits.lower[j];
-        actions(t, j) = 0.5f * (limits.upper[j] + limits.lower[j]) +
-                        static_cast<float>(p.initial_std_fraction) * range * actions(t, j);
-      }
-    }
-    limits.Project(actions.data(), p.horizon);
-    outcome.result.actions = std::move(actions);
+    absl::StatusOr<plan::RowMatrixXf> actions = plan::SampleFromPrior(p.cem(), limits);
+    if (!actions.ok()) return actions.status();
+    outcome.result.actions = *std::move(actions);
     outcome.result.expected_reward = Eigen::VectorXf::Zero(p.horizon);
     outcome.result.information_gain = Eigen::VectorXf::Zero(p.horizon);
     outcome.from_prior = true;

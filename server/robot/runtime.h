@@ -146,6 +146,7 @@ class RobotRuntime {
 
  private:
   model::TransitionData Snapshot() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
+  RobotStatus StatusLocked() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
   absl::StatusOr<std::shared_ptr<const PublishedModel>> Publish(model::Ensemble ensemble,
                                                                 model::TrainingReport report,
                                                                 double seconds);

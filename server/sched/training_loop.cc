@@ -27,11 +27,6 @@ void TrainingLoop::Stop() {
   if (thread_.joinable()) thread_.join();
 }
 
-int TrainingLoop::rounds() const {
-  absl::MutexLock lock(&mu_);
-  return rounds_;
-}
-
 void TrainingLoop::Run() {
   size_t next = 0;  // where the round robin resumes
   for (;;) {
@@ -52,8 +47,6 @@ void TrainingLoop::Run() {
                      std::string(published.status().message()).c_str());
       }
       next = (next + i + 1) % robots.size();
-      absl::MutexLock lock(&mu_);
-      ++rounds_;
       trained = true;
       break;  // one round, then look at every robot again from the next one
     }

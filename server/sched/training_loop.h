@@ -36,8 +36,6 @@ class TrainingLoop {
 
   void Start();
   void Stop();
-  // Training rounds finished since Start (for tests and monitoring).
-  int rounds() const;
 
  private:
   void Run();
@@ -48,7 +46,6 @@ class TrainingLoop {
   const absl::Duration max_pause_;
   mutable absl::Mutex mu_;
   bool stopping_ ABSL_GUARDED_BY(mu_) = false;
-  int rounds_ ABSL_GUARDED_BY(mu_) = 0;
   std::thread thread_;
 };
 

@@ -30,7 +30,6 @@ import time
 
 import numpy as np
 
-HERE = os.path.dirname(os.path.abspath(__file__))
 GRID = 20
 
 
@@ -135,7 +134,7 @@ def run_one(args, scenario, strategy, seed):
     }
 
 
-def summarise(runs, episodes):
+def summarise(runs):
     rows = []
     for scenario in sorted({r["scenario"] for r in runs}):
         for strategy in ("explore", "reward", "noise"):
@@ -223,7 +222,7 @@ def main(argv=None):
                 print(f"{scenario} {strategy} seed {seed}: first reward episode "
                       f"{run['first_discovery_episode']}, coverage {run['coverage'][-1]:.3f}, "
                       f"{run['wall_s']:.0f} s", flush=True)
-    rows = summarise(runs, args.episodes)
+    rows = summarise(runs)
     with open(os.path.join(args.out, "exploration_bench.json"), "w") as f:
         json.dump({"settings": vars(args), "summary": rows, "runs": runs}, f, indent=1)
     print_table(rows, args.episodes, args.steps)

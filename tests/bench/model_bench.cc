@@ -13,27 +13,13 @@
 #include "core/model/ensemble.h"
 #include "core/model/inference.h"
 #include "core/model/trainer.h"
-#include "core/util/random.h"
+#include "tests/bench/bench_common.h"
 
 namespace {
 
-struct Timing {
-  double median_ms, min_ms, max_ms;
-};
-
-template <typename F>
-Timing Time(F&& fn, int repeats, int warmup = 3) {
-  for (int i = 0; i < warmup; ++i) fn();
-  std::vector<double> ms;
-  for (int i = 0; i < repeats; ++i) {
-    const auto start = std::chrono::steady_clock::now();
-    fn();
-    ms.push_back(std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - start)
-                     .count());
-  }
-  std::sort(ms.begin(), ms.end());
-  return {ms[ms.size() / 2], ms.front(), ms.back()};
-}
+using foray::bench::Random;
+using foray::bench::Time;
+using foray::bench::Timing;
 
 void Print(const std::string& name, const Timing& t, double flops, const std::string& extra = "") {
   std::printf(
@@ -41,14 +27,6 @@ void Print(const std::string& name, const Timing& t, double flops, const std::st
       "\"max_ms\": %.4f, \"gflops\": %.2f%s}\n",
       name.c_str(), t.median_ms, t.min_ms, t.max_ms, flops / (t.median_ms * 1e6), extra.c_str());
   std::fflush(stdout);
-}
-
-Eigen::MatrixXf Random(int rows, int cols, uint64_t seed) {
-  foray::Rng rng(seed);
-  Eigen::MatrixXf m(rows, cols);
-  for (int j = 0; j < cols; ++j)
-    for (int i = 0; i < rows; ++i) m(i, j) = static_cast<float>(rng.Normal());
-  return m;
 }
 
 }  // namespace
@@ -61,9 +39,7 @@ int main(int argc, char** argv) {
   // thread; Eigen is built without OpenMP).
   {
     const int n = 1536;
-    const Eigen::MatrixXf a = Random(n, n, 1), b = Random(n, n, 2);
-    Eigen::MatrixXf c(n, n);
-    const Timing t = Time([&] { c.noalias() = a * b; }, std::max(5, repeats / 3));
+    const Timing t = foray::bench::SgemmTiming(n, std::max(5, repeats / 3), /*warmup=*/3);
     Print("sgemm_peak", t, 2.0 * n * n * n, ", \"n\": 1536, \"threads\": 1");
   }
 

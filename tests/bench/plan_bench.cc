@@ -17,7 +17,7 @@
 #include "Eigen/Core"
 #include "core/model/ensemble.h"
 #include "core/plan/planner.h"
-#include "core/util/random.h"
+#include "tests/bench/bench_common.h"
 
 namespace {
 
@@ -33,26 +33,10 @@ constexpr Config kConfigs[] = {
     {"arm", 14, 4, 5, 200, 3, 400, 40, 5, 25, 5},
 };
 
-struct Timing {
-  double median_ms, min_ms, max_ms;
-};
-
-Timing Summarise(std::vector<double> ms) {
-  std::sort(ms.begin(), ms.end());
-  return {ms[ms.size() / 2], ms.front(), ms.back()};
-}
-
-double MsSince(std::chrono::steady_clock::time_point start) {
-  return std::chrono::duration<double, std::milli>(std::chrono::steady_clock::now() - start).count();
-}
-
-Eigen::MatrixXf Random(int rows, int cols, uint64_t seed) {
-  foray::Rng rng(seed);
-  Eigen::MatrixXf m(rows, cols);
-  for (int j = 0; j < cols; ++j)
-    for (int i = 0; i < rows; ++i) m(i, j) = static_cast<float>(rng.Normal());
-  return m;
-}
+using foray::bench::MsSince;
+using foray::bench::Random;
+using foray::bench::Summarise;
+using foray::bench::Timing;
 
 }  // namespace
 
@@ -60,15 +44,7 @@ int main(int argc, char** argv) {
   const int repeats = argc > 1 ? std::atoi(argv[1]) : 10;
   {
     const int n = 1536;
-    const Eigen::MatrixXf a = Random(n, n, 1), b = Random(n, n, 2);
-    Eigen::MatrixXf c(n, n);
-    std::vector<double> ms;
-    for (int i = 0; i < 8; ++i) {
-      const auto start = std::chrono::steady_clock::now();
-      c.noalias() = a * b;
-      ms.push_back(MsSince(start));
-    }
-    const Timing t = Summarise(ms);
+    const Timing t = foray::bench::SgemmTiming(n, /*repeats=*/8, /*warmup=*/0);
     std::printf("{\"name\": \"sgemm_peak\", \"impl\": \"foray\", \"median_ms\": %.3f, "
                 "\"min_ms\": %.3f, \"max_ms\": %.3f, \"gflops\": %.2f, \"n\": %d, \"threads\": 1}\n",
                 t.median_ms, t.min_ms, t.max_ms, 2.0 * n * n * n / (t.median_ms * 1e6), n);
