@@ -30,6 +30,7 @@ PACKAGES=(
   python3-matplotlib     # plots of the exploration benchmark
   python3-prometheus-client # parses /metrics in the tests
   libcpp-httplib-dev     # HTTP server of /metrics, the JSON API and the dashboard
+  nlohmann-json3-dev     # the foray CLI reads robot spec files (JSON)
   chromium               # the browser of the dashboard test (headless)
   nodejs                 # runs the browser test's driver (npm: with it, or Debian's npm below)
   libopenblas0-pthread   # optimised BLAS, so the numpy and PyTorch references run at full speed

@@ -1,7 +1,7 @@
 // foray-sim: simulated robots of our own that connect to forayd as ordinary clients. Each robot
 // registers once (its token is kept under --state_dir), then runs episodes: at every control
 // step it asks for a plan from its current state, applies the plan's first action to its
-// physics, and streams the transition. A line per episode shows how learning goes.
+// physics, and records the transition; the C++ client library streams it to the server. A line per episode shows how learning goes.
 
 #include <atomic>
 #include <chrono>
@@ -23,10 +23,9 @@
 #include "absl/strings/str_format.h"
 #include "absl/strings/str_split.h"
 #include "absl/strings/strip.h"
+#include "client/cpp/session.h"
 #include "client/sim/scenario.h"
 #include "foray/v1/models.grpc.pb.h"
-#include "foray/v1/registry.grpc.pb.h"
-#include "foray/v1/session.grpc.pb.h"
 #include "grpcpp/grpcpp.h"
 
 ABSL_FLAG(std::string, address, "127.0.0.1:50151", "forayd's gRPC address, host:port.");
@@ -74,10 +73,6 @@ void Say(const std::string& line) {
   std::fflush(stdout);
 }
 
-struct Identity {
-  std::string robot_id, token;
-};
-
 v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
   v1::RobotSpec spec;
   spec.set_name(name);
@@ -116,44 +111,8 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
   return spec;
 }
 
-// The robot's id and token from --state_dir, or a fresh registration saved there.
-bool Identify(v1::RobotRegistry::Stub& registry, const Scenario& scenario, const std::string& name,
-              Identity* id) {
-  const std::filesystem::path dir = absl::GetFlag(FLAGS_state_dir);
-  const std::filesystem::path file = dir / (name + ".token");
-  if (std::ifstream in(file); in >> id->robot_id >> id->token) return true;
-
-  std::ifstream admin_in(absl::GetFlag(FLAGS_admin_token_file));
-  std::string admin;
-  if (!std::getline(admin_in, admin)) {
-    Say(absl::StrFormat("%s: cannot read the admin token from %s (start forayd first, or pass "
-                        "--admin_token_file)", name, absl::GetFlag(FLAGS_admin_token_file)));
-    return false;
-  }
-  grpc::ClientContext context;
-  context.AddMetadata("authorization", "Bearer " + std::string(absl::StripAsciiWhitespace(admin)));
-  context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
-  v1::RegisterRobotRequest request;
-  *request.mutable_spec() = SpecFor(scenario, name);
-  v1::RegisterRobotResponse response;
-  const grpc::Status status = registry.RegisterRobot(&context, request, &response);
-  if (!status.ok()) {
-    Say(absl::StrFormat("%s: registering failed: %s", name, status.error_message()));
-    return false;
-  }
-  id->robot_id = response.robot().robot_id();
-  id->token = response.token();
-  std::filesystem::create_directories(dir);
-  std::ofstream out(file);
-  out << id->robot_id << " " << id->token << "\n";
-  std::filesystem::permissions(file, std::filesystem::perms::owner_read | std::filesystem::perms::owner_write);
-  Say(absl::StrFormat("%s: registered as %s; hidden zone: %s", name, id->robot_id,
-                      scenario.ZoneDescription()));
-  return true;
-}
-
 // Runs the episodes of one robot; returns false on an error that stops it.
-bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& kind, int index) {
+bool RunRobot(const std::string& kind, int index) {
   auto scenario = foray::sim::MakeScenario(kind, absl::GetFlag(FLAGS_seed) * 1000 + index);
   if (!scenario.ok()) {
     Say(std::string(scenario.status().message()));
@@ -161,65 +120,64 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
   }
   Scenario& sim = **scenario;
   const std::string name = absl::StrFormat("%s-%s-%d", absl::GetFlag(FLAGS_name_prefix), kind, index);
-  auto registry = v1::RobotRegistry::NewStub(channel);
-  auto session = v1::RobotSession::NewStub(channel);
-  Identity id;
-  if (!Identify(*registry, sim, name, &id)) return false;
-  const std::string bearer = "Bearer " + id.token;
-
-  uint64_t seq = 0;
-  {
-    grpc::ClientContext context;
-    context.AddMetadata("authorization", bearer);
-    v1::GetRobotRequest request;
-    request.set_robot_id(id.robot_id);
-    v1::Robot robot;
-    const grpc::Status status = registry->GetRobot(&context, request, &robot);
-    if (!status.ok()) {
-      Say(absl::StrFormat("%s: %s (delete %s to register anew)", name, status.error_message(),
-                          absl::GetFlag(FLAGS_state_dir)));
-      return false;
-    }
-    seq = robot.last_seq();
+  const std::filesystem::path state_dir = absl::GetFlag(FLAGS_state_dir);
+  std::error_code ignored;
+  std::filesystem::create_directories(state_dir, ignored);
+  bool registered = false;
+  absl::StatusOr<foray::client::Identity> id = foray::client::RobotSession::LoadOrRegister(
+      (state_dir / (name + ".token")).string(), absl::GetFlag(FLAGS_address), nullptr,
+      absl::GetFlag(FLAGS_admin_token_file), SpecFor(sim, name), &registered);
+  if (!id.ok()) {
+    Say(absl::StrFormat("%s: %s", name, id.status().message()));
+    return false;
   }
+  if (registered) {
+    Say(absl::StrFormat("%s: registered as %s; hidden zone: %s", name, id->robot_id,
+                        sim.ZoneDescription()));
+  }
+  foray::client::SessionOptions options;
+  options.address = absl::GetFlag(FLAGS_address);
+  options.identity = *id;
+  options.safe_action.kind = foray::client::SafeAction::Kind::kLastAction;
+  options.client_name = "foray-sim/0.1";
+  foray::client::RobotSession session(options);
+  if (absl::Status s = session.WaitConnected(absl::Seconds(30)); !s.ok()) {
+    Say(absl::StrFormat("%s: %s (delete %s to register anew)", name, s.message(),
+                        (state_dir / (name + ".token")).string()));
+    return false;
+  }
+  uint64_t seq = session.Stats().next_seq - 1;
   const int steps = absl::GetFlag(FLAGS_steps) > 0 ? absl::GetFlag(FLAGS_steps) : sim.episode_steps();
   const int episodes = absl::GetFlag(FLAGS_episodes);
   uint64_t episode_id = seq / steps + 1;
   const int action_dim = static_cast<int>(sim.action_dims().size());
   const std::vector<foray::sim::ActionRange> ranges = sim.action_ranges();
   const bool noise_baseline = absl::GetFlag(FLAGS_strategy) == "noise";
+  const bool realtime = absl::GetFlag(FLAGS_realtime);
+  const absl::Duration compute = absl::Milliseconds(absl::GetFlag(FLAGS_deadline_ms));
+  // In real time the watchdog holds the last action once a control period is over; flat out,
+  // the simulation waits for the plan (the clock is ours).
+  const absl::Duration wait =
+      realtime ? std::max(compute, absl::Seconds(sim.control_period_s())) : compute + absl::Seconds(10);
   std::mt19937_64 rng(absl::GetFlag(FLAGS_seed) * 7919 + index);
   std::normal_distribution<double> normal(0.0, 1.0);
-  auto models = v1::Models::NewStub(channel);
+  auto models = v1::Models::NewStub(
+      grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials()));
 
   for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
     Eigen::VectorXd state = sim.Reset();
-    Eigen::VectorXd previous = Eigen::VectorXd::Zero(action_dim);
-    v1::AppendTransitionsRequest batch;
-    batch.set_robot_id(id.robot_id);
+    std::vector<double> previous(action_dim, 0.0);
     double episode_return = 0.0, plan_ms = 0.0, gain = 0.0;
-    int first_reward = -1, from_prior = 0, plans = 0;
+    int first_reward = -1, from_prior = 0, plans = 0, held = 0;
     const auto episode_start = std::chrono::steady_clock::now();
     uint64_t model_version = 0;
-    auto flush = [&]() -> bool {
-      if (batch.transitions_size() == 0) return true;
-      grpc::ClientContext context;
-      context.AddMetadata("authorization", bearer);
-      context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(30));
-      v1::Ack ack;
-      const grpc::Status status = session->AppendTransitions(&context, batch, &ack);
-      if (!status.ok()) {
-        Say(absl::StrFormat("%s: sending transitions failed: %s", name, status.error_message()));
-        return false;
-      }
-      batch.clear_transitions();
-      return true;
-    };
     for (int t = 0; t < steps && !g_stop; ++t) {
       const auto step_start = std::chrono::steady_clock::now();
-      Eigen::VectorXd action = previous;  // hold the last action when no plan comes
+      const std::vector<double> now(state.data(), state.data() + state.size());
+      std::vector<double> action;
       if (noise_baseline) {
-        action = sim.Nominal(state);
+        const Eigen::VectorXd nominal = sim.Nominal(state);
+        action.assign(nominal.data(), nominal.data() + nominal.size());
         for (int j = 0; j < action_dim; ++j) {
           const auto& r = ranges[j];
           action[j] += absl::GetFlag(FLAGS_noise_fraction) * 0.5 * (r.max - r.min) * normal(rng);
@@ -229,48 +187,41 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
           action[j] = std::clamp(action[j], r.min, r.max);
         }
       } else {
-      v1::PlanActionsRequest request;
-      request.set_robot_id(id.robot_id);
-      for (int k = 0; k < state.size(); ++k) request.mutable_request()->add_state(state[k]);
-      for (int j = 0; j < action_dim; ++j) request.mutable_request()->add_previous_action(previous[j]);
-      request.mutable_request()->set_deadline_ms(absl::GetFlag(FLAGS_deadline_ms));
-      grpc::ClientContext context;
-      context.AddMetadata("authorization", bearer);
-      context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
-      v1::Plan plan;
-      const grpc::Status status = session->PlanActions(&context, request, &plan);
-      ++plans;
-      if (status.ok() && plan.steps_size() > 0) {
-        for (int j = 0; j < action_dim; ++j) action[j] = plan.steps(0).action(j);
-        plan_ms += plan.compute_ms();
-        gain += plan.steps(0).information_gain();
-        from_prior += plan.from_prior() ? 1 : 0;
-        model_version = plan.model_version();
-      } else if (!status.ok()) {
-        Say(absl::StrFormat("%s: no plan (%s); holding the last action", name, status.error_message()));
+        foray::client::Decision decision = session.Act(now, previous, compute, wait);
+        ++plans;
+        action = std::move(decision.action);
+        if (decision.planned) {
+          plan_ms += decision.plan.compute_ms();
+          gain += decision.plan.steps(0).information_gain();
+          from_prior += decision.plan.from_prior() ? 1 : 0;
+          model_version = decision.plan.model_version();
+        } else if (held++ == 0) {
+          Say(absl::StrFormat("%s: no plan (%s); holding the last action", name, decision.why.message()));
+        }
       }
-      }
-      const Eigen::VectorXd next = sim.Step(action);
+      const Eigen::VectorXd next = sim.Step(Eigen::Map<const Eigen::VectorXd>(action.data(), action_dim));
       const double reward = sim.Reward(next);
       if (reward > 0 && first_reward < 0) first_reward = t;
       episode_return += reward;
-      v1::Transition* tr = batch.add_transitions();
-      tr->set_seq(++seq);
-      tr->set_episode(episode_id);
-      tr->set_step(static_cast<uint32_t>(t));
-      for (int k = 0; k < state.size(); ++k) tr->add_state(state[k]);
-      for (int j = 0; j < action_dim; ++j) tr->add_action(action[j]);
-      for (int k = 0; k < next.size(); ++k) tr->add_next_state(next[k]);
-      tr->set_reward(reward);
-      tr->set_terminal(t + 1 == steps);
+      foray::client::StepRecord record;
+      record.episode = episode_id;
+      record.step = static_cast<uint32_t>(t);
+      record.state = now;
+      record.action = action;
+      record.next_state.assign(next.data(), next.data() + next.size());
+      record.reward = reward;
+      record.terminal = t + 1 == steps;
+      if (absl::Status s = session.Record(record); !s.ok()) {
+        Say(absl::StrFormat("%s: recording a transition failed: %s", name, s.message()));
+        return false;
+      }
+      ++seq;
       state = next;
       previous = action;
-      if (batch.transitions_size() >= 20 && !flush()) return false;
-      if (absl::GetFlag(FLAGS_realtime)) {
+      if (realtime) {
         std::this_thread::sleep_until(step_start + std::chrono::duration<double>(sim.control_period_s()));
       }
     }
-    if (!flush()) return false;
     const double episode_s =
         std::chrono::duration<double>(std::chrono::steady_clock::now() - episode_start).count();
     if (!absl::GetFlag(FLAGS_report).empty()) {
@@ -280,28 +231,37 @@ bool RunRobot(const std::shared_ptr<grpc::Channel>& channel, const std::string& 
           "{\"robot\": \"%s\", \"robot_id\": \"%s\", \"scenario\": \"%s\", \"strategy\": \"%s\", "
           "\"episode\": %d, \"return\": %g, \"first_reward_step\": %d, \"model_version\": %d, "
           "\"plans\": %d, \"plan_ms\": %g, \"information_gain\": %g, \"seconds\": %g}\n",
-          name, id.robot_id, kind, absl::GetFlag(FLAGS_strategy), episode_id, episode_return,
+          name, id->robot_id, kind, absl::GetFlag(FLAGS_strategy), episode_id, episode_return,
           first_reward, model_version, plans, plans > 0 ? plan_ms / plans : 0.0,
           plans > 0 ? gain / plans : 0.0, episode_s);
     }
     if (absl::GetFlag(FLAGS_train_each_episode) && !noise_baseline && !g_stop) {
+      if (absl::Status s = session.Flush(absl::Minutes(1)); !s.ok()) {
+        Say(absl::StrFormat("%s: %s", name, s.message()));
+        return false;
+      }
       grpc::ClientContext context;
-      context.AddMetadata("authorization", bearer);
+      context.AddMetadata("authorization", "Bearer " + id->token);
       context.set_deadline(std::chrono::system_clock::now() + std::chrono::minutes(10));
       v1::TrainNowRequest request;
-      request.set_robot_id(id.robot_id);
+      request.set_robot_id(id->robot_id);
       request.set_wait(true);
       v1::TrainNowResponse response;
       const grpc::Status status = models->TrainNow(&context, request, &response);
       if (!status.ok()) Say(absl::StrFormat("%s: training failed: %s", name, status.error_message()));
     }
     Say(absl::StrFormat(
-        "%s episode %d: return %.0f (%s), %d transitions sent, model v%d, plan %.1f ms, "
-        "information gain %.3f nats/step%s",
+        "%s episode %d: return %.0f (%s), %d transitions recorded, model v%d, plan %.1f ms, "
+        "information gain %.3f nats/step%s%s",
         name, episode_id, episode_return,
         first_reward >= 0 ? absl::StrFormat("zone reached at step %d", first_reward) : "zone not reached",
         seq, model_version, plan_ms / steps, gain / steps,
-        from_prior > 0 ? absl::StrFormat(", %d random steps (no model yet)", from_prior) : ""));
+        from_prior > 0 ? absl::StrFormat(", %d random steps (no model yet)", from_prior) : "",
+        held > 0 ? absl::StrFormat(", %d steps held the last action", held) : ""));
+  }
+  if (absl::Status s = session.Flush(absl::Seconds(30)); !s.ok()) {
+    Say(absl::StrFormat("%s: %s", name, s.message()));
+    return false;
   }
   return true;
 }
@@ -334,12 +294,11 @@ int main(int argc, char** argv) {
       return 2;
     }
   }
-  auto channel = grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials());
   std::vector<std::thread> threads;
   std::atomic<int> failed{0};
   for (size_t i = 0; i < kinds.size(); ++i) {
     threads.emplace_back([&, i] {
-      if (!RunRobot(channel, kinds[i], static_cast<int>(i + 1))) ++failed;
+      if (!RunRobot(kinds[i], static_cast<int>(i + 1))) ++failed;
     });
   }
   for (std::thread& t : threads) t.join();

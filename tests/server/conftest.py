@@ -17,10 +17,10 @@ class Forayd:
         self.log_path = os.path.join(data_dir, "forayd.log")
         self._start()
 
-    def _start(self):
+    def _start(self, port=0):
         self.log = open(self.log_path, "w+")
         self.process = subprocess.Popen(
-            [os.environ["FORAYD"], "--listen=127.0.0.1:0", f"--data_dir={self.data_dir}"]
+            [os.environ["FORAYD"], f"--listen=127.0.0.1:{port}", f"--data_dir={self.data_dir}"]
             + self.extra_args,
             stdout=self.log, stderr=subprocess.STDOUT)
         self.port = self._wait_for_port(timeout_s=20)
@@ -31,6 +31,10 @@ class Forayd:
         code = self.stop()
         self._start()
         return code
+
+    def start_again(self):
+        """Starts a stopped server again on the same data directory and the same port."""
+        self._start(port=self.port)
 
     @property
     def admin_token(self):

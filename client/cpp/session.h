@@ -1,0 +1,207 @@
+// RobotSession: the C++ client of a robot PC. It keeps one session stream to forayd open,
+// buffers every recorded transition until the server acknowledges it as durable, resends what
+// was not acknowledged after a reconnect (with exponential backoff), and asks for plans with
+// deadlines. When no valid plan arrives in time, Act() returns the robot's safe action instead
+// (the watchdog). Thread-safe: one control thread (or several) plus the library's own I/O threads.
+//
+//   foray::client::SessionOptions options;
+//   options.identity = {robot_id, token};
+//   foray::client::RobotSession session(options);
+//   for (;;) {
+//     Decision d = session.Act(state, last_action, absl::Milliseconds(30), absl::Milliseconds(45));
+//     ... apply d.action, measure next_state ...
+//     session.Record({episode, step, state, d.action, next_state, reward, terminal});
+//   }
+//
+// Foray is not a safety system: the safe action is a convenience for the control loop, not a
+// substitute for emergency stops and safety-rated limits on the robot.
+
+#ifndef FORAY_CLIENT_CPP_SESSION_H_
+#define FORAY_CLIENT_CPP_SESSION_H_
+
+#include <cstdint>
+#include <deque>
+#include <map>
+#include <memory>
+#include <string>
+#include <thread>
+#include <vector>
+
+#include "absl/base/thread_annotations.h"
+#include "absl/status/status.h"
+#include "absl/status/statusor.h"
+#include "absl/synchronization/mutex.h"
+#include "absl/time/time.h"
+#include "foray/v1/registry.pb.h"
+#include "foray/v1/session.grpc.pb.h"
+#include "grpcpp/grpcpp.h"
+
+namespace foray::client {
+
+// A robot's credentials: its id and its own bearer token (from registration).
+struct Identity {
+  std::string robot_id;
+  std::string token;
+};
+
+// What Act() returns when no valid plan is there in time.
+struct SafeAction {
+  enum class Kind {
+    kZeros,       // every action dimension 0 (make sure 0 lies within the robot's limits)
+    kLastAction,  // the previous action passed to Act()
+    kFixed,       // `fixed`, action_dim values in the action's units
+  };
+  Kind kind = Kind::kLastAction;
+  std::vector<double> fixed;
+};
+
+struct SessionOptions {
+  // forayd's gRPC address, host:port.
+  std::string address = "127.0.0.1:50151";
+  // Null means an insecure channel (loopback or a closed lab network); pass
+  // grpc::SslCredentials(...) for TLS.
+  std::shared_ptr<grpc::ChannelCredentials> credentials;
+  Identity identity;
+  SafeAction safe_action;
+  // Reconnect delays: the first retry after initial_backoff, doubling up to max_backoff.
+  absl::Duration initial_backoff = absl::Milliseconds(100);
+  absl::Duration max_backoff = absl::Seconds(5);
+  // Record() refuses (ResourceExhausted) once this many transitions wait for an acknowledgement.
+  size_t max_unacknowledged = 1'000'000;
+  // Transitions written per wake-up of the I/O thread (the server commits what arrives
+  // together as one group).
+  int write_batch = 512;
+  std::string client_name = "foray-cpp/0.1";
+
+  absl::Status Validate() const;
+};
+
+// One observed step, in the robot's units (sizes as in its spec).
+struct StepRecord {
+  uint64_t episode = 0;
+  uint32_t step = 0;
+  std::vector<double> state;       // state_dim values before the action
+  std::vector<double> action;      // action_dim values applied
+  std::vector<double> next_state;  // state_dim values one control period later
+  double reward = 0.0;
+  bool terminal = false;
+};
+
+// What the control loop applies this period.
+struct Decision {
+  std::vector<double> action;  // action_dim values
+  bool planned = false;        // false: the safe action
+  absl::Status why;            // when !planned: why no plan was used
+  foray::v1::Plan plan;        // the plan the action came from, when planned
+};
+
+struct SessionStats {
+  bool connected = false;
+  uint64_t durable_seq = 0;      // highest seq the server has acknowledged as durable
+  uint64_t next_seq = 0;         // seq the next Record() gets; 0 until the first welcome
+  size_t unacknowledged = 0;     // recorded, not yet durable
+  uint64_t connects = 0;         // successful welcomes, the first one included
+  uint64_t rejected = 0;         // transitions the server refused (see last_error)
+  uint64_t safe_actions = 0;     // Act() calls that returned the safe action
+  std::string last_error;
+};
+
+class RobotSession {
+ public:
+  // Starts the I/O thread, which connects in the background and keeps reconnecting until
+  // Stop() or destruction. Check options with Validate() first; invalid options abort.
+  explicit RobotSession(SessionOptions options);
+  RobotSession(const RobotSession&) = delete;
+  RobotSession& operator=(const RobotSession&) = delete;
+  ~RobotSession();
+
+  // Registers a robot with the admin token; returns its id and token.
+  static absl::StatusOr<Identity> Register(const std::string& address,
+                                           std::shared_ptr<grpc::ChannelCredentials> credentials,
+                                           const std::string& admin_token,
+                                           const foray::v1::RobotSpec& spec);
+  // The identity stored in `path` ("ROBOT_ID TOKEN"), or a new registration saved there
+  // (mode 0600) when the file does not exist. `registered` tells which happened.
+  static absl::StatusOr<Identity> LoadOrRegister(const std::string& path, const std::string& address,
+                                                 std::shared_ptr<grpc::ChannelCredentials> credentials,
+                                                 const std::string& admin_token_file,
+                                                 const foray::v1::RobotSpec& spec,
+                                                 bool* registered = nullptr);
+
+  // Waits until the stream is open and the server has said welcome.
+  absl::Status WaitConnected(absl::Duration timeout);
+
+  // Buffers one transition and returns at once; the I/O thread sends it. Its seq is the next
+  // one after everything the server holds. InvalidArgument names a wrong-sized or non-finite
+  // field; ResourceExhausted when max_unacknowledged transitions wait already.
+  absl::Status Record(const StepRecord& step);
+
+  // Waits until every recorded transition is durable on the server.
+  absl::Status Flush(absl::Duration timeout);
+
+  // Asks for a plan from `state` (state_dim values); `previous_action` (action_dim values, may be
+  // empty) feeds the rate limit of the first step. The server plans for at most `compute`;
+  // this call waits at most `wait` for the reply. Unavailable while disconnected.
+  absl::StatusOr<foray::v1::Plan> RequestPlan(const std::vector<double>& state,
+                                              const std::vector<double>& previous_action,
+                                              absl::Duration compute, absl::Duration wait);
+
+  // The watchdog: the first action of a plan that arrives within `wait` and is still valid,
+  // else the safe action (returned within `wait` plus scheduling noise, also when the server
+  // is down). `previous_action` has action_dim values.
+  Decision Act(const std::vector<double>& state, const std::vector<double>& previous_action,
+               absl::Duration compute, absl::Duration wait);
+
+  SessionStats Stats() const;
+
+  // Closes the stream and joins the I/O threads. Unacknowledged transitions are dropped (call
+  // Flush() first to keep them). Idempotent.
+  void Stop();
+
+ private:
+  struct Waiter {
+    bool done = false;
+    absl::StatusOr<foray::v1::Plan> result = absl::UnavailableError("no reply");
+  };
+
+  void IoLoop();
+  // Reads the stream until it ends; runs on its own thread per connection.
+  void ReadLoop(grpc::ClientReaderWriter<foray::v1::SessionClientMessage,
+                                         foray::v1::SessionServerMessage>* stream);
+  void OnWelcome(const foray::v1::Welcome& welcome) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  void OnAck(const foray::v1::Ack& ack) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  void OnError(const foray::v1::MessageError& error) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  void FailWaiters(const absl::Status& status) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  std::vector<double> SafeActionFor(const std::vector<double>& previous_action) const;
+
+  const SessionOptions options_;
+  const std::shared_ptr<grpc::Channel> channel_;
+  const std::unique_ptr<foray::v1::RobotSession::Stub> stub_;
+
+  mutable absl::Mutex mu_;
+  bool stopping_ ABSL_GUARDED_BY(mu_) = false;
+  bool connected_ ABSL_GUARDED_BY(mu_) = false;
+  bool stream_broken_ ABSL_GUARDED_BY(mu_) = false;
+  grpc::ClientContext* context_ ABSL_GUARDED_BY(mu_) = nullptr;  // the open stream's, for Stop()
+  // Recorded transitions not yet durable, in seq order; the first `sent_` of them went out on
+  // the current stream. Before the first welcome their seq is 0 (assigned at the welcome).
+  std::deque<foray::v1::Transition> unacked_ ABSL_GUARDED_BY(mu_);
+  size_t sent_ ABSL_GUARDED_BY(mu_) = 0;
+  std::deque<foray::v1::PlanRequest> plan_requests_ ABSL_GUARDED_BY(mu_);
+  std::map<uint64_t, Waiter> waiters_ ABSL_GUARDED_BY(mu_);
+  uint64_t next_request_id_ ABSL_GUARDED_BY(mu_) = 1;
+  uint64_t next_seq_ ABSL_GUARDED_BY(mu_) = 0;
+  uint64_t durable_seq_ ABSL_GUARDED_BY(mu_) = 0;
+  int state_dim_ ABSL_GUARDED_BY(mu_) = 0;   // from the welcome's spec; 0 until then
+  int action_dim_ ABSL_GUARDED_BY(mu_) = 0;
+  uint64_t connects_ ABSL_GUARDED_BY(mu_) = 0;
+  uint64_t rejected_ ABSL_GUARDED_BY(mu_) = 0;
+  uint64_t safe_actions_ ABSL_GUARDED_BY(mu_) = 0;
+  std::string last_error_ ABSL_GUARDED_BY(mu_);
+
+  std::thread io_thread_;
+};
+
+}  // namespace foray::client
+
+#endif  // FORAY_CLIENT_CPP_SESSION_H_
