@@ -1,13 +1,14 @@
-// foray: the command-line tool. This first part reads: the robots, one robot's status, and a
-// live view of learning progress from the server's progress stream.
-//
-//   foray robots                 # every robot (admin token)
-//   foray status ROBOT_ID        # one robot's progress
-//   foray watch [ROBOT_ID]       # live table until Ctrl-C (or --seconds N)
-//
-// Credentials: --token, or the first line of --token_file (default ./foray-data/admin-token).
-// Exit codes: 0 done, 1 the server refused or failed, 2 bad usage.
+// foray: the command-line tool of engineers: register robots from spec files, read progress,
+// ask for a plan, move transitions in and out (CSV, .npy), train, and manage checkpoints.
+// Every command answers --help. Credentials: --token, or --token_file (the token is the last
+// word of the file's first line, so a robot's "ROBOT_ID TOKEN" identity file works too).
+// Exit codes: 0 done, 1 the server refused or failed, 2 bad usage or a bad input file.
 
+#include <fcntl.h>
+#include <unistd.h>
+
+#include <algorithm>
+#include <cmath>
 #include <csignal>
 #include <cstdio>
 #include <fstream>
@@ -18,13 +19,21 @@
 #include "absl/flags/flag.h"
 #include "absl/flags/parse.h"
 #include "absl/flags/usage.h"
+#include "absl/strings/match.h"
+#include "absl/strings/numbers.h"
 #include "absl/strings/str_cat.h"
+#include "absl/strings/str_join.h"
+#include "absl/strings/str_split.h"
 #include "absl/strings/str_format.h"
 #include "absl/strings/strip.h"
 #include "absl/time/clock.h"
 #include "absl/time/time.h"
+#include "client/cli/spec_file.h"
+#include "client/cli/table_files.h"
+#include "foray/v1/models.grpc.pb.h"
 #include "foray/v1/monitoring.grpc.pb.h"
 #include "foray/v1/registry.grpc.pb.h"
+#include "foray/v1/session.grpc.pb.h"
 #include "grpcpp/grpcpp.h"
 
 ABSL_FLAG(std::string, address, "127.0.0.1:50151", "forayd's gRPC address, host:port.");
@@ -32,18 +41,71 @@ ABSL_FLAG(std::string, token, "", "Bearer token (admin or a robot's own); overri
 ABSL_FLAG(std::string, token_file, "./foray-data/admin-token", "File whose first line is the token.");
 ABSL_FLAG(double, seconds, 0, "watch: stop after this many seconds (0: until Ctrl-C).");
 ABSL_FLAG(bool, plain, false, "watch: print one line per event instead of redrawing a table.");
+ABSL_FLAG(std::string, token_out, "", "register: write the new robot's id and token to this file (0600).");
+ABSL_FLAG(std::string, state, "", "plan: the current state, comma-separated, state_dim values.");
+ABSL_FLAG(std::string, previous_action, "", "plan: the action applied last, comma-separated (optional).");
+ABSL_FLAG(double, deadline_ms, 100, "plan: planning time, milliseconds.");
+ABSL_FLAG(std::string, out, "", "export: output file, FILE.csv or FILE.npy.");
+ABSL_FLAG(uint64_t, from_seq, 0, "export: first seq (0: from the start).");
+ABSL_FLAG(uint64_t, to_seq, 0, "export: last seq (0: to the end).");
+ABSL_FLAG(bool, no_wait, false, "train: return once the round is queued, without its report.");
 
 namespace {
 
 namespace v1 = foray::v1;
 
-constexpr char kUsage[] =
-    "foray: read what the Foray planning server knows.\n\n"
-    "  foray robots                 list every robot (admin token)\n"
-    "  foray status ROBOT_ID        one robot's progress\n"
-    "  foray watch [ROBOT_ID]       live learning progress (all robots with the admin token)\n\n"
+constexpr char kCaution[] =
     "Foray is not a safety system: keep emergency stops and safety-rated limits in place and\n"
     "follow your lab's risk assessment and local rules before any plan reaches a robot.";
+
+struct Command {
+  const char* name;
+  const char* args;
+  const char* help;
+};
+
+constexpr Command kCommands[] = {
+    {"register", "SPEC.json [--token_out=FILE]",
+     "Registers a robot from a spec file (admin token) and prints its id and token; with\n"
+     "--token_out the id and token go to FILE (mode 0600) instead of the screen. The spec format\n"
+     "is in DEVELOPERS.md, \"Robot spec files\"."},
+    {"robots", "", "Lists every robot with its progress (admin token)."},
+    {"status", "ROBOT_ID", "One robot's progress: data, model, last training, last episode, plans."},
+    {"watch", "[ROBOT_ID] [--seconds=N] [--plain]",
+     "Live learning progress until Ctrl-C: a refreshing table with progress bars (all robots with\n"
+     "the admin token), or one line per event with --plain."},
+    {"plan", "ROBOT_ID --state=V,V,... [--previous_action=V,...] [--deadline_ms=100]",
+     "Asks for a plan from a state (the robot's own token) and prints the action sequence with\n"
+     "the predicted states. Printing a plan moves nothing; whoever sends it to a robot owns that step."},
+    {"export", "ROBOT_ID --out=FILE.csv|FILE.npy [--from_seq=N] [--to_seq=N]",
+     "Writes the robot's transitions to CSV (a header row of column names) or to a .npy file of\n"
+     "float64, one row per transition, columns as in the CSV: seq, episode, step, state.*, action.*,\n"
+     "next_state.*, reward, terminal. numpy.load reads it."},
+    {"import", "ROBOT_ID FILE.csv",
+     "Sends the transitions of a CSV file in the export format (the robot's own token). Rows whose\n"
+     "seq the server already holds are counted as duplicates and not stored twice."},
+    {"train", "ROBOT_ID [--no_wait]", "Trains the robot's ensemble now and prints the training report."},
+    {"checkpoints", "ROBOT_ID", "Lists the robot's model checkpoints, newest first."},
+    {"restore", "ROBOT_ID VERSION",
+     "Publishes the checkpoint of model VERSION again, as a new model version. The next plans\n"
+     "come from it."},
+};
+
+std::string Usage() {
+  std::string text = "foray: talk to the Foray planning server.\n\n";
+  for (const Command& c : kCommands) absl::StrAppend(&text, absl::StrFormat("  foray %-12s %s\n", c.name, c.args));
+  absl::StrAppend(&text, "\nforay COMMAND --help tells more. Common flags: --address=HOST:PORT, --token or "
+                         "--token_file.\nExit codes: 0 done, 1 the server refused or failed, 2 bad usage "
+                         "or input file.\n\n", kCaution);
+  return text;
+}
+
+const Command* FindCommand(const std::string& name) {
+  for (const Command& c : kCommands) {
+    if (name == c.name) return &c;
+  }
+  return nullptr;
+}
 
 grpc::ClientContext* WithToken(grpc::ClientContext* context, const std::string& token) {
   context->AddMetadata("authorization", "Bearer " + token);
@@ -67,6 +129,12 @@ double Coverage(const v1::Coverage& c) {
   int occupied = 0;
   for (uint32_t n : c.counts()) occupied += n > 0 ? 1 : 0;
   return static_cast<double>(occupied) / c.counts_size();
+}
+
+// A text progress bar of `width` cells for a fraction in [0, 1].
+std::string Bar(double fraction, int width) {
+  const int filled = static_cast<int>(std::clamp(fraction, 0.0, 1.0) * width + 0.5);
+  return absl::StrCat("[", std::string(filled, '#'), std::string(width - filled, '.'), "]");
 }
 
 std::string Row(const v1::RobotProgress& p) {
@@ -160,10 +228,13 @@ int Watch(v1::Monitoring::Stub& monitoring, const std::string& token, const std:
       }
     }
     if (!plain) {
-      absl::PrintF("\033[H\033[2J%s   %s\n%s\n", "Foray learning progress",
+      absl::PrintF("\033[H\033[2J%s   %s\n%s  %s\n", "Foray learning progress",
                   absl::FormatTime("%H:%M:%S", absl::Now(), absl::LocalTimeZone()).c_str(),
-                  Header().c_str());
-      for (const auto& [id, p] : latest) absl::PrintF("%s\n", Row(p).c_str());
+                  Header().c_str(), "coverage of the state grid");
+      for (const auto& [id, p] : latest) {
+        absl::PrintF("%s  %s%s\n", Row(p), Bar(Coverage(p.coverage()), 20),
+                     p.queued_training() > 0 ? "  training..." : "");
+      }
     }
     std::fflush(stdout);
   }
@@ -175,34 +246,295 @@ int Watch(v1::Monitoring::Stub& monitoring, const std::string& token, const std:
   return 0;
 }
 
+
+// A vector given on the command line: comma-separated finite numbers.
+absl::StatusOr<std::vector<double>> ParseVector(const std::string& flag, const std::string& text) {
+  std::vector<double> values;
+  for (absl::string_view cell : absl::StrSplit(text, ',', absl::SkipWhitespace())) {
+    double v;
+    if (!absl::SimpleAtod(cell, &v) || !std::isfinite(v)) {
+      return absl::InvalidArgumentError(absl::StrFormat("--%s: \"%s\" is not a finite number", flag, cell));
+    }
+    values.push_back(v);
+  }
+  return values;
+}
+
+int Usage(const absl::Status& s) {
+  std::fprintf(stderr, "foray: %s\n", std::string(s.message()).c_str());
+  return 2;
+}
+
+absl::StatusOr<v1::Robot> GetRobot(v1::RobotRegistry::Stub& registry, const std::string& token,
+                                   const std::string& robot_id, grpc::Status* failure) {
+  grpc::ClientContext context;
+  v1::GetRobotRequest request;
+  request.set_robot_id(robot_id);
+  v1::Robot robot;
+  *failure = registry.GetRobot(WithToken(&context, token), request, &robot);
+  if (!failure->ok()) return absl::UnavailableError(failure->error_message());
+  return robot;
+}
+
+int Register(v1::RobotRegistry::Stub& registry, const std::string& token, const std::string& file) {
+  absl::StatusOr<v1::RobotSpec> spec = foray::cli::ReadSpecFile(file);
+  if (!spec.ok()) return Usage(spec.status());
+  grpc::ClientContext context;
+  v1::RegisterRobotRequest request;
+  *request.mutable_spec() = *spec;
+  v1::RegisterRobotResponse response;
+  const grpc::Status s = registry.RegisterRobot(WithToken(&context, token), request, &response);
+  if (!s.ok()) return Fail("registering " + spec->name(), s);
+  const std::string out = absl::GetFlag(FLAGS_token_out);
+  if (!out.empty()) {
+    const int fd = ::open(out.c_str(), O_WRONLY | O_CREAT | O_EXCL, 0600);
+    const std::string line = absl::StrCat(response.robot().robot_id(), " ", response.token(), "\n");
+    if (fd < 0 || ::write(fd, line.data(), line.size()) != static_cast<ssize_t>(line.size())) {
+      if (fd >= 0) ::close(fd);
+      std::fprintf(stderr, "foray: registered %s but cannot write a new %s (does it exist?); its token:\n%s\n",
+                   response.robot().robot_id().c_str(), out.c_str(), response.token().c_str());
+      return 1;
+    }
+    ::close(fd);
+    absl::PrintF("registered %s as %s; id and token in %s\n", spec->name(), response.robot().robot_id(), out);
+  } else {
+    absl::PrintF("registered %s as %s\ntoken: %s\n(keep the token secret: it lets a client write this "
+                 "robot's data; --token_out writes it to a file instead)\n",
+                 spec->name(), response.robot().robot_id(), response.token());
+  }
+  return 0;
+}
+
+int PlanFrom(v1::RobotSession::Stub& session, const std::string& token, const std::string& robot_id) {
+  absl::StatusOr<std::vector<double>> state = ParseVector("state", absl::GetFlag(FLAGS_state));
+  if (!state.ok()) return Usage(state.status());
+  if (state->empty()) return Usage(absl::InvalidArgumentError("--state is required: the current state, V,V,..."));
+  absl::StatusOr<std::vector<double>> previous =
+      ParseVector("previous_action", absl::GetFlag(FLAGS_previous_action));
+  if (!previous.ok()) return Usage(previous.status());
+  std::fprintf(stderr, "%s\n", kCaution);
+  grpc::ClientContext context;
+  context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(30) +
+                       std::chrono::milliseconds(static_cast<int64_t>(absl::GetFlag(FLAGS_deadline_ms))));
+  v1::PlanActionsRequest request;
+  request.set_robot_id(robot_id);
+  request.mutable_request()->mutable_state()->Add(state->begin(), state->end());
+  request.mutable_request()->mutable_previous_action()->Add(previous->begin(), previous->end());
+  request.mutable_request()->set_deadline_ms(absl::GetFlag(FLAGS_deadline_ms));
+  v1::Plan plan;
+  const grpc::Status s = session.PlanActions(WithToken(&context, token), request, &plan);
+  if (!s.ok()) return Fail("planning", s);
+  absl::PrintF("plan of %d steps, model v%d%s, %d iterations in %.1f ms; objective %.4g = return %.4g + "
+               "information gain %.4g nats\n",
+               plan.steps_size(), plan.model_version(),
+               plan.from_prior() ? " (no model yet: random actions within the limits)" : "", plan.iterations(),
+               plan.compute_ms(), plan.objective(), plan.expected_return(), plan.information_gain());
+  absl::PrintF("%5s  %-28s %-40s %10s %10s\n", "step", "action", "predicted state (mean +- std)", "reward",
+               "info gain");
+  for (int t = 0; t < plan.steps_size(); ++t) {
+    const v1::Plan::Step& step = plan.steps(t);
+    std::string predicted;
+    for (int k = 0; k < step.predicted_state_mean_size(); ++k) {
+      absl::StrAppend(&predicted, k ? " " : "",
+                      absl::StrFormat("%.3g+-%.2g", step.predicted_state_mean(k), step.predicted_state_std(k)));
+    }
+    absl::PrintF("%5d  %-28s %-40s %10.4g %10.4g\n", t, absl::StrJoin(step.action(), " ", [](std::string* o, double v) {
+                   absl::StrAppend(o, absl::StrFormat("%.4g", v));
+                 }),
+                 predicted.empty() ? "-" : predicted, step.expected_reward(), step.information_gain());
+  }
+  return 0;
+}
+
+int Export(v1::RobotRegistry::Stub& registry, v1::Monitoring::Stub& monitoring, const std::string& token,
+           const std::string& robot_id) {
+  const std::string out = absl::GetFlag(FLAGS_out);
+  const bool npy = absl::EndsWith(out, ".npy");
+  if (!npy && !absl::EndsWith(out, ".csv")) {
+    return Usage(absl::InvalidArgumentError(absl::StrFormat("--out is \"%s\"; give FILE.csv or FILE.npy", out)));
+  }
+  grpc::Status failure;
+  absl::StatusOr<v1::Robot> robot = GetRobot(registry, token, robot_id, &failure);
+  if (!robot.ok()) return Fail("reading robot " + robot_id, failure);
+  grpc::ClientContext context;
+  v1::ExportTransitionsRequest request;
+  request.set_robot_id(robot_id);
+  request.set_from_seq(absl::GetFlag(FLAGS_from_seq));
+  request.set_to_seq(absl::GetFlag(FLAGS_to_seq));
+  auto reader = monitoring.ExportTransitions(WithToken(&context, token), request);
+  std::vector<v1::Transition> transitions;
+  v1::TransitionBatch batch;
+  while (reader->Read(&batch)) {
+    for (v1::Transition& t : *batch.mutable_transitions()) transitions.push_back(std::move(t));
+  }
+  if (const grpc::Status s = reader->Finish(); !s.ok()) return Fail("exporting " + robot_id, s);
+  const absl::Status written = npy ? foray::cli::WriteTransitionsNpy(out, robot->spec(), transitions)
+                                   : foray::cli::WriteTransitionsCsv(out, robot->spec(), transitions);
+  if (!written.ok()) {
+    std::fprintf(stderr, "foray: %s\n", std::string(written.message()).c_str());
+    return 1;
+  }
+  absl::PrintF("wrote %d transitions of %s to %s\ncolumns: %s\n", transitions.size(), robot_id, out,
+               absl::StrJoin(foray::cli::TransitionColumns(robot->spec()), ","));
+  return 0;
+}
+
+int Import(v1::RobotRegistry::Stub& registry, v1::RobotSession::Stub& session, const std::string& token,
+           const std::string& robot_id, const std::string& file) {
+  grpc::Status failure;
+  absl::StatusOr<v1::Robot> robot = GetRobot(registry, token, robot_id, &failure);
+  if (!robot.ok()) return Fail("reading robot " + robot_id, failure);
+  absl::StatusOr<std::vector<v1::Transition>> rows = foray::cli::ReadTransitionsCsv(file, robot->spec());
+  if (!rows.ok()) return Usage(rows.status());
+  uint64_t accepted = 0, duplicates = 0;
+  constexpr size_t kBatch = 1000;
+  for (size_t from = 0; from < rows->size(); from += kBatch) {
+    v1::AppendTransitionsRequest request;
+    request.set_robot_id(robot_id);
+    for (size_t i = from; i < std::min(rows->size(), from + kBatch); ++i) *request.add_transitions() = (*rows)[i];
+    grpc::ClientContext context;
+    context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(60));
+    v1::Ack ack;
+    const grpc::Status s = session.AppendTransitions(WithToken(&context, token), request, &ack);
+    if (!s.ok()) {
+      std::fprintf(stderr, "foray: rows %zu..%zu were not stored; %s\n", from + 1,
+                   std::min(rows->size(), from + kBatch),
+                   from == 0 ? "nothing was stored" : absl::StrFormat("rows 1..%d are", from).c_str());
+      return Fail("importing " + file, s);
+    }
+    accepted += ack.accepted();
+    duplicates += ack.duplicates();
+  }
+  absl::PrintF("imported %d rows into %s: %d new, %d already there\n", rows->size(), robot_id, accepted,
+               duplicates);
+  return 0;
+}
+
+void PrintReport(const v1::TrainingReport& r) {
+  absl::PrintF("model v%d: %d epochs on %d transitions in %.1f s; train NLL %.4f, holdout NLL %.4f, holdout MSE %.4g\n",
+               r.model_version(), r.epochs(), r.transitions(), r.duration_s(), r.train_nll(), r.holdout_nll(),
+               r.holdout_mse());
+}
+
+int Train(v1::Models::Stub& models, const std::string& token, const std::string& robot_id) {
+  grpc::ClientContext context;
+  v1::TrainNowRequest request;
+  request.set_robot_id(robot_id);
+  request.set_wait(!absl::GetFlag(FLAGS_no_wait));
+  v1::TrainNowResponse response;
+  const grpc::Status s = models.TrainNow(WithToken(&context, token), request, &response);
+  if (!s.ok()) return Fail("training " + robot_id, s);
+  if (response.has_report()) {
+    PrintReport(response.report());
+  } else {
+    absl::PrintF("training of %s queued\n", robot_id);
+  }
+  return 0;
+}
+
+int Checkpoints(v1::Models::Stub& models, const std::string& token, const std::string& robot_id) {
+  grpc::ClientContext context;
+  v1::ListCheckpointsRequest request;
+  request.set_robot_id(robot_id);
+  v1::ListCheckpointsResponse response;
+  const grpc::Status s = models.ListCheckpoints(WithToken(&context, token), request, &response);
+  if (!s.ok()) return Fail("listing checkpoints of " + robot_id, s);
+  absl::PrintF("%8s  %-20s %10s %8s %12s %12s\n", "model", "created", "bytes", "epochs", "holdout NLL",
+               "holdout MSE");
+  for (const v1::Checkpoint& c : response.checkpoints()) {
+    absl::PrintF("%8s  %-20s %10d %8d %12.4f %12.4g\n", absl::StrCat("v", c.model_version()),
+                 absl::FormatTime("%Y-%m-%d %H:%M:%S", absl::FromUnixSeconds(c.created_at().seconds()),
+                                  absl::LocalTimeZone()),
+                 c.size_bytes(), c.report().epochs(), c.report().holdout_nll(), c.report().holdout_mse());
+  }
+  if (response.checkpoints_size() == 0) absl::PrintF("(no checkpoints: no model trained yet)\n");
+  return 0;
+}
+
+int Restore(v1::Models::Stub& models, const std::string& token, const std::string& robot_id,
+            const std::string& version_text) {
+  uint64_t version;
+  if (!absl::SimpleAtoi(absl::StripPrefix(version_text, "v"), &version) || version == 0) {
+    return Usage(absl::InvalidArgumentError(
+        absl::StrFormat("VERSION is \"%s\"; give a model version from `foray checkpoints`", version_text)));
+  }
+  std::fprintf(stderr, "%s\n", kCaution);
+  grpc::ClientContext context;
+  v1::RestoreCheckpointRequest request;
+  request.set_robot_id(robot_id);
+  request.set_model_version(version);
+  v1::TrainingReport report;
+  const grpc::Status s = models.RestoreCheckpoint(WithToken(&context, token), request, &report);
+  if (!s.ok()) return Fail(absl::StrCat("restoring v", version, " of ", robot_id), s);
+  absl::PrintF("restored checkpoint v%d of %s; plans now come from ", version, robot_id);
+  PrintReport(report);
+  return 0;
+}
+
+// The token: --token, else the last word of --token_file's first line.
+std::string ReadToken() {
+  std::string token = absl::GetFlag(FLAGS_token);
+  if (!token.empty()) return token;
+  std::ifstream in(absl::GetFlag(FLAGS_token_file));
+  std::string line;
+  std::getline(in, line);
+  const std::vector<std::string> words = absl::StrSplit(line, ' ', absl::SkipWhitespace());
+  return words.empty() ? "" : std::string(absl::StripAsciiWhitespace(words.back()));
+}
+
 }  // namespace
 
 int main(int argc, char** argv) {
-  absl::SetProgramUsageMessage(kUsage);
+  // `foray COMMAND --help` and `foray help [COMMAND]` explain one command or all of them.
+  std::vector<std::string> raw(argv + 1, argv + argc);
+  const bool help = std::any_of(raw.begin(), raw.end(), [](const std::string& a) {
+    return a == "--help" || a == "-h" || a == "help";
+  });
+  if (help) {
+    for (const std::string& word : raw) {
+      if (const Command* c = FindCommand(word)) {
+        absl::PrintF("foray %s %s\n\n%s\n\n%s\n", c->name, c->args, c->help, kCaution);
+        return 0;
+      }
+    }
+    absl::PrintF("%s\n", Usage());
+    return 0;
+  }
+  absl::SetProgramUsageMessage(Usage());
   std::vector<char*> args = absl::ParseCommandLine(argc, argv);
   if (args.size() < 2) {
-    std::fprintf(stderr, "%s\n", kUsage);
+    std::fprintf(stderr, "%s\n", Usage().c_str());
     return 2;
   }
   const std::string command = args[1];
-  std::string token = absl::GetFlag(FLAGS_token);
-  if (token.empty()) {
-    std::ifstream in(absl::GetFlag(FLAGS_token_file));
-    std::getline(in, token);
-    token = std::string(absl::StripAsciiWhitespace(token));
+  const Command* known = FindCommand(command);
+  if (known == nullptr) {
+    std::fprintf(stderr, "foray: \"%s\" is not a command\n\n%s\n", command.c_str(), Usage().c_str());
+    return 2;
   }
+  const std::string token = ReadToken();
   if (token.empty()) {
     std::fprintf(stderr, "foray: no token: pass --token, or --token_file with the token on its first line\n");
     return 2;
   }
   auto channel = grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials());
   auto monitoring = v1::Monitoring::NewStub(channel);
-  if (command == "robots" && args.size() == 2) return Robots(*monitoring, token);
-  if (command == "status" && args.size() == 3) return Status(*monitoring, token, args[2]);
-  if (command == "watch" && args.size() <= 3) {
-    return Watch(*monitoring, token, args.size() == 3 ? args[2] : "");
-  }
-  std::fprintf(stderr, "foray: cannot read \"%s\" with %zu arguments\n\n%s\n", command.c_str(),
-               args.size() - 2, kUsage);
+  auto registry = v1::RobotRegistry::NewStub(channel);
+  auto session = v1::RobotSession::NewStub(channel);
+  auto models = v1::Models::NewStub(channel);
+  const size_t n = args.size() - 2;  // operands after the command
+  const std::string a1 = n >= 1 ? args[2] : "", a2 = n >= 2 ? args[3] : "";
+  if (command == "register" && n == 1) return Register(*registry, token, a1);
+  if (command == "robots" && n == 0) return Robots(*monitoring, token);
+  if (command == "status" && n == 1) return Status(*monitoring, token, a1);
+  if (command == "watch" && n <= 1) return Watch(*monitoring, token, a1);
+  if (command == "plan" && n == 1) return PlanFrom(*session, token, a1);
+  if (command == "export" && n == 1) return Export(*registry, *monitoring, token, a1);
+  if (command == "import" && n == 2) return Import(*registry, *session, token, a1, a2);
+  if (command == "train" && n == 1) return Train(*models, token, a1);
+  if (command == "checkpoints" && n == 1) return Checkpoints(*models, token, a1);
+  if (command == "restore" && n == 2) return Restore(*models, token, a1, a2);
+  std::fprintf(stderr, "foray: %s takes %s, not %zu operands\n\nforay %s %s\n%s\n", command.c_str(),
+               *known->args ? known->args : "no operands", n, known->name, known->args, known->help);
   return 2;
 }
