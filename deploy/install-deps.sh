@@ -27,6 +27,9 @@ PACKAGES=(
   python3-scipy          # reference integrators and statistics in tests
   python3-torch          # reference network computations and benchmarks
   python3-pytest         # Python test runner
+  python3-pip            # installs the Python client package (client/python)
+  python3-setuptools     # builds it
+  python3-wheel
   python3-matplotlib     # plots of the exploration benchmark
   python3-prometheus-client # parses /metrics in the tests
   libcpp-httplib-dev     # HTTP server of /metrics, the JSON API and the dashboard

@@ -168,6 +168,10 @@ def test_bad_input_files_and_usage_say_what_to_fix(forayd, tmp_path):  # noqa: F
     spec_file.write_text("{\"name\": ")
     assert "not valid JSON" in foray(forayd, "register", str(spec_file)).stderr
 
+    example = os.path.join(os.path.dirname(__file__), "..", "..", "deploy", "examples", "crane.json")
+    crane = foray(forayd, "register", example)
+    assert crane.returncode == 0 and "registered crane-1 as r-" in crane.stdout, crane.stderr
+
     good = tmp_path / "good.json"
     good.write_text(json.dumps(SPEC))
     identity = tmp_path / "id"
