@@ -49,19 +49,22 @@ for pkg in "${PACKAGES[@]}"; do
   fi
 done
 
-# The browser test's driver (playwright-core from the npm registry), pinned in
-# tests/browser/package.json; installed once into tests/browser/node_modules.
+# Node.js packages of the tests, pinned in each folder's package.json and installed once into
+# its node_modules: tests/browser (playwright-core drives the dashboard test) and
+# tests/interop (@grpc/grpc-js and @grpc/proto-loader, an independent gRPC client).
 install_node_modules() {
-  local dir
-  dir="$(cd "$(dirname "$0")/.." && pwd)/tests/browser"
+  local root dir
+  root="$(cd "$(dirname "$0")/.." && pwd)"
   if ! command -v npm >/dev/null 2>&1; then
     # Debian's nodejs comes without npm; a nodejs from elsewhere may bring its own.
     $SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends npm
   fi
-  if [ ! -d "$dir/node_modules/playwright-core" ]; then
-    echo "install-deps: npm install in tests/browser"
-    (cd "$dir" && npm install --no-audit --no-fund --loglevel=error)
-  fi
+  for dir in "$root/tests/browser" "$root/tests/interop"; do
+    if [ ! -d "$dir/node_modules" ] || [ "$dir/package.json" -nt "$dir/node_modules" ]; then
+      echo "install-deps: npm install in ${dir#"$root"/}"
+      (cd "$dir" && npm install --no-audit --no-fund --loglevel=error && touch node_modules)
+    fi
+  done
 }
 
 if [ ${#missing[@]} -eq 0 ]; then
