@@ -13,6 +13,7 @@
 #include <cstdio>
 #include <fstream>
 #include <map>
+#include <random>
 #include <string>
 #include <vector>
 
@@ -107,8 +108,12 @@ const Command* FindCommand(const std::string& name) {
   return nullptr;
 }
 
-grpc::ClientContext* WithToken(grpc::ClientContext* context, const std::string& token) {
+// The bearer token, and the robot's id in the foray-robot header (for a router in front of
+// several servers) when the call is about one robot.
+grpc::ClientContext* WithToken(grpc::ClientContext* context, const std::string& token,
+                               const std::string& robot_id = "") {
   context->AddMetadata("authorization", "Bearer " + token);
+  if (!robot_id.empty()) context->AddMetadata("foray-robot", robot_id);
   return context;
 }
 
@@ -167,7 +172,7 @@ int Status(v1::Monitoring::Stub& monitoring, const std::string& token, const std
   v1::GetProgressRequest request;
   request.set_robot_id(robot_id);
   v1::ProgressSnapshot snapshot;
-  const grpc::Status s = monitoring.GetProgress(WithToken(&context, token), request, &snapshot);
+  const grpc::Status s = monitoring.GetProgress(WithToken(&context, token, robot_id), request, &snapshot);
   if (!s.ok()) return Fail("reading robot " + robot_id, s);
   const v1::RobotProgress& p = snapshot.robots(0);
   absl::PrintF("%s (%s)%s\n", p.name().c_str(), p.robot_id().c_str(), p.archived() ? " archived" : "");
@@ -192,7 +197,7 @@ int Status(v1::Monitoring::Stub& monitoring, const std::string& token, const std
 
 int Watch(v1::Monitoring::Stub& monitoring, const std::string& token, const std::string& robot_id) {
   grpc::ClientContext context;
-  WithToken(&context, token);
+  WithToken(&context, token, robot_id);
   const double seconds = absl::GetFlag(FLAGS_seconds);
   if (seconds > 0) {
     context.set_deadline(std::chrono::system_clock::now() +
@@ -271,7 +276,7 @@ absl::StatusOr<v1::Robot> GetRobot(v1::RobotRegistry::Stub& registry, const std:
   v1::GetRobotRequest request;
   request.set_robot_id(robot_id);
   v1::Robot robot;
-  *failure = registry.GetRobot(WithToken(&context, token), request, &robot);
+  *failure = registry.GetRobot(WithToken(&context, token, robot_id), request, &robot);
   if (!failure->ok()) return absl::UnavailableError(failure->error_message());
   return robot;
 }
@@ -282,8 +287,10 @@ int Register(v1::RobotRegistry::Stub& registry, const std::string& token, const 
   grpc::ClientContext context;
   v1::RegisterRobotRequest request;
   *request.mutable_spec() = *spec;
+  std::random_device device;  // the id is chosen here, so a router can place the robot by it
+  request.set_robot_id(absl::StrFormat("r-%016x", (static_cast<uint64_t>(device()) << 32) ^ device()));
   v1::RegisterRobotResponse response;
-  const grpc::Status s = registry.RegisterRobot(WithToken(&context, token), request, &response);
+  const grpc::Status s = registry.RegisterRobot(WithToken(&context, token, request.robot_id()), request, &response);
   if (!s.ok()) return Fail("registering " + spec->name(), s);
   const std::string out = absl::GetFlag(FLAGS_token_out);
   if (!out.empty()) {
@@ -322,7 +329,7 @@ int PlanFrom(v1::RobotSession::Stub& session, const std::string& token, const st
   request.mutable_request()->mutable_previous_action()->Add(previous->begin(), previous->end());
   request.mutable_request()->set_deadline_ms(absl::GetFlag(FLAGS_deadline_ms));
   v1::Plan plan;
-  const grpc::Status s = session.PlanActions(WithToken(&context, token), request, &plan);
+  const grpc::Status s = session.PlanActions(WithToken(&context, token, robot_id), request, &plan);
   if (!s.ok()) return Fail("planning", s);
   absl::PrintF("plan of %d steps, model v%d%s, %d iterations in %.1f ms; objective %.4g = return %.4g + "
                "information gain %.4g nats\n",
@@ -361,7 +368,7 @@ int Export(v1::RobotRegistry::Stub& registry, v1::Monitoring::Stub& monitoring, 
   request.set_robot_id(robot_id);
   request.set_from_seq(absl::GetFlag(FLAGS_from_seq));
   request.set_to_seq(absl::GetFlag(FLAGS_to_seq));
-  auto reader = monitoring.ExportTransitions(WithToken(&context, token), request);
+  auto reader = monitoring.ExportTransitions(WithToken(&context, token, robot_id), request);
   std::vector<v1::Transition> transitions;
   v1::TransitionBatch batch;
   while (reader->Read(&batch)) {
@@ -395,7 +402,7 @@ int Import(v1::RobotRegistry::Stub& registry, v1::RobotSession::Stub& session, c
     grpc::ClientContext context;
     context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(60));
     v1::Ack ack;
-    const grpc::Status s = session.AppendTransitions(WithToken(&context, token), request, &ack);
+    const grpc::Status s = session.AppendTransitions(WithToken(&context, token, robot_id), request, &ack);
     if (!s.ok()) {
       std::fprintf(stderr, "foray: rows %zu..%zu were not stored; %s\n", from + 1,
                    std::min(rows->size(), from + kBatch),
@@ -422,7 +429,7 @@ int Train(v1::Models::Stub& models, const std::string& token, const std::string&
   request.set_robot_id(robot_id);
   request.set_wait(!absl::GetFlag(FLAGS_no_wait));
   v1::TrainNowResponse response;
-  const grpc::Status s = models.TrainNow(WithToken(&context, token), request, &response);
+  const grpc::Status s = models.TrainNow(WithToken(&context, token, robot_id), request, &response);
   if (!s.ok()) return Fail("training " + robot_id, s);
   if (response.has_report()) {
     PrintReport(response.report());
@@ -437,7 +444,7 @@ int Checkpoints(v1::Models::Stub& models, const std::string& token, const std::s
   v1::ListCheckpointsRequest request;
   request.set_robot_id(robot_id);
   v1::ListCheckpointsResponse response;
-  const grpc::Status s = models.ListCheckpoints(WithToken(&context, token), request, &response);
+  const grpc::Status s = models.ListCheckpoints(WithToken(&context, token, robot_id), request, &response);
   if (!s.ok()) return Fail("listing checkpoints of " + robot_id, s);
   absl::PrintF("%8s  %-20s %10s %8s %12s %12s\n", "model", "created", "bytes", "epochs", "holdout NLL",
                "holdout MSE");
@@ -464,7 +471,7 @@ int Restore(v1::Models::Stub& models, const std::string& token, const std::strin
   request.set_robot_id(robot_id);
   request.set_model_version(version);
   v1::TrainingReport report;
-  const grpc::Status s = models.RestoreCheckpoint(WithToken(&context, token), request, &report);
+  const grpc::Status s = models.RestoreCheckpoint(WithToken(&context, token, robot_id), request, &report);
   if (!s.ok()) return Fail(absl::StrCat("restoring v", version, " of ", robot_id), s);
   absl::PrintF("restored checkpoint v%d of %s; plans now come from ", version, robot_id);
   PrintReport(report);

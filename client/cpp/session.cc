@@ -9,6 +9,7 @@
 #include <cstdio>
 #include <cstdlib>
 #include <fstream>
+#include <random>
 #include <utility>
 
 #include "absl/strings/str_cat.h"
@@ -34,6 +35,14 @@ std::shared_ptr<grpc::Channel> MakeChannel(const std::string& address,
   args.SetInt(GRPC_ARG_MAX_RECONNECT_BACKOFF_MS,
               std::max(static_cast<int>(absl::ToInt64Milliseconds(max_backoff)), 1));
   return grpc::CreateCustomChannel(address, credentials, args);
+}
+
+// A robot id of the client's choosing ("r-" and 16 hex digits), so that a router can place the
+// robot by its `foray-robot` header from the registration on.
+std::string NewRobotId() {
+  std::random_device device;
+  const uint64_t bits = (static_cast<uint64_t>(device()) << 32) ^ device();
+  return absl::StrFormat("r-%016x", bits);
 }
 
 absl::Status FromGrpc(const grpc::Status& s) {
@@ -106,10 +115,12 @@ absl::StatusOr<Identity> RobotSession::Register(const std::string& address,
   if (credentials == nullptr) credentials = grpc::InsecureChannelCredentials();
   auto registry = v1::RobotRegistry::NewStub(grpc::CreateChannel(address, credentials));
   grpc::ClientContext context;
-  context.AddMetadata("authorization", "Bearer " + admin_token);
-  context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
   v1::RegisterRobotRequest request;
   *request.mutable_spec() = spec;
+  request.set_robot_id(NewRobotId());
+  context.AddMetadata("authorization", "Bearer " + admin_token);
+  context.AddMetadata(kRobotHeader, request.robot_id());
+  context.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
   v1::RegisterRobotResponse response;
   const grpc::Status status = registry->RegisterRobot(&context, request, &response);
   if (!status.ok()) return FromGrpc(status);
@@ -294,6 +305,7 @@ void RobotSession::IoLoop() {
   for (;;) {
     grpc::ClientContext context;
     context.AddMetadata("authorization", "Bearer " + options_.identity.token);
+    context.AddMetadata(kRobotHeader, options_.identity.robot_id);
     // The stream waits for the channel to come up instead of failing at once, so reconnecting
     // follows the channel's own backoff (set from the options above).
     context.set_wait_for_ready(true);

@@ -38,6 +38,10 @@
 
 namespace foray::client {
 
+// Metadata key carrying the robot's id on every call of a robot, so that a router in front of
+// several servers (deploy/router) sends all of a robot's calls to the server holding its data.
+inline constexpr char kRobotHeader[] = "foray-robot";
+
 // A robot's credentials: its id and its own bearer token (from registration).
 struct Identity {
   std::string robot_id;
@@ -115,7 +119,8 @@ class RobotSession {
   RobotSession& operator=(const RobotSession&) = delete;
   ~RobotSession();
 
-  // Registers a robot with the admin token; returns its id and token.
+  // Registers a robot with the admin token; returns its id and token. The id is chosen here
+  // (random) and sent in the foray-robot header too, so a router places the robot by it.
   static absl::StatusOr<Identity> Register(const std::string& address,
                                            std::shared_ptr<grpc::ChannelCredentials> credentials,
                                            const std::string& admin_token,

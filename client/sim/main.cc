@@ -242,6 +242,7 @@ bool RunRobot(const std::string& kind, int index) {
       }
       grpc::ClientContext context;
       context.AddMetadata("authorization", "Bearer " + id->token);
+      context.AddMetadata(foray::client::kRobotHeader, id->robot_id);
       context.set_deadline(std::chrono::system_clock::now() + std::chrono::minutes(10));
       v1::TrainNowRequest request;
       request.set_robot_id(id->robot_id);

@@ -1,5 +1,9 @@
 #include "server/api/directory.h"
 
+#include <algorithm>
+
+#include "absl/strings/escaping.h"
+#include "absl/strings/match.h"
 #include "absl/strings/str_format.h"
 #include "server/api/auth.h"
 #include "server/api/convert.h"
@@ -46,9 +50,22 @@ absl::Status RobotDirectory::LoadAll() {
 }
 
 absl::StatusOr<std::pair<std::shared_ptr<const RobotEntry>, std::string>> RobotDirectory::Register(
-    const v1::RobotSpec& spec) {
+    const v1::RobotSpec& spec, const std::string& requested_id) {
   absl::StatusOr<robot::RobotConfig> config = ConfigFromSpec(spec);
   if (!config.ok()) return config.status();
+  if (!requested_id.empty()) {
+    const bool hex = requested_id.size() >= 10 && requested_id.size() <= 34 &&
+                     absl::StartsWith(requested_id, "r-") &&
+                     std::all_of(requested_id.begin() + 2, requested_id.end(),
+                                 [](char c) { return (c >= '0' && c <= '9') || (c >= 'a' && c <= 'f'); });
+    if (!hex) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "robot_id is \"%s\"; a chosen id is \"r-\" and 8 to 32 lowercase hex digits (or leave it "
+          "empty)", absl::CHexEscape(requested_id.substr(0, 40))));
+    }
+  }
+  const std::string token = NewToken();
+  auto entry = std::make_shared<RobotEntry>();
   {
     absl::MutexLock lock(&mu_);
     for (const auto& [id, e] : robots_) {
@@ -58,10 +75,21 @@ absl::StatusOr<std::pair<std::shared_ptr<const RobotEntry>, std::string>> RobotD
             spec.name(), id));
       }
     }
+    if (pending_names_.count(spec.name()) > 0) {
+      return absl::AlreadyExistsError(absl::StrFormat(
+          "a robot named \"%s\" is being registered right now; choose another name", spec.name()));
+    }
+    if (!requested_id.empty() && (robots_.count(requested_id) > 0 || pending_ids_.count(requested_id) > 0)) {
+      return absl::AlreadyExistsError(absl::StrFormat("robot id %s is taken; choose another", requested_id));
+    }
+    entry->robot_id = requested_id;
+    while (entry->robot_id.empty() || robots_.count(entry->robot_id) > 0 ||
+           pending_ids_.count(entry->robot_id) > 0) {
+      entry->robot_id = NewId("r-");
+    }
+    pending_names_.insert(spec.name());
+    pending_ids_.insert(entry->robot_id);
   }
-  const std::string token = NewToken();
-  auto entry = std::make_shared<RobotEntry>();
-  entry->robot_id = NewId("r-");
   entry->spec = spec;
   entry->token_hash = HashToken(token);
   entry->created_at = absl::Now();
@@ -71,8 +99,11 @@ absl::StatusOr<std::pair<std::shared_ptr<const RobotEntry>, std::string>> RobotD
   record.spec = spec.SerializeAsString();
   record.token_hash = entry->token_hash;
   record.created_at = entry->created_at;
-  if (absl::Status s = store_->InsertRobot(record); !s.ok()) return s;
+  const absl::Status stored = store_->InsertRobot(record);
   absl::MutexLock lock(&mu_);
+  pending_names_.erase(spec.name());
+  pending_ids_.erase(entry->robot_id);
+  if (!stored.ok()) return stored;
   robots_[entry->robot_id] = entry;
   return std::make_pair(std::shared_ptr<const RobotEntry>(entry), token);
 }

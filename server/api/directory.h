@@ -5,6 +5,7 @@
 #define FORAY_SERVER_API_DIRECTORY_H_
 
 #include <map>
+#include <set>
 #include <memory>
 #include <string>
 #include <vector>
@@ -43,8 +44,11 @@ class RobotDirectory {
   absl::Status LoadAll();
 
   // Validates and stores a new robot; returns the entry and its token (shown once).
+  // `requested_id` is the client's choice of id ("r-" and 8..32 lowercase hex digits) or empty
+  // for a server-chosen one. Two registrations of one name or one id at the same time: one
+  // wins, the other gets ALREADY_EXISTS.
   absl::StatusOr<std::pair<std::shared_ptr<const RobotEntry>, std::string>> Register(
-      const v1::RobotSpec& spec);
+      const v1::RobotSpec& spec, const std::string& requested_id = "");
   absl::StatusOr<std::shared_ptr<const RobotEntry>> UpdateSettings(
       const v1::UpdateRobotSettingsRequest& request);
   absl::StatusOr<std::shared_ptr<const RobotEntry>> Archive(const std::string& robot_id);
@@ -74,6 +78,9 @@ class RobotDirectory {
   const std::string viewer_token_hash_;
   mutable absl::Mutex mu_;
   std::map<std::string, std::shared_ptr<const RobotEntry>> robots_ ABSL_GUARDED_BY(mu_);
+  // Names and ids of registrations being stored right now (held between the check and the insert).
+  std::set<std::string> pending_names_ ABSL_GUARDED_BY(mu_);
+  std::set<std::string> pending_ids_ ABSL_GUARDED_BY(mu_);
 };
 
 }  // namespace foray::api

@@ -165,7 +165,7 @@ grpc::Status RegistryService::RegisterRobot(grpc::ServerContext* context,
                                             const v1::RegisterRobotRequest* request,
                                             v1::RegisterRobotResponse* response) {
   if (absl::Status s = directory_->CheckAdmin(*context); !s.ok()) return ToGrpc(s);
-  auto registered = directory_->Register(request->spec());
+  auto registered = directory_->Register(request->spec(), request->robot_id());
   if (!registered.ok()) return ToGrpc(registered.status());
   *response->mutable_robot() = RobotDirectory::ToWire(*registered->first);
   response->set_token(registered->second);

@@ -563,3 +563,34 @@ def test_progress_snapshot_watch_and_export(forayd):
         for t in b.transitions]
     assert [t.seq for t in exported] == list(range(11, 61))
     assert list(exported[0].state) == list(batch[10].state)
+
+
+def test_client_chosen_robot_ids_and_simultaneous_registrations(forayd):  # noqa: F811
+    c = Client(forayd)
+    chosen = c.registry.RegisterRobot(reg.RegisterRobotRequest(spec=spec("chosen-id", 2, 1),
+                                                               robot_id="r-0123456789abcdef"), metadata=c.admin)
+    assert chosen.robot.robot_id == "r-0123456789abcdef"
+    expect_error(CODE.ALREADY_EXISTS, "robot id r-0123456789abcdef is taken", c.registry.RegisterRobot,
+                 reg.RegisterRobotRequest(spec=spec("other-name", 2, 1), robot_id="r-0123456789abcdef"),
+                 metadata=c.admin)
+    expect_error(CODE.INVALID_ARGUMENT, "robot_id is \"R-12\"", c.registry.RegisterRobot,
+                 reg.RegisterRobotRequest(spec=spec("bad-id", 2, 1), robot_id="R-12"), metadata=c.admin)
+
+    # Eight registrations of one name at once: exactly one robot is stored.
+    outcomes = []
+
+    def register():
+        try:
+            outcomes.append(c.register(spec("raced", 2, 1)).robot.robot_id)
+        except grpc.RpcError as e:
+            outcomes.append(e.code())
+
+    threads = [threading.Thread(target=register) for _ in range(8)]
+    for th in threads:
+        th.start()
+    for th in threads:
+        th.join()
+    assert sum(isinstance(o, str) for o in outcomes) == 1
+    assert all(o == CODE.ALREADY_EXISTS for o in outcomes if not isinstance(o, str))
+    listed = c.registry.ListRobots(reg.ListRobotsRequest(), metadata=c.admin).robots
+    assert [r.spec.name for r in listed].count("raced") == 1

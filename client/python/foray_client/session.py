@@ -21,6 +21,7 @@ import collections
 import dataclasses
 import math
 import os
+import secrets
 import threading
 import time
 
@@ -32,6 +33,9 @@ from ._stubs import (models_pb2, models_pb2_grpc, monitoring_pb2, monitoring_pb2
 from .spec import spec_from_dict
 
 CLIENT_NAME = "foray-python/0.1"
+# Metadata key carrying the robot's id on every call of a robot, so that a router in front of
+# several servers (deploy/router) sends all of a robot's calls to the server holding its data.
+ROBOT_HEADER = "foray-robot"
 
 
 _CODES = {c.value[0]: c for c in grpc.StatusCode}
@@ -132,7 +136,7 @@ class RobotSession:
             self._safe = _vector("safe_action", safe_action)
         self.address = address
         self.robot_id = robot_id
-        self._metadata = (("authorization", f"Bearer {token}"),)
+        self._metadata = (("authorization", f"Bearer {token}"), (ROBOT_HEADER, robot_id))
         self._initial_backoff = initial_backoff
         self._max_backoff = max_backoff
         self._max_unacked = max_unacknowledged
@@ -167,14 +171,18 @@ class RobotSession:
 
     @staticmethod
     def register(address, admin_token, spec, credentials=None, timeout=10.0):
-        """Registers a robot (admin token); `spec` is a RobotSpec or a dict in the spec-file format."""
+        """Registers a robot (admin token); `spec` is a RobotSpec or a dict in the spec-file format.
+        The robot's id is chosen here (random) and sent in the foray-robot header too, so that a
+        router places the robot by it."""
         if isinstance(spec, dict):
             spec = spec_from_dict(spec)
+        robot_id = "r-" + secrets.token_hex(8)
         with _channel(address, credentials, 0.1, 5.0) as channel:
             stub = registry_pb2_grpc.RobotRegistryStub(channel)
             try:
-                r = stub.RegisterRobot(registry_pb2.RegisterRobotRequest(spec=spec), timeout=timeout,
-                                       metadata=(("authorization", f"Bearer {admin_token}"),))
+                r = stub.RegisterRobot(registry_pb2.RegisterRobotRequest(spec=spec, robot_id=robot_id),
+                                       timeout=timeout, metadata=(("authorization", f"Bearer {admin_token}"),
+                                                                  (ROBOT_HEADER, robot_id)))
             except grpc.RpcError as e:
                 raise ForayError(e.code(), e.details()) from None
         return Identity(r.robot.robot_id, r.token)
