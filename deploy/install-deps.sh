@@ -29,11 +29,13 @@ PACKAGES=(
   python3-pytest         # Python test runner
   python3-pip            # installs the Python client package (client/python)
   python3-setuptools     # builds it
-  python3-wheel
+  python3-wheel          # (with setuptools)
+  python3-yaml           # reads the Kubernetes manifests in the deploy test
   python3-matplotlib     # plots of the exploration benchmark
   python3-prometheus-client # parses /metrics in the tests
   libcpp-httplib-dev     # HTTP server of /metrics, the JSON API and the dashboard
   nlohmann-json3-dev     # the foray CLI reads robot spec files (JSON)
+  nginx                  # the router in front of several forayd shards (deploy/router, its test)
   chromium               # the browser of the dashboard test (headless)
   nodejs                 # runs the browser test's driver (npm: with it, or Debian's npm below)
   libopenblas0-pthread   # optimised BLAS, so the numpy and PyTorch references run at full speed
@@ -85,6 +87,17 @@ fi
 
 echo "install-deps: installing ${missing[*]}"
 $SUDO env DEBIAN_FRONTEND=noninteractive apt-get update -qq
+# Packages with a service (nginx) must not start it on installing: the router test runs its own
+# nginx on loopback, and a default site on port 80 is nothing we asked for. policy-rc.d says so
+# to Debian's maintainer scripts, for this install only.
+POLICY=/usr/sbin/policy-rc.d
+OWN_POLICY=0
+if [ ! -e "$POLICY" ]; then
+  printf '#!/bin/sh\nexit 101\n' | $SUDO tee "$POLICY" >/dev/null
+  $SUDO chmod 755 "$POLICY"
+  OWN_POLICY=1
+fi
 $SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends "${missing[@]}"
+if [ "$OWN_POLICY" = 1 ]; then $SUDO rm -f "$POLICY"; fi
 install_node_modules
 echo "install-deps: done"

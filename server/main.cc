@@ -57,6 +57,14 @@ ABSL_FLAG(std::string, admin_token_file, "",
 ABSL_FLAG(std::string, tls_cert, "",
           "PEM certificate chain of the server; with --tls_key, gRPC is served over TLS only.");
 ABSL_FLAG(std::string, tls_key, "", "PEM private key matching --tls_cert.");
+ABSL_FLAG(int, plan_threads, 0,
+          "Plans computed at once (each on its own core, idle cores are lent to running plans); "
+          "0: one per core of this machine.");
+ABSL_FLAG(int, plan_queue, 0,
+          "Plan requests that may wait for a free core beyond those; more are refused with "
+          "RESOURCE_EXHAUSTED. 0: 4 per plan thread.");
+ABSL_FLAG(int, max_message_mb, 16,
+          "Largest gRPC message accepted, MiB (10,000 transitions of a 14-D robot are about 3 MiB).");
 ABSL_FLAG(double, shutdown_grace_s, 5.0,
           "Seconds in-flight calls get to finish after SIGINT/SIGTERM before they are cancelled.");
 
@@ -177,8 +185,17 @@ int main(int argc, char** argv) {
     return 2;
   }
   // One plan per core computes at a time; a few more may wait for a core.
-  const int cores = static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
-  foray::sched::PlanGate gate(cores, /*max_waiting=*/4 * cores);
+  const int plan_threads = absl::GetFlag(FLAGS_plan_threads), plan_queue = absl::GetFlag(FLAGS_plan_queue);
+  const int max_message_mb = absl::GetFlag(FLAGS_max_message_mb);
+  if (plan_threads < 0 || plan_threads > 1024 || plan_queue < 0 || max_message_mb < 1 || max_message_mb > 1024) {
+    std::fprintf(stderr,
+                 "forayd: --plan_threads=%d (0..1024), --plan_queue=%d (>= 0), --max_message_mb=%d (1..1024): "
+                 "out of range\n", plan_threads, plan_queue, max_message_mb);
+    return 2;
+  }
+  const int cores = plan_threads > 0 ? plan_threads
+                                     : static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
+  foray::sched::PlanGate gate(cores, /*max_waiting=*/plan_queue > 0 ? plan_queue : 4 * cores);
   foray::sched::TrainingLoop trainer([&directory] {
     std::vector<std::shared_ptr<foray::robot::RobotRuntime>> runtimes;
     for (const auto& entry : directory.List(/*include_archived=*/false)) {
@@ -201,6 +218,7 @@ int main(int argc, char** argv) {
   std::shared_ptr<grpc::ServerCredentials> credentials = Credentials(&tls);
   if (credentials == nullptr) return 2;
   builder.AddListeningPort(listen, credentials, &bound_port);
+  builder.SetMaxReceiveMessageSize(max_message_mb * 1024 * 1024);
   builder.RegisterService(&registry);
   builder.RegisterService(&session);
   builder.RegisterService(&models);

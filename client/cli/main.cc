@@ -43,6 +43,9 @@ ABSL_FLAG(std::string, token_file, "./foray-data/admin-token", "File whose first
 ABSL_FLAG(double, seconds, 0, "watch: stop after this many seconds (0: until Ctrl-C).");
 ABSL_FLAG(bool, plain, false, "watch: print one line per event instead of redrawing a table.");
 ABSL_FLAG(std::string, token_out, "", "register: write the new robot's id and token to this file (0600).");
+ABSL_FLAG(std::string, robot_id, "",
+          "register: the id to register under (r- and 8..32 hex digits), e.g. to move a robot to "
+          "another shard under its own id; empty: a new random id.");
 ABSL_FLAG(std::string, state, "", "plan: the current state, comma-separated, state_dim values.");
 ABSL_FLAG(std::string, previous_action, "", "plan: the action applied last, comma-separated (optional).");
 ABSL_FLAG(double, deadline_ms, 100, "plan: planning time, milliseconds.");
@@ -66,10 +69,11 @@ struct Command {
 };
 
 constexpr Command kCommands[] = {
-    {"register", "SPEC.json [--token_out=FILE]",
+    {"register", "SPEC.json [--token_out=FILE] [--robot_id=ID]",
      "Registers a robot from a spec file (admin token) and prints its id and token; with\n"
      "--token_out the id and token go to FILE (mode 0600) instead of the screen. The spec format\n"
-     "is in DEVELOPERS.md, \"Robot spec files\"."},
+     "is in DEVELOPERS.md, \"Robot spec files\". --robot_id registers under a given id (moving a\n"
+     "robot to another shard keeps its id, so the router keeps finding it)."},
     {"robots", "", "Lists every robot with its progress (admin token)."},
     {"status", "ROBOT_ID", "One robot's progress: data, model, last training, last episode, plans."},
     {"watch", "[ROBOT_ID] [--seconds=N] [--plain]",
@@ -87,6 +91,9 @@ constexpr Command kCommands[] = {
      "seq the server already holds are counted as duplicates and not stored twice."},
     {"train", "ROBOT_ID [--no_wait]", "Trains the robot's ensemble now and prints the training report."},
     {"checkpoints", "ROBOT_ID", "Lists the robot's model checkpoints, newest first."},
+    {"archive", "ROBOT_ID",
+     "Stops serving a robot (admin token): its token stops working, its data stays on disk.\n"
+     "Used after moving a robot to another server."},
     {"restore", "ROBOT_ID VERSION",
      "Publishes the checkpoint of model VERSION again, as a new model version. The next plans\n"
      "come from it."},
@@ -288,7 +295,9 @@ int Register(v1::RobotRegistry::Stub& registry, const std::string& token, const 
   v1::RegisterRobotRequest request;
   *request.mutable_spec() = *spec;
   std::random_device device;  // the id is chosen here, so a router can place the robot by it
-  request.set_robot_id(absl::StrFormat("r-%016x", (static_cast<uint64_t>(device()) << 32) ^ device()));
+  request.set_robot_id(absl::GetFlag(FLAGS_robot_id).empty()
+                           ? absl::StrFormat("r-%016x", (static_cast<uint64_t>(device()) << 32) ^ device())
+                           : absl::GetFlag(FLAGS_robot_id));
   v1::RegisterRobotResponse response;
   const grpc::Status s = registry.RegisterRobot(WithToken(&context, token, request.robot_id()), request, &response);
   if (!s.ok()) return Fail("registering " + spec->name(), s);
@@ -478,6 +487,18 @@ int Restore(v1::Models::Stub& models, const std::string& token, const std::strin
   return 0;
 }
 
+int Archive(v1::RobotRegistry::Stub& registry, const std::string& token, const std::string& robot_id) {
+  grpc::ClientContext context;
+  v1::ArchiveRobotRequest request;
+  request.set_robot_id(robot_id);
+  v1::Robot robot;
+  const grpc::Status s = registry.ArchiveRobot(WithToken(&context, token, robot_id), request, &robot);
+  if (!s.ok()) return Fail("archiving " + robot_id, s);
+  absl::PrintF("archived %s (%s); its %d transitions stay in the data directory\n", robot.robot_id(),
+               robot.spec().name(), robot.transitions());
+  return 0;
+}
+
 // The token: --token, else the last word of --token_file's first line.
 std::string ReadToken() {
   std::string token = absl::GetFlag(FLAGS_token);
@@ -540,6 +561,7 @@ int main(int argc, char** argv) {
   if (command == "import" && n == 2) return Import(*registry, *session, token, a1, a2);
   if (command == "train" && n == 1) return Train(*models, token, a1);
   if (command == "checkpoints" && n == 1) return Checkpoints(*models, token, a1);
+  if (command == "archive" && n == 1) return Archive(*registry, token, a1);
   if (command == "restore" && n == 2) return Restore(*models, token, a1, a2);
   std::fprintf(stderr, "foray: %s takes %s, not %zu operands\n\nforay %s %s\n%s\n", command.c_str(),
                *known->args ? known->args : "no operands", n, known->name, known->args, known->help);

@@ -193,5 +193,5 @@ def test_bad_input_files_and_usage_say_what_to_fix(forayd, tmp_path):  # noqa: F
     helped = foray(forayd, "plan", "--help")
     assert helped.returncode == 0 and "--state=" in helped.stdout and "not a safety system" in helped.stdout
     for command in ("register", "robots", "status", "watch", "plan", "export", "import", "train",
-                    "checkpoints", "restore"):
+                    "checkpoints", "restore", "archive"):
         assert foray(forayd, command, "--help").returncode == 0
