@@ -35,6 +35,8 @@ PACKAGES=(
   python3-prometheus-client # parses /metrics in the tests
   libcpp-httplib-dev     # HTTP server of /metrics, the JSON API and the dashboard
   nlohmann-json3-dev     # the foray CLI reads robot spec files (JSON)
+  clang-14               # builds the fuzz targets (libFuzzer) in tests/fuzz
+  libfuzzer-14-dev
   nginx                  # the router in front of several forayd shards (deploy/router, its test)
   chromium               # the browser of the dashboard test (headless)
   nodejs                 # runs the browser test's driver (npm: with it, or Debian's npm below)

@@ -1,5 +1,6 @@
 #include "server/api/convert.h"
 
+#include <algorithm>
 #include <cmath>
 #include <cstring>
 #include <limits>
@@ -468,6 +469,76 @@ absl::StatusOr<model::Ensemble> EnsembleFromWire(const v1::EnsembleModel& w) {
   e.mutable_max_log_var() = max_lv;
   e.mutable_min_log_var() = min_lv;
   return e;
+}
+
+absl::StatusOr<robot::PlanInput> PlanInputFromWire(const v1::PlanRequest& request,
+                                                   const robot::RobotConfig& config) {
+  robot::PlanInput in;
+  if (request.state_size() != config.state_dim) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "request.state has %d values, robot \"%s\" expects %d", request.state_size(), config.name,
+        config.state_dim));
+  }
+  in.state.resize(config.state_dim);
+  for (int k = 0; k < config.state_dim; ++k) {
+    if (!std::isfinite(request.state(k))) {
+      return absl::InvalidArgumentError(
+          absl::StrFormat("request.state[%d] is %g, must be finite", k, request.state(k)));
+    }
+    in.state[k] = static_cast<float>(request.state(k));
+  }
+  if (request.previous_action_size() != 0) {
+    if (request.previous_action_size() != config.action_dim) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "request.previous_action has %d values, robot \"%s\" expects %d",
+          request.previous_action_size(), config.name, config.action_dim));
+    }
+    in.previous_action.resize(config.action_dim);
+    for (int j = 0; j < config.action_dim; ++j) {
+      const double a = request.previous_action(j);
+      const double slack = 1e-6 * (static_cast<double>(config.limits.upper[j]) - config.limits.lower[j]);
+      if (!std::isfinite(a) || a < config.limits.lower[j] - slack || a > config.limits.upper[j] + slack) {
+        return absl::InvalidArgumentError(absl::StrFormat(
+            "request.previous_action[%d] is %g, outside the limits [%g, %g]", j, a,
+            config.limits.lower[j], config.limits.upper[j]));
+      }
+      in.previous_action[j] =
+          std::clamp(static_cast<float>(a), config.limits.lower[j], config.limits.upper[j]);
+    }
+    // The first step's rate limit is kept against the float previous action; shrink it by that
+    // rounding (and clipping), so that it also holds against the client's own value.
+    if (config.limits.max_step.size() == config.action_dim) {
+      in.max_step = config.limits.max_step;
+      for (int j = 0; j < config.action_dim; ++j) {
+        if (in.max_step[j] == 0.0f) continue;
+        const double error = std::abs(static_cast<double>(in.previous_action[j]) -
+                                      request.previous_action(j));
+        in.max_step[j] = std::max(FloatAtMost(in.max_step[j] - error),
+                                  std::numeric_limits<float>::denorm_min());
+      }
+    }
+  }
+  const double deadline_ms = request.deadline_ms() == 0 ? 100.0 : request.deadline_ms();
+  if (!(deadline_ms >= 1.0 && deadline_ms <= 60000.0)) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "request.deadline_ms is %g, must be in 1..60000", request.deadline_ms()));
+  }
+  in.budget = absl::Milliseconds(deadline_ms);
+  in.planner = config.planner;
+  in.objective = config.objective;
+  if (request.has_planner()) {
+    if (absl::Status s = ApplyPlannerSettings(request.planner(), &in.planner); !s.ok()) {
+      return absl::InvalidArgumentError(absl::StrCat("request.", s.message()));
+    }
+  }
+  if (request.has_objective()) {
+    if (absl::Status s = ApplyObjectiveSettings(request.objective(), config.state_dim,
+                                                config.action_dim, &in.objective);
+        !s.ok()) {
+      return absl::InvalidArgumentError(absl::StrCat("request.", s.message()));
+    }
+  }
+  return in;
 }
 
 }  // namespace foray::api

@@ -15,6 +15,7 @@
 #include "foray/v1/models.pb.h"
 #include "foray/v1/types.pb.h"
 #include "grpcpp/support/status.h"
+#include "server/robot/runtime.h"
 #include "server/robot/config.h"
 #include "server/store/store.h"
 
@@ -44,6 +45,13 @@ absl::Status ApplyObjectiveSettings(const v1::ObjectiveSettings& settings, int s
 absl::StatusOr<std::vector<store::TransitionRecord>> TransitionsFromWire(
     const google::protobuf::RepeatedPtrField<v1::Transition>& transitions,
     const robot::RobotConfig& config);
+
+// Checks a plan request against the robot (sizes, finite values, the previous action within
+// the bounds, deadline_ms in 1..60000, per-request planner and objective settings) and converts
+// it: float state and previous action, the first step's rate limit shrunk by the float rounding
+// of the previous action, the robot's settings with the request's overrides.
+absl::StatusOr<robot::PlanInput> PlanInputFromWire(const v1::PlanRequest& request,
+                                                   const robot::RobotConfig& config);
 
 // The wire form of an ensemble (format 1) and back. EnsembleFromWire checks the format, the
 // architecture against the layers' shapes, byte lengths and finite values, naming the field.
