@@ -78,6 +78,9 @@ TEST(SpecFileTest, MistakesAreNamedWithTheirValues) {
   ExpectRefused(R"({"control_period_s": 1})", "name: required key is missing");
   ExpectRefused("[1, 2]", "is not an object");
   ExpectRefused("{\"name\": ", "not valid JSON");
+  // Found by tests/fuzz/spec_file_fuzz: a number beyond double's range threw through the
+  // no-exceptions parse and ended the program.
+  ExpectRefused("{\"name\": 7777777777777777777777777E7777}", "not valid JSON: [json.exception.out_of_range.406]");
   ExpectRefused(std::string(kMaxSpecFileBytes + 1, ' '), "at most 1048576 are read");
 }
 
