@@ -4,6 +4,7 @@ keeps the routing directives of deploy/router/router-config.sh, which the router
 
 import os
 import re
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -57,3 +58,45 @@ def test_kubernetes_router_keeps_the_tested_routing_directives():
     assert {d["metadata"]["name"] for d in docs if d["kind"] == "Service"} >= set(servers)
     probes = shards["spec"]["template"]["spec"]["containers"][0]
     assert probes["readinessProbe"]["grpc"]["port"] == 50151 and probes["livenessProbe"]["grpc"]["port"] == 50151
+
+
+def test_container_runtime_stage_has_every_shared_library_the_binaries_need():
+    """The slim image installs exactly named packages; every shared library forayd and foray load
+    (ldd on this build, owners by dpkg -S) must come from one of them or from the base image."""
+    text = open(os.path.join(REPO, "deploy", "container", "Containerfile")).read()
+    runtime = text[text.index("FROM debian:bookworm-slim"):]
+    install = runtime[runtime.index("apt-get install"):runtime.index("rm -rf /var/lib/apt/lists")]
+    listed = set(re.findall(r"\b(lib[a-z0-9.+-]+|zlib1g)\b", install))
+    base = {"libc6", "libgcc-s1", "libstdc++6"}  # in debian:bookworm-slim
+    needed = set()
+    for binary in (os.environ["FORAYD"], os.environ["FORAY_CLI"]):
+        for line in subprocess.run(["ldd", binary], capture_output=True, text=True, check=True).stdout.splitlines():
+            parts = line.split("=>")
+            if len(parts) != 2 or not parts[1].strip().startswith("/"):
+                continue
+            path = os.path.realpath(parts[1].split()[0])
+            owner = subprocess.run(["dpkg", "-S", path], capture_output=True, text=True)
+            if owner.returncode != 0:  # merged /usr: ask for the /lib spelling too
+                owner = subprocess.run(["dpkg", "-S", parts[1].split()[0]], capture_output=True, text=True)
+            assert owner.returncode == 0, f"no package owns {path}"
+            needed.add(owner.stdout.split(":")[0])
+    assert needed - base <= listed, f"missing from the runtime stage: {sorted(needed - base - listed)}"
+
+
+def test_container_build_stage_configures(tmp_path):
+    """The build stage's configure line (no tests, portable) works on what the stage copies."""
+    text = open(os.path.join(REPO, "deploy", "container", "Containerfile")).read()
+    build = text[:text.index("FROM debian:bookworm-slim")]
+    src = tmp_path / "src"
+    src.mkdir()
+    for name in re.findall(r"^COPY (\S+) ", build, flags=re.M):
+        source = os.path.join(REPO, name)
+        if os.path.isdir(source):
+            shutil.copytree(source, src / name)
+        else:
+            shutil.copy(source, src / name)
+    result = subprocess.run(["cmake", "-S", str(src), "-B", str(tmp_path / "b"), "-G", "Ninja",
+                             "-DCMAKE_BUILD_TYPE=Release", "-DFORAY_PORTABLE=ON", "-DFORAY_BUILD_TESTS=OFF"],
+                            capture_output=True, text=True, timeout=120)
+    assert result.returncode == 0, result.stdout + result.stderr
+    assert "-DFORAY_PORTABLE=ON -DFORAY_BUILD_TESTS=OFF" in build
