@@ -219,6 +219,13 @@ int main(int argc, char** argv) {
   if (credentials == nullptr) return 2;
   builder.AddListeningPort(listen, credentials, &bound_port);
   builder.SetMaxReceiveMessageSize(max_message_mb * 1024 * 1024);
+  // Keepalive: the server pings an idle connection every 60 s and drops it after 20 s without an
+  // answer (a robot PC that lost power); clients may ping every 10 s or more (the Foray clients
+  // ping every 20 s), also between calls.
+  builder.AddChannelArgument(GRPC_ARG_KEEPALIVE_TIME_MS, 60000);
+  builder.AddChannelArgument(GRPC_ARG_KEEPALIVE_TIMEOUT_MS, 20000);
+  builder.AddChannelArgument(GRPC_ARG_KEEPALIVE_PERMIT_WITHOUT_CALLS, 1);
+  builder.AddChannelArgument(GRPC_ARG_HTTP2_MIN_RECV_PING_INTERVAL_WITHOUT_DATA_MS, 10000);
   builder.RegisterService(&registry);
   builder.RegisterService(&session);
   builder.RegisterService(&models);

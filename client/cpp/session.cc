@@ -34,6 +34,11 @@ std::shared_ptr<grpc::Channel> MakeChannel(const std::string& address,
   args.SetInt(GRPC_ARG_INITIAL_RECONNECT_BACKOFF_MS, std::max(initial_ms, 1));
   args.SetInt(GRPC_ARG_MAX_RECONNECT_BACKOFF_MS,
               std::max(static_cast<int>(absl::ToInt64Milliseconds(max_backoff)), 1));
+  // A ping every 20 s finds a dead server (or network) within 30 s even while nothing is sent;
+  // forayd accepts pings that often.
+  args.SetInt(GRPC_ARG_KEEPALIVE_TIME_MS, 20000);
+  args.SetInt(GRPC_ARG_KEEPALIVE_TIMEOUT_MS, 10000);
+  args.SetInt(GRPC_ARG_KEEPALIVE_PERMIT_WITHOUT_CALLS, 1);
   return grpc::CreateCustomChannel(address, credentials, args);
 }
 

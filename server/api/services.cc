@@ -157,12 +157,21 @@ grpc::Status SessionService::PlanActions(grpc::ServerContext* context,
 
 namespace {
 
-// Messages read from a session stream by its reader thread, taken by the handler in groups.
+// Messages read from a session stream by its reader thread, taken by the handler in groups. It
+// holds at most `capacity` messages: when the handler falls behind (slow disk, or a client that
+// does not read its acks, so replies cannot be written), the reader stops reading and gRPC's
+// flow control holds the client back, instead of memory growing without bound.
 class Inbox {
  public:
-  void Push(v1::SessionClientMessage message) {
+  explicit Inbox(size_t capacity) : capacity_(capacity) {}
+  // Waits while the inbox is full; false when it was closed meanwhile.
+  bool Push(v1::SessionClientMessage message) {
     absl::MutexLock lock(&mu_);
+    auto room = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return closed_ || queue_.size() < capacity_; };
+    mu_.Await(absl::Condition(&room));
+    if (closed_) return false;
     queue_.push_back(std::move(message));
+    return true;
   }
   void Close() {
     absl::MutexLock lock(&mu_);
@@ -179,6 +188,7 @@ class Inbox {
   }
 
  private:
+  const size_t capacity_;
   absl::Mutex mu_;
   std::vector<v1::SessionClientMessage> queue_ ABSL_GUARDED_BY(mu_);
   bool closed_ ABSL_GUARDED_BY(mu_) = false;
@@ -217,10 +227,13 @@ grpc::Status SessionService::Connect(
   }
   // A reader thread queues what arrives while this thread commits: the transitions that arrived
   // during one commit go into the next as one group (one SQLite transaction, one ack).
-  Inbox inbox;
+  // 20,000 transitions: about a second of a fast robot, a few MB at most.
+  Inbox inbox(/*capacity=*/20000);
   std::thread reader([&] {
     v1::SessionClientMessage in;
-    while (stream->Read(&in)) inbox.Push(std::move(in));
+    while (stream->Read(&in)) {
+      if (!inbox.Push(std::move(in))) break;
+    }
     inbox.Close();
   });
   const robot::RobotConfig config = entry->runtime->config();
@@ -261,6 +274,8 @@ grpc::Status SessionService::Connect(
         group.push_back(std::move(record->front()));
       } else if (in.has_plan_request()) {
         flush();
+        // Nobody would read the plan of a client that has gone; its transitions are still stored.
+        if (!writing || context->IsCancelled()) continue;
         v1::SessionServerMessage out;
         if (absl::Status s = Plan(*entry, in.plan_request(), out.mutable_plan()); !s.ok()) {
           out = ErrorReply(s, 0, in.plan_request().request_id());
