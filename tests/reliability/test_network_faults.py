@@ -75,7 +75,8 @@ def test_a_client_that_does_not_read_is_held_back_and_memory_stays_bounded(foray
     # blocked; it stops at its inbox of 20,000 messages plus transport buffers. (Its memory also
     # holds the robot's dataset, so the growth is checked loosely.)
     assert stalled_at < 0.6 * total
-    assert grown < 200
+    if os.environ.get("FORAY_SANITIZED") != "1":  # AddressSanitizer's own memory would dominate
+        assert grown < 200
     # The server still serves (once it has stored what the client sent before leaving; it skips
     # the plans nobody will read), and what it took in is stored once.
     deadline = time.monotonic() + 30

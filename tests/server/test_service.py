@@ -481,7 +481,9 @@ def test_overload_answers_resource_exhausted_and_nothing_hangs(forayd):
     refused = [r for r in results if r != "ok"]
     print(f"overload: {results.count('ok')} admitted, {len(refused)} refused")
     assert "bad" not in results
-    assert results.count("ok") >= 2
+    # Under a sanitizer (tests/run_sanitizers.sh) plans run several times slower: one may be all
+    # that meets its deadline.
+    assert results.count("ok") >= (1 if os.environ.get("FORAY_SANITIZED") == "1" else 2)
     assert refused, "40 simultaneous heavy plans on this machine should overflow the waiting room"
     for code, details in refused:
         assert code == CODE.RESOURCE_EXHAUSTED and "busy" in details, (code, details)
