@@ -63,6 +63,9 @@ ABSL_FLAG(int, plan_threads, 0,
 ABSL_FLAG(int, plan_queue, 0,
           "Plan requests that may wait for a free core beyond those; more are refused with "
           "RESOURCE_EXHAUSTED. 0: 4 per plan thread.");
+ABSL_FLAG(int64_t, max_db_mb, 0,
+          "Largest size of the database, MiB; beyond it writes are refused (RESOURCE_EXHAUSTED) as on "
+          "a full disk, and reads go on. 0: no limit but the disk's.");
 ABSL_FLAG(int, max_message_mb, 16,
           "Largest gRPC message accepted, MiB (10,000 transitions of a 14-D robot are about 3 MiB).");
 ABSL_FLAG(double, shutdown_grace_s, 5.0,
@@ -174,7 +177,7 @@ int main(int argc, char** argv) {
   }
 
   absl::StatusOr<std::unique_ptr<foray::store::Store>> store =
-      foray::store::Store::Open((data_dir / "foray.db").string());
+      foray::store::Store::Open((data_dir / "foray.db").string(), absl::GetFlag(FLAGS_max_db_mb) * 1024 * 1024);
   if (!store.ok()) {
     std::fprintf(stderr, "forayd: %s\n", std::string(store.status().message()).c_str());
     return 2;

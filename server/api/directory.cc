@@ -1,6 +1,7 @@
 #include "server/api/directory.h"
 
 #include <algorithm>
+#include <cstdio>
 
 #include "absl/strings/escaping.h"
 #include "absl/strings/match.h"
@@ -42,6 +43,10 @@ absl::Status RobotDirectory::LoadAll() {
     entry->archived = r.archived;
     entry->runtime = std::make_shared<robot::RobotRuntime>(r.robot_id, *std::move(config), store_);
     if (absl::Status s = entry->runtime->Load(); !s.ok()) return s;
+    for (const std::string& problem : entry->runtime->load_problems()) {
+      std::fprintf(stderr, "forayd: robot %s (%s): %s\n", r.robot_id.c_str(), entry->spec.name().c_str(),
+                   problem.c_str());
+    }
     loaded[r.robot_id] = std::move(entry);
   }
   absl::MutexLock lock(&mu_);

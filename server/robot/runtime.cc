@@ -145,6 +145,11 @@ ProgressView RobotRuntime::Progress() const {
   return v;
 }
 
+std::vector<std::string> RobotRuntime::load_problems() const {
+  absl::MutexLock lock(&mu_);
+  return load_problems_;
+}
+
 std::shared_ptr<const PublishedModel> RobotRuntime::published() const {
   absl::MutexLock lock(&mu_);
   return published_;
@@ -215,31 +220,40 @@ absl::Status RobotRuntime::Load() {
   absl::StatusOr<std::vector<store::TransitionRecord>> transitions =
       store_->LoadTransitions(robot_id_);
   if (!transitions.ok()) return transitions.status();
+  // The newest checkpoint that decodes is published. An unreadable one (a damaged disk, a
+  // foreign write) is reported and skipped, so the robot keeps its data and an older model, or
+  // none (it then retrains), rather than the whole server refusing to start.
   std::shared_ptr<const PublishedModel> published;
-  absl::StatusOr<store::CheckpointRecord> checkpoint = store_->GetCheckpoint(robot_id_, 0);
-  if (checkpoint.ok()) {
+  absl::StatusOr<std::vector<store::CheckpointRecord>> listed = store_->ListCheckpoints(robot_id_);
+  if (!listed.ok()) return listed.status();
+  std::vector<std::string> problems;
+  for (const store::CheckpointRecord& entry : *listed) {
+    absl::StatusOr<store::CheckpointRecord> checkpoint = store_->GetCheckpoint(robot_id_, entry.model_version);
+    if (!checkpoint.ok()) return checkpoint.status();
     absl::StatusOr<model::Ensemble> ensemble = model::DeserializeEnsemble(checkpoint->model);
     if (!ensemble.ok()) {
-      return absl::DataLossError(absl::StrFormat(
-          "robot \"%s\": checkpoint of model version %d is unreadable: %s", robot_id_,
-          checkpoint->model_version, ensemble.status().message()));
+      problems.push_back(absl::StrFormat("checkpoint of model version %d is unreadable (%s); skipped",
+                                               checkpoint->model_version, ensemble.status().message()));
+      continue;
     }
     double seconds = 0.0;
     v1::TrainingReport wire;
     wire.ParseFromString(checkpoint->report);  // an unreadable report leaves zeros
     model::TrainingReport report = ReportFromWire(wire, &seconds);
     published = MakePublished(checkpoint->model_version, *std::move(ensemble), std::move(report),
-                        seconds, checkpoint->created_at);
-  } else if (checkpoint.status().code() != absl::StatusCode::kNotFound) {
-    return checkpoint.status();
+                              seconds, checkpoint->created_at);
+    break;
   }
   absl::MutexLock lock(&mu_);
   replaying_ = true;
   for (const store::TransitionRecord& t : *transitions) AddToDataset(t);
   replaying_ = false;
   // What was stored before the restart is already in the checkpoint's model (or will be in
-  // the next round's): no round is owed for it.
-  new_since_training_ = 0;
+  // the next round's): no round is owed for it, unless no checkpoint could be read.
+  new_since_training_ = published == nullptr && !listed->empty() ? transitions->size() : 0;
+  // New versions continue above every stored one, readable or not.
+  highest_version_ = listed->empty() ? 0 : listed->front().model_version;
+  load_problems_ = std::move(problems);
   episode_ended_ = false;
   published_ = std::move(published);
   return absl::OkStatus();
@@ -393,7 +407,8 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
   uint64_t version;
   {
     absl::MutexLock lock(&mu_);
-    version = published_ ? published_->version + 1 : 1;
+    version = std::max(published_ ? published_->version : 0, highest_version_) + 1;
+    highest_version_ = version;
   }
   std::shared_ptr<const PublishedModel> published =
       MakePublished(version, std::move(ensemble), std::move(report), seconds, absl::Now());

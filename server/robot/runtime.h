@@ -118,8 +118,11 @@ class RobotRuntime {
   ProgressView Progress() const;
   std::shared_ptr<const PublishedModel> published() const;
 
-  // Mirrors the stored transitions and publishes the newest checkpoint, without retraining.
+  // Mirrors the stored transitions and publishes the newest checkpoint that decodes, without
+  // retraining. Unreadable checkpoints are skipped and listed in load_problems(); when none can
+  // be read, the robot trains anew.
   absl::Status Load();
+  std::vector<std::string> load_problems() const;
 
   // Stores a validated batch (durable on return) and adds the new transitions to the dataset.
   absl::StatusOr<store::AppendResult> Append(const std::vector<store::TransitionRecord>& batch);
@@ -177,6 +180,8 @@ class RobotRuntime {
 
   // Progress: the episode in progress, finished ones, plan latencies.
   bool replaying_ ABSL_GUARDED_BY(mu_) = false;  // Load(): episodes are on record already
+  uint64_t highest_version_ ABSL_GUARDED_BY(mu_) = 0;  // of every stored checkpoint, readable or not
+  std::vector<std::string> load_problems_ ABSL_GUARDED_BY(mu_);
   uint64_t current_episode_ ABSL_GUARDED_BY(mu_) = 0;
   int current_steps_ ABSL_GUARDED_BY(mu_) = 0;
   double current_return_ ABSL_GUARDED_BY(mu_) = 0.0;

@@ -2,6 +2,7 @@
 
 #include <sqlite3.h>
 
+#include <algorithm>
 #include <cstdint>
 #include <cstring>
 #include <utility>
@@ -52,8 +53,16 @@ CREATE TABLE progress (
 CREATE INDEX progress_by_robot_time ON progress (robot_id, at_us);
 )sql";
 
+// A write that found no room: nothing of it is stored; the caller should not retry at once.
+absl::Status FullError(absl::string_view what) {
+  return absl::ResourceExhaustedError(absl::StrCat(
+      what, " (no space left on the data directory's disk, or the size limit --max_db_mb reached); "
+            "nothing of this write was stored"));
+}
+
 absl::Status SqlError(sqlite3* db, absl::string_view what) {
-  return absl::UnavailableError(absl::StrCat("store: ", what, ": ", sqlite3_errmsg(db)));
+  const std::string message = absl::StrCat("store: ", what, ": ", sqlite3_errmsg(db));
+  return (sqlite3_errcode(db) & 0xff) == SQLITE_FULL ? FullError(message) : absl::UnavailableError(message);
 }
 
 // A prepared statement, finalised on destruction.
@@ -99,11 +108,11 @@ class Statement {
 
 absl::Status Exec(sqlite3* db, const char* sql) {
   char* error = nullptr;
-  if (sqlite3_exec(db, sql, nullptr, nullptr, &error) != SQLITE_OK) {
-    absl::Status status =
-        absl::UnavailableError(absl::StrCat("store: ", error != nullptr ? error : "error"));
+  const int code = sqlite3_exec(db, sql, nullptr, nullptr, &error);
+  if (code != SQLITE_OK) {
+    const std::string what = absl::StrCat("store: ", error != nullptr ? error : "error");
     sqlite3_free(error);
-    return status;
+    return (code & 0xff) == SQLITE_FULL ? FullError(what) : absl::UnavailableError(what);
   }
   return absl::OkStatus();
 }
@@ -146,7 +155,7 @@ int64_t Micros(absl::Time t) { return absl::ToUnixMicros(t); }
 
 Store::~Store() { sqlite3_close(db_); }
 
-absl::StatusOr<std::unique_ptr<Store>> Store::Open(const std::string& path) {
+absl::StatusOr<std::unique_ptr<Store>> Store::Open(const std::string& path, int64_t max_bytes) {
   sqlite3* db = nullptr;
   if (sqlite3_open_v2(path.c_str(), &db, SQLITE_OPEN_READWRITE | SQLITE_OPEN_CREATE | SQLITE_OPEN_NOMUTEX,
                       nullptr) != SQLITE_OK) {
@@ -163,6 +172,12 @@ absl::StatusOr<std::unique_ptr<Store>> Store::Open(const std::string& path) {
     if (absl::Status s = Exec(db, pragma); !s.ok()) return s;
   }
   if (absl::Status s = store->Migrate(); !s.ok()) return s;
+  if (max_bytes > 0) {
+    Statement size(db, "PRAGMA page_size");
+    if (!size.ok() || size.Step() != SQLITE_ROW) return SqlError(db, "reading the page size");
+    const int64_t pages = std::max<int64_t>(1, max_bytes / size.Int(0));
+    if (absl::Status s = Exec(db, absl::StrCat("PRAGMA max_page_count = ", pages).c_str()); !s.ok()) return s;
+  }
   return store;
 }
 

@@ -79,7 +79,9 @@ class Store {
   // Opens or creates the database at `path` and migrates it to kSchemaVersion.
   // Unavailable when the file cannot be opened; FailedPrecondition when it was written by a
   // newer schema.
-  static absl::StatusOr<std::unique_ptr<Store>> Open(const std::string& path);
+  // max_bytes > 0 caps the database's size: a write beyond it fails with ResourceExhausted, as
+  // on a full disk, and stores nothing.
+  static absl::StatusOr<std::unique_ptr<Store>> Open(const std::string& path, int64_t max_bytes = 0);
 
   int schema_version() const { return schema_version_; }
 

@@ -1,0 +1,108 @@
+"""Storage faults against a real forayd: a full disk (the --max_db_mb limit, which fails SQLite
+writes exactly as a full disk does), a corrupt or truncated database file, and a checkpoint that
+does not decode. The server says what is wrong, acknowledges nothing it could not store, and
+keeps serving what it can."""
+
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import tempfile
+
+import grpc
+import pytest
+
+sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "server"))
+from conftest import Forayd, forayd  # noqa: F401,E402
+from test_service import Client, spec, transitions  # noqa: E402
+
+from foray.v1 import models_pb2, models_pb2_grpc  # noqa: E402
+
+CODE = grpc.StatusCode
+
+
+def count(data_dir):
+    db = sqlite3.connect(os.path.join(data_dir, "foray.db"))
+    try:
+        return db.execute("SELECT COUNT(*), COALESCE(MAX(seq), 0) FROM transitions").fetchone()
+    finally:
+        db.close()
+
+
+def test_a_full_disk_refuses_what_it_cannot_store_and_keeps_serving():
+    with tempfile.TemporaryDirectory(prefix="foray-full-") as data:
+        server = Forayd(data, extra_args=["--max_db_mb=1"])
+        try:
+            c = Client(server)
+            robot = c.register(spec("filler", 8, 2, min_transitions=10 ** 6))
+            durable, refused, seq = 0, None, 1
+            while seq < 200_000:  # bounded: 1 MiB holds a few thousand of these
+                try:
+                    durable = c.append(robot, transitions(8, 2, seq, 500)).durable_seq
+                    seq += 500
+                except grpc.RpcError as e:
+                    refused = e
+                    break
+            assert refused is not None, "the size limit was never reached"
+            assert refused.code() == CODE.RESOURCE_EXHAUSTED
+            assert "no space left" in refused.details() and "nothing of this write was stored" in refused.details()
+            # Exactly what was acknowledged is stored; nothing of the refused batch.
+            assert count(data) == (durable, durable)
+            # Reads and plans go on; a later write is refused the same way, not half-done.
+            assert c.get(robot.robot.robot_id).last_seq == durable
+            assert c.plan(robot, [0.0] * 8).steps
+            with pytest.raises(grpc.RpcError) as again:
+                c.append(robot, transitions(8, 2, durable + 1, 500))
+            assert again.value.code() == CODE.RESOURCE_EXHAUSTED
+            assert count(data) == (durable, durable)
+        finally:
+            server.stop()
+
+
+@pytest.mark.parametrize("damage", ["garbage", "truncated"])
+def test_a_damaged_database_is_reported_by_name(damage):
+    with tempfile.TemporaryDirectory(prefix="foray-damaged-") as data:
+        path = os.path.join(data, "foray.db")
+        if damage == "garbage":
+            with open(path, "wb") as f:
+                f.write(b"these bytes are not a database " * 100)
+        else:
+            server = Forayd(data)
+            c = Client(server)
+            robot = c.register(spec("victim", 2, 1))
+            c.append(robot, transitions(2, 1, 1, 2000))
+            server.stop()
+            size = os.path.getsize(path)
+            with open(path, "r+b") as f:
+                f.truncate(size // 3)
+        result = subprocess.run([os.environ["FORAYD"], "--listen=127.0.0.1:0", f"--data_dir={data}"],
+                                capture_output=True, text=True, timeout=60)
+        assert result.returncode == 2, result.stderr
+        assert "store:" in result.stderr and ("not a database" in result.stderr or "malformed" in result.stderr), \
+            result.stderr
+
+
+def test_an_unreadable_checkpoint_is_skipped_and_the_server_serves_the_one_before(forayd):  # noqa: F811
+    c = Client(forayd)
+    robot = c.register(spec("damaged-model", 2, 1, min_transitions=40, every_n=100000))
+    rid = robot.robot.robot_id
+    auth = [("authorization", f"Bearer {robot.token}")]
+    models = models_pb2_grpc.ModelsStub(c.channel)
+    c.append(robot, transitions(2, 1, 1, 100))
+    c.wait_model(rid, 1)
+    models.TrainNow(models_pb2.TrainNowRequest(robot_id=rid, wait=True), metadata=auth)
+    assert c.get(rid).model_version == 2
+    forayd.stop()
+    db = sqlite3.connect(os.path.join(forayd.data_dir, "foray.db"))
+    with db:
+        db.execute("UPDATE checkpoints SET model = x'0badf00d' WHERE robot_id = ? AND model_version = 2", (rid,))
+    db.close()
+
+    forayd.start_again()
+    assert "checkpoint of model version 2 is unreadable" in forayd.output()
+    assert c.get(rid).model_version == 1  # the one before it serves
+    assert c.plan(robot, [0.1, 0.2]).model_version == 1
+    # Training goes on above every stored version, readable or not.
+    report = models.TrainNow(models_pb2.TrainNowRequest(robot_id=rid, wait=True), metadata=auth).report
+    assert report.model_version == 3 and c.get(rid).model_version == 3
