@@ -66,6 +66,12 @@ ABSL_FLAG(int, plan_queue, 0,
 ABSL_FLAG(int64_t, max_db_mb, 0,
           "Largest size of the database, MiB; beyond it writes are refused (RESOURCE_EXHAUSTED) as on "
           "a full disk, and reads go on. 0: no limit but the disk's.");
+ABSL_FLAG(double, robot_plans_per_s, 0,
+          "Plans per second one robot may ask for on average (bursts of two seconds' worth); more "
+          "are refused with RESOURCE_EXHAUSTED. 0: no limit.");
+ABSL_FLAG(double, robot_transitions_per_s, 0,
+          "Transitions per second one robot may send on average (bursts of two seconds' worth); a "
+          "batch beyond it is refused whole with RESOURCE_EXHAUSTED. 0: no limit.");
 ABSL_FLAG(int, max_message_mb, 16,
           "Largest gRPC message accepted, MiB (10,000 transitions of a 14-D robot are about 3 MiB).");
 ABSL_FLAG(double, shutdown_grace_s, 5.0,
@@ -211,7 +217,14 @@ int main(int argc, char** argv) {
   grpc::reflection::InitProtoReflectionServerBuilderPlugin();
 
   foray::api::RegistryService registry(&directory);
-  foray::api::SessionService session(&directory, &gate);
+  const double plans_per_s = absl::GetFlag(FLAGS_robot_plans_per_s);
+  const double transitions_per_s = absl::GetFlag(FLAGS_robot_transitions_per_s);
+  if (!(plans_per_s >= 0) || !(transitions_per_s >= 0)) {
+    std::fprintf(stderr, "forayd: --robot_plans_per_s=%g and --robot_transitions_per_s=%g must be >= 0\n",
+                 plans_per_s, transitions_per_s);
+    return 2;
+  }
+  foray::api::SessionService session(&directory, &gate, {plans_per_s, transitions_per_s});
   foray::api::ModelsService models(&directory);
   foray::api::MonitoringService monitoring(&directory);
   grpc::ServerBuilder builder;

@@ -64,12 +64,25 @@ absl::Status Append(const RobotEntry& entry,
 
 }  // namespace
 
+absl::Status SessionService::AdmitTransitions(const RobotEntry& entry, size_t count) {
+  if (transition_limit_.Take(entry.robot_id, static_cast<double>(count), absl::Now())) return absl::OkStatus();
+  return absl::ResourceExhaustedError(absl::StrFormat(
+      "robot \"%s\" sends more than %g transitions per second (forayd --robot_transitions_per_s); "
+      "nothing of this batch was stored: send it again a little later",
+      entry.spec.name(), transition_limit_.rate()));
+}
+
 absl::Status SessionService::Plan(const RobotEntry& entry, const v1::PlanRequest& request,
                                   v1::Plan* response) {
   const absl::Time arrived = absl::Now();
   const robot::RobotConfig config = entry.runtime->config();
   absl::StatusOr<robot::PlanInput> input = PlanInputFromWire(request, config);
   if (!input.ok()) return input.status();
+  if (!plan_limit_.Take(entry.robot_id, 1.0, arrived)) {
+    return absl::ResourceExhaustedError(absl::StrFormat(
+        "robot \"%s\" asks for more than %g plans per second (forayd --robot_plans_per_s)",
+        entry.spec.name(), plan_limit_.rate()));
+  }
   // The deadline counts from arrival: time spent waiting for a core is the plan's own.
   absl::StatusOr<sched::PlanGate::Ticket> ticket = gate_->Enter(arrived + input->budget);
   if (!ticket.ok()) return ticket.status();
@@ -145,6 +158,7 @@ grpc::Status SessionService::AppendTransitions(grpc::ServerContext* context,
                                                v1::Ack* response) {
   auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/false);
   if (!entry.ok()) return ToGrpc(entry.status());
+  if (absl::Status s = AdmitTransitions(**entry, request->transitions_size()); !s.ok()) return ToGrpc(s);
   return ToGrpc(Append(**entry, request->transitions(), response));
 }
 
@@ -239,21 +253,30 @@ grpc::Status SessionService::Connect(
   const robot::RobotConfig config = entry->runtime->config();
   uint64_t last_seq_seen = 0;
   bool writing = true;
+  // Once a group could not be stored (storage error, rate limit), nothing later in this session
+  // may be: an ack reports the highest stored seq, and a later group's ack would tell the client
+  // that the failed group is durable. The session ends; the client reconnects and resends.
+  bool stopped = false;
   for (;;) {
     std::vector<v1::SessionClientMessage> messages = inbox.TakeAll();
     if (messages.empty()) break;
+    if (stopped) continue;  // drains what the reader still hands over until the call ends
     std::vector<v1::SessionServerMessage> replies;
     std::vector<store::TransitionRecord> group;  // validated, in arrival order
     auto flush = [&] {
       if (group.empty()) return;
       v1::SessionServerMessage ack;
-      if (absl::Status s = AppendRecords(*entry, group, ack.mutable_ack()); !s.ok()) {
+      absl::Status s = AdmitTransitions(*entry, group.size());
+      if (s.ok()) s = AppendRecords(*entry, group, ack.mutable_ack());
+      if (!s.ok()) {
         ack = ErrorReply(s, group.front().seq, 0);
+        stopped = true;
       }
       replies.push_back(std::move(ack));
       group.clear();
     };
     for (v1::SessionClientMessage& in : messages) {
+      if (stopped) break;
       if (in.has_transition()) {
         const uint64_t seq = in.transition().seq();
         google::protobuf::RepeatedPtrField<v1::Transition> one;
@@ -292,7 +315,8 @@ grpc::Status SessionService::Connect(
     for (const v1::SessionServerMessage& reply : replies) {
       if (writing && !stream->Write(reply)) writing = false;
     }
-    if (!writing) context->TryCancel();  // the client is gone: end the reader's Read too
+    // The client is gone, or the session stopped storing: end the reader's Read too.
+    if (!writing || stopped) context->TryCancel();
   }
   reader.join();
   return grpc::Status::OK;

@@ -10,6 +10,7 @@
 #include "foray/v1/session.grpc.pb.h"
 #include "server/api/directory.h"
 #include "server/sched/plan_gate.h"
+#include "server/sched/rate_limit.h"
 
 namespace foray::api {
 
@@ -33,11 +34,21 @@ class RegistryService final : public v1::RobotRegistry::Service {
   RobotDirectory* const directory_;
 };
 
+// Per-robot limits of the session service (0: none): plans per second and transitions per
+// second, each with two seconds' worth of burst.
+struct SessionLimits {
+  double plans_per_s = 0.0;
+  double transitions_per_s = 0.0;
+};
+
 class SessionService final : public v1::RobotSession::Service {
  public:
   // `gate` admits plans to the cores; both must outlive the service.
-  SessionService(RobotDirectory* directory, sched::PlanGate* gate)
-      : directory_(directory), gate_(gate) {}
+  SessionService(RobotDirectory* directory, sched::PlanGate* gate, SessionLimits limits = {})
+      : directory_(directory),
+        gate_(gate),
+        plan_limit_(limits.plans_per_s, 2.0 * std::max(1.0, limits.plans_per_s)),
+        transition_limit_(limits.transitions_per_s, 2.0 * std::max(1.0, limits.transitions_per_s)) {}
 
   grpc::Status Connect(
       grpc::ServerContext* context,
@@ -50,9 +61,13 @@ class SessionService final : public v1::RobotSession::Service {
 
  private:
   absl::Status Plan(const RobotEntry& entry, const v1::PlanRequest& request, v1::Plan* response);
+  // ResourceExhausted, naming the limit, when `entry` sent more than its transitions per second.
+  absl::Status AdmitTransitions(const RobotEntry& entry, size_t count);
 
   RobotDirectory* const directory_;
   sched::PlanGate* const gate_;
+  sched::RateLimit plan_limit_;
+  sched::RateLimit transition_limit_;
 };
 
 class ModelsService final : public v1::Models::Service {
