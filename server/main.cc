@@ -6,10 +6,13 @@
 // its round, the database closes.
 
 #include <sys/stat.h>
+#include <unistd.h>
 
 #include <algorithm>
+#include <cerrno>
 #include <csignal>
 #include <cstdio>
+#include <cstring>
 #include <filesystem>
 #include <fstream>
 #include <memory>
@@ -165,6 +168,14 @@ int main(int argc, char** argv) {
   if (ec) {
     std::fprintf(stderr, "forayd: cannot create data directory \"%s\": %s\n",
                  data_dir.c_str(), ec.message().c_str());
+    return 2;
+  }
+  // The database, its journal and the checkpoints are written here; say so plainly when that
+  // cannot be (a read-only mount, wrong owner) instead of SQLite's "unable to open database file".
+  if (::access(data_dir.c_str(), W_OK | X_OK) != 0) {
+    std::fprintf(stderr, "forayd: the data directory \"%s\" is not writable (%s); forayd stores its "
+                 "database there: give it a writable directory (--data_dir)\n",
+                 data_dir.c_str(), std::strerror(errno));
     return 2;
   }
 

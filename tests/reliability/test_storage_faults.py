@@ -106,3 +106,27 @@ def test_an_unreadable_checkpoint_is_skipped_and_the_server_serves_the_one_befor
     # Training goes on above every stored version, readable or not.
     report = models.TrainNow(models_pb2.TrainNowRequest(robot_id=rid, wait=True), metadata=auth).report
     assert report.model_version == 3 and c.get(rid).model_version == 3
+
+
+def test_a_read_only_data_directory_is_reported_by_name(tmp_path):
+    """A data directory on a read-only mount (a read-only bind mount of a real one: as root,
+    file permissions alone would not stop a write)."""
+    data, view = tmp_path / "data", tmp_path / "view"
+    data.mkdir()
+    view.mkdir()
+    server = Forayd(str(data))
+    c = Client(server)
+    c.append(c.register(spec("kept", 2, 1)), transitions(2, 1, 1, 20))
+    server.stop()
+    if subprocess.run(["mount", "--bind", str(data), str(view)], capture_output=True).returncode != 0:
+        pytest.skip("no permission to bind-mount here")
+    try:
+        if subprocess.run(["mount", "-o", "remount,ro,bind", str(view)], capture_output=True).returncode != 0:
+            pytest.skip("no permission to remount read-only here")
+        result = subprocess.run([os.environ["FORAYD"], "--listen=127.0.0.1:0", f"--data_dir={view}"],
+                                capture_output=True, text=True, timeout=60)
+        assert result.returncode == 2
+        assert f'the data directory "{view}" is not writable (Read-only file system)' in result.stderr, result.stderr
+    finally:
+        subprocess.run(["umount", str(view)], capture_output=True)
+    assert count(str(data)) == (20, 20)  # the data is untouched
