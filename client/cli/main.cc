@@ -4,16 +4,12 @@
 // word of the file's first line, so a robot's "ROBOT_ID TOKEN" identity file works too).
 // Exit codes: 0 done, 1 the server refused or failed, 2 bad usage or a bad input file.
 
-#include <fcntl.h>
-#include <unistd.h>
-
 #include <algorithm>
 #include <cmath>
 #include <csignal>
 #include <cstdio>
 #include <fstream>
 #include <map>
-#include <random>
 #include <string>
 #include <vector>
 
@@ -30,6 +26,7 @@
 #include "absl/time/clock.h"
 #include "absl/time/time.h"
 #include "client/cli/spec_file.h"
+#include "client/cpp/session.h"
 #include "client/cli/table_files.h"
 #include "foray/v1/models.grpc.pb.h"
 #include "foray/v1/monitoring.grpc.pb.h"
@@ -120,7 +117,7 @@ const Command* FindCommand(const std::string& name) {
 grpc::ClientContext* WithToken(grpc::ClientContext* context, const std::string& token,
                                const std::string& robot_id = "") {
   context->AddMetadata("authorization", "Bearer " + token);
-  if (!robot_id.empty()) context->AddMetadata("foray-robot", robot_id);
+  if (!robot_id.empty()) context->AddMetadata(foray::client::kRobotHeader, robot_id);
   return context;
 }
 
@@ -294,24 +291,20 @@ int Register(v1::RobotRegistry::Stub& registry, const std::string& token, const 
   grpc::ClientContext context;
   v1::RegisterRobotRequest request;
   *request.mutable_spec() = *spec;
-  std::random_device device;  // the id is chosen here, so a router can place the robot by it
-  request.set_robot_id(absl::GetFlag(FLAGS_robot_id).empty()
-                           ? absl::StrFormat("r-%016x", (static_cast<uint64_t>(device()) << 32) ^ device())
-                           : absl::GetFlag(FLAGS_robot_id));
+  // The id is chosen here, so a router can place the robot by it.
+  request.set_robot_id(absl::GetFlag(FLAGS_robot_id).empty() ? foray::client::NewRobotId()
+                                                             : absl::GetFlag(FLAGS_robot_id));
   v1::RegisterRobotResponse response;
   const grpc::Status s = registry.RegisterRobot(WithToken(&context, token, request.robot_id()), request, &response);
   if (!s.ok()) return Fail("registering " + spec->name(), s);
   const std::string out = absl::GetFlag(FLAGS_token_out);
   if (!out.empty()) {
-    const int fd = ::open(out.c_str(), O_WRONLY | O_CREAT | O_EXCL, 0600);
-    const std::string line = absl::StrCat(response.robot().robot_id(), " ", response.token(), "\n");
-    if (fd < 0 || ::write(fd, line.data(), line.size()) != static_cast<ssize_t>(line.size())) {
-      if (fd >= 0) ::close(fd);
+    const foray::client::Identity identity{response.robot().robot_id(), response.token()};
+    if (!foray::client::WriteIdentity(out, identity, /*exclusive=*/true).ok()) {
       std::fprintf(stderr, "foray: registered %s but cannot write a new %s (does it exist?); its token:\n%s\n",
-                   response.robot().robot_id().c_str(), out.c_str(), response.token().c_str());
+                   identity.robot_id.c_str(), out.c_str(), identity.token.c_str());
       return 1;
     }
-    ::close(fd);
     absl::PrintF("registered %s as %s; id and token in %s\n", spec->name(), response.robot().robot_id(), out);
   } else {
     absl::PrintF("registered %s as %s\ntoken: %s\n(keep the token secret: it lets a client write this "

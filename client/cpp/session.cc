@@ -4,10 +4,12 @@
 #include <unistd.h>
 
 #include <algorithm>
+#include <cerrno>
 #include <chrono>
 #include <cmath>
 #include <cstdio>
 #include <cstdlib>
+#include <cstring>
 #include <fstream>
 #include <random>
 #include <utility>
@@ -42,14 +44,6 @@ std::shared_ptr<grpc::Channel> MakeChannel(const std::string& address,
   return grpc::CreateCustomChannel(address, credentials, args);
 }
 
-// A robot id of the client's choosing ("r-" and 16 hex digits), so that a router can place the
-// robot by its `foray-robot` header from the registration on.
-std::string NewRobotId() {
-  std::random_device device;
-  const uint64_t bits = (static_cast<uint64_t>(device()) << 32) ^ device();
-  return absl::StrFormat("r-%016x", bits);
-}
-
 absl::Status FromGrpc(const grpc::Status& s) {
   return absl::Status(static_cast<absl::StatusCode>(s.error_code()), s.error_message());
 }
@@ -70,6 +64,24 @@ absl::Status CheckVector(const char* field, const std::vector<double>& v, int ex
 }
 
 }  // namespace
+
+std::string NewRobotId() {
+  std::random_device device;
+  const uint64_t bits = (static_cast<uint64_t>(device()) << 32) ^ device();
+  return absl::StrFormat("r-%016x", bits);
+}
+
+absl::Status WriteIdentity(const std::string& path, const Identity& identity, bool exclusive) {
+  const int fd = ::open(path.c_str(), O_WRONLY | O_CREAT | (exclusive ? O_EXCL : O_TRUNC), 0600);
+  if (fd < 0) {
+    return absl::PermissionDeniedError(absl::StrFormat("cannot create %s: %s", path, std::strerror(errno)));
+  }
+  const std::string line = absl::StrCat(identity.robot_id, " ", identity.token, "\n");
+  const bool written = ::write(fd, line.data(), line.size()) == static_cast<ssize_t>(line.size());
+  ::close(fd);
+  if (!written) return absl::DataLossError(absl::StrFormat("writing %s failed", path));
+  return absl::OkStatus();
+}
 
 absl::Status SessionOptions::Validate() const {
   if (address.empty()) return absl::InvalidArgumentError("address is empty; give host:port");
@@ -150,18 +162,9 @@ absl::StatusOr<Identity> RobotSession::LoadOrRegister(
   absl::StatusOr<Identity> fresh =
       Register(address, credentials, std::string(absl::StripAsciiWhitespace(admin)), spec);
   if (!fresh.ok()) return fresh.status();
-  // Created 0600 before anything is written: the token is a credential.
-  const int fd = ::open(path.c_str(), O_WRONLY | O_CREAT | O_TRUNC, 0600);
-  if (fd < 0) {
-    return absl::PermissionDeniedError(absl::StrFormat(
-        "registered robot %s but cannot write its identity to %s", fresh->robot_id, path));
-  }
-  const std::string line = absl::StrCat(fresh->robot_id, " ", fresh->token, "\n");
-  const bool written = ::write(fd, line.data(), line.size()) == static_cast<ssize_t>(line.size());
-  ::close(fd);
-  if (!written) {
-    return absl::DataLossError(absl::StrFormat("registered robot %s but writing %s failed",
-                                               fresh->robot_id, path));
+  if (absl::Status s = WriteIdentity(path, *fresh, /*exclusive=*/false); !s.ok()) {
+    return absl::Status(s.code(), absl::StrFormat("registered robot %s but could not keep its identity: %s",
+                                                  fresh->robot_id, s.message()));
   }
   if (registered != nullptr) *registered = true;
   return fresh;

@@ -48,6 +48,14 @@ struct Identity {
   std::string token;
 };
 
+// A robot id of the client's choosing ("r-" and 16 random hex digits), sent at registration so
+// that a router can place the robot by its foray-robot header before the robot exists.
+std::string NewRobotId();
+
+// Writes "ROBOT_ID TOKEN\n" to `path`, created with mode 0600 before anything is written (the
+// token is a credential). With `exclusive`, an existing file is an error and is left alone.
+absl::Status WriteIdentity(const std::string& path, const Identity& identity, bool exclusive);
+
 // What Act() returns when no valid plan is there in time.
 struct SafeAction {
   enum class Kind {

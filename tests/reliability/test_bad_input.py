@@ -11,7 +11,7 @@ import pytest
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "server"))
 from conftest import Forayd  # noqa: E402
-from test_service import Client, spec, transitions  # noqa: E402
+from test_service import Client, batch_with, spec, transitions  # noqa: E402
 
 from foray.v1 import registry_pb2 as reg  # noqa: E402
 from foray.v1 import session_pb2 as ses  # noqa: E402
@@ -51,18 +51,6 @@ def refused(call, code, fragment):
         call()
     assert info.value.code() == code, info.value.details()
     assert fragment in info.value.details(), info.value.details()
-
-
-def batch_with(first_seq=11, count=3, **change):
-    tr = transitions(2, 1, first_seq, count)
-    for key, value in change.items():
-        field = getattr(tr[1], key)
-        if isinstance(value, list):
-            del field[:]
-            field.extend(value)
-        else:
-            setattr(tr[1], key, value)
-    return tr
 
 
 # (row id, batch, code, message fragment)

@@ -57,6 +57,19 @@ def transitions(state_dim, action_dim, first_seq, count, episode_len=50):
     return out
 
 
+def batch_with(first_seq=11, count=3, **change):
+    """transitions(2, 1, first_seq, count) with fields of the second one replaced."""
+    tr = transitions(2, 1, first_seq, count)
+    for key, value in change.items():
+        field = getattr(tr[1], key)
+        if isinstance(value, list):
+            del field[:]
+            field.extend(value)
+        else:
+            setattr(tr[1], key, value)
+    return tr
+
+
 class Client:
     def __init__(self, server):
         self.channel = grpc.insecure_channel(server.address)
@@ -224,23 +237,12 @@ def test_bad_transitions_name_the_field_and_store_nothing(forayd):
     robot = c.register(spec("validator", 2, 1))
     c.append(robot, transitions(2, 1, 1, 10))
 
-    def modified(**change):
-        tr = transitions(2, 1, 11, 3)
-        for key, value in change.items():
-            field = getattr(tr[1], key)
-            if isinstance(value, list):
-                del field[:]
-                field.extend(value)
-            else:
-                setattr(tr[1], key, value)
-        return tr
-
     cases = [
-        (modified(state=[0.1, 0.2, 0.3]), "transitions[1] (seq 12).state has 3 values"),
-        (modified(next_state=[0.1, float("nan")]), "next_state[1] is nan"),
-        (modified(action=[1.5]), "action[0] is 1.5, outside the limits [-1, 1]"),
-        (modified(reward=float("inf")), "reward is inf"),
-        (modified(seq=11), "transitions[1].seq is 11 after 11"),
+        (batch_with(state=[0.1, 0.2, 0.3]), "transitions[1] (seq 12).state has 3 values"),
+        (batch_with(next_state=[0.1, float("nan")]), "next_state[1] is nan"),
+        (batch_with(action=[1.5]), "action[0] is 1.5, outside the limits [-1, 1]"),
+        (batch_with(reward=float("inf")), "reward is inf"),
+        (batch_with(seq=11), "transitions[1].seq is 11 after 11"),
         ([], "transitions is empty"),
     ]
     for batch, fragment in cases:
