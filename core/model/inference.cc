@@ -26,32 +26,54 @@ struct Epilogue {
 #if defined(__AVX512F__)
 using Packet = __m512;
 
-inline Packet Activate(Activation activation, Packet z) {
-  switch (activation) {
-    case Activation::kSilu: {
-      // z * sigmoid(z), with 1 / (1 + e^-z) from the 14-bit reciprocal and one Newton step
-      // (relative error about 1e-7, below float rounding of the products around it). The
-      // exponent is clamped so that the reciprocal of a huge denominator stays finite.
-      const Packet one = _mm512_set1_ps(1.0f);
-      const Packet two = _mm512_set1_ps(2.0f);
-      const Packet neg = _mm512_min_ps(_mm512_sub_ps(_mm512_setzero_ps(), z), _mm512_set1_ps(80.0f));
-      const Packet d = _mm512_add_ps(one, Eigen::internal::pexp(neg));
-      Packet r = _mm512_rcp14_ps(d);
-      r = _mm512_mul_ps(r, _mm512_fnmadd_ps(d, r, two));
-      return _mm512_mul_ps(z, r);
-    }
-    case Activation::kRelu:
-      return _mm512_max_ps(z, _mm512_setzero_ps());
-    case Activation::kTanh:
-      return Eigen::internal::ptanh(z);
+// e^x for x <= 88 (larger x is clamped there). Cody-Waite reduction x = n ln2 + f with
+// |f| <= ln2/2, e^f from the Cephes single-precision polynomial (about 1 ulp), and 2^n applied
+// with vscalefps, which also flushes very negative x to 0 without integer exponent tricks.
+inline Packet Exp(Packet x) {
+  x = _mm512_min_ps(x, _mm512_set1_ps(88.0f));
+  x = _mm512_max_ps(x, _mm512_set1_ps(-104.0f));
+  const Packet n = _mm512_roundscale_ps(_mm512_mul_ps(x, _mm512_set1_ps(1.44269504088896341f)),
+                                        _MM_FROUND_TO_NEAREST_INT | _MM_FROUND_NO_EXC);
+  Packet f = _mm512_fnmadd_ps(n, _mm512_set1_ps(0.693359375f), x);
+  f = _mm512_fnmadd_ps(n, _mm512_set1_ps(-2.12194440e-4f), f);
+  Packet p = _mm512_set1_ps(1.9875691500e-4f);
+  p = _mm512_fmadd_ps(p, f, _mm512_set1_ps(1.3981999507e-3f));
+  p = _mm512_fmadd_ps(p, f, _mm512_set1_ps(8.3334519073e-3f));
+  p = _mm512_fmadd_ps(p, f, _mm512_set1_ps(4.1665795894e-2f));
+  p = _mm512_fmadd_ps(p, f, _mm512_set1_ps(1.6666665459e-1f));
+  p = _mm512_fmadd_ps(p, f, _mm512_set1_ps(5.0000001201e-1f));
+  const Packet f2 = _mm512_mul_ps(f, f);
+  p = _mm512_fmadd_ps(p, f2, _mm512_add_ps(f, _mm512_set1_ps(1.0f)));
+  return _mm512_scalef_ps(p, n);
+}
+
+// The activation of a hidden layer, chosen at compile time so that the epilogue of a register
+// tile is straight-line code on registers. kNone: the output layer (bounded afterwards).
+enum class Act { kNone, kSilu, kRelu, kTanh };
+
+template <Act A>
+inline Packet Activate(Packet z) {
+  if constexpr (A == Act::kSilu) {
+    // z * sigmoid(z), with 1 / (1 + e^-z) from the 14-bit reciprocal and one Newton step
+    // (relative error about 1e-7, below float rounding of the products around it). Exp clamps
+    // its argument, so the reciprocal of a huge denominator stays finite.
+    const Packet d = _mm512_add_ps(_mm512_set1_ps(1.0f), Exp(_mm512_sub_ps(_mm512_setzero_ps(), z)));
+    Packet r = _mm512_rcp14_ps(d);
+    r = _mm512_mul_ps(r, _mm512_fnmadd_ps(d, r, _mm512_set1_ps(2.0f)));
+    return _mm512_mul_ps(z, r);
+  } else if constexpr (A == Act::kRelu) {
+    return _mm512_max_ps(z, _mm512_setzero_ps());
+  } else if constexpr (A == Act::kTanh) {
+    return Eigen::internal::ptanh(z);
+  } else {
+    return z;
   }
-  return z;
 }
 
 // y[r][c] for R rows and V vectors of 16 columns: act(sum_k x[r][k] w[k][c] + b[c]).
-template <int R, int V>
+template <Act A, int R, int V>
 void DenseTile(const float* x, int ldx, int k_count, const float* w, int ldw, const float* bias,
-               float* y, int ldy, const Epilogue& ep) {
+               float* y, int ldy) {
   Packet acc[R][V];
   for (int v = 0; v < V; ++v) {
     const Packet b = _mm512_loadu_ps(bias + v * kLanes);
@@ -65,46 +87,54 @@ void DenseTile(const float* x, int ldx, int k_count, const float* w, int ldw, co
       for (int v = 0; v < V; ++v) acc[r][v] = _mm512_fmadd_ps(xb, wv[v], acc[r][v]);
     }
   }
-  for (int v = 0; v < V; ++v) {
-    if (ep.activate) {
-      for (int r = 0; r < R; ++r) acc[r][v] = Activate(ep.activation, acc[r][v]);
-    }
-    for (int r = 0; r < R; ++r) _mm512_storeu_ps(y + r * ldy + v * kLanes, acc[r][v]);
+  for (int r = 0; r < R; ++r) {
+    for (int v = 0; v < V; ++v) _mm512_storeu_ps(y + r * ldy + v * kLanes, Activate<A>(acc[r][v]));
   }
 }
 
-template <int R>
+template <Act A, int R>
 void DenseTileColumns(int vectors, const float* x, int ldx, int k_count, const float* w, int ldw,
-                      const float* bias, float* y, int ldy, const Epilogue& ep) {
+                      const float* bias, float* y, int ldy) {
   switch (vectors) {
-    case 1: return DenseTile<R, 1>(x, ldx, k_count, w, ldw, bias, y, ldy, ep);
-    case 2: return DenseTile<R, 2>(x, ldx, k_count, w, ldw, bias, y, ldy, ep);
-    case 3: return DenseTile<R, 3>(x, ldx, k_count, w, ldw, bias, y, ldy, ep);
-    default: return DenseTile<R, 4>(x, ldx, k_count, w, ldw, bias, y, ldy, ep);
+    case 1: return DenseTile<A, R, 1>(x, ldx, k_count, w, ldw, bias, y, ldy);
+    case 2: return DenseTile<A, R, 2>(x, ldx, k_count, w, ldw, bias, y, ldy);
+    case 3: return DenseTile<A, R, 3>(x, ldx, k_count, w, ldw, bias, y, ldy);
+    default: return DenseTile<A, R, 4>(x, ldx, k_count, w, ldw, bias, y, ldy);
+  }
+}
+
+template <Act A>
+void DenseWith(const float* x, int ldx, int rows, int k_count, const float* w, int ldw,
+               const float* bias, float* y, int ldy) {
+  // Column blocks outside, rows inside: a block of weights stays in L1 across all rows.
+  for (int c0 = 0; c0 < ldw; c0 += 4 * kLanes) {
+    const int vectors = std::min(4, (ldw - c0) / kLanes);
+    int r0 = 0;
+    for (; r0 + kTileRows <= rows; r0 += kTileRows) {
+      DenseTileColumns<A, kTileRows>(vectors, x + r0 * ldx, ldx, k_count, w + c0, ldw, bias + c0,
+                                     y + r0 * ldy + c0, ldy);
+    }
+    const float* xr = x + r0 * ldx;
+    float* yr = y + r0 * ldy + c0;
+    switch (rows - r0) {
+      case 1: DenseTileColumns<A, 1>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy); break;
+      case 2: DenseTileColumns<A, 2>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy); break;
+      case 3: DenseTileColumns<A, 3>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy); break;
+      case 4: DenseTileColumns<A, 4>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy); break;
+      case 5: DenseTileColumns<A, 5>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy); break;
+      default: break;
+    }
   }
 }
 
 // y (rows, ldy) = epilogue(x (rows, ldx) * w (k_count, ldw) + bias), ldw a multiple of 16.
 void Dense(const float* x, int ldx, int rows, int k_count, const float* w, int ldw,
            const float* bias, float* y, int ldy, const Epilogue& ep) {
-  // Column blocks outside, rows inside: a block of weights stays in L1 across all rows.
-  for (int c0 = 0; c0 < ldw; c0 += 4 * kLanes) {
-    const int vectors = std::min(4, (ldw - c0) / kLanes);
-    int r0 = 0;
-    for (; r0 + kTileRows <= rows; r0 += kTileRows) {
-      DenseTileColumns<kTileRows>(vectors, x + r0 * ldx, ldx, k_count, w + c0, ldw, bias + c0,
-                                  y + r0 * ldy + c0, ldy, ep);
-    }
-    const float* xr = x + r0 * ldx;
-    float* yr = y + r0 * ldy + c0;
-    switch (rows - r0) {
-      case 1: DenseTileColumns<1>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
-      case 2: DenseTileColumns<2>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
-      case 3: DenseTileColumns<3>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
-      case 4: DenseTileColumns<4>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
-      case 5: DenseTileColumns<5>(vectors, xr, ldx, k_count, w + c0, ldw, bias + c0, yr, ldy, ep); break;
-      default: break;
-    }
+  if (!ep.activate) return DenseWith<Act::kNone>(x, ldx, rows, k_count, w, ldw, bias, y, ldy);
+  switch (ep.activation) {
+    case Activation::kSilu: return DenseWith<Act::kSilu>(x, ldx, rows, k_count, w, ldw, bias, y, ldy);
+    case Activation::kRelu: return DenseWith<Act::kRelu>(x, ldx, rows, k_count, w, ldw, bias, y, ldy);
+    case Activation::kTanh: return DenseWith<Act::kTanh>(x, ldx, rows, k_count, w, ldw, bias, y, ldy);
   }
 }
 

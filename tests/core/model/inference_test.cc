@@ -44,6 +44,38 @@ TEST_P(InferenceTest, MatchesReferenceForward) {
   }
 }
 
+// Pre-activations far outside [-88, 88], where the fast path's exponential clamps its argument:
+// SiLU must still give z for large z and (almost) 0 for very negative z, as the reference does
+// (Eigen's exp saturates to inf and 0 there).
+TEST(InferenceExtremeTest, SiluSaturatesLikeReference) {
+  EnsembleOptions options;
+  options.ensemble_size = 2;
+  options.hidden_widths = {32};
+  options.activation = Activation::kSilu;
+  auto e = Ensemble::Create(3, 1, options, 5);
+  ASSERT_TRUE(e.ok());
+  e->mutable_params() *= 40.0f;
+  const int rows = 50;
+  Eigen::MatrixXf x(rows, e->input_dim());
+  for (int i = 0; i < rows; ++i) {
+    for (int j = 0; j < x.cols(); ++j) x(i, j) = static_cast<float>((i - rows / 2) * (j + 1)) * 2.0f;
+  }
+  const InferenceEnsemble::RowMatrix x_rows = x;
+  InferenceEnsemble fast(*e);
+  InferenceEnsemble::Workspace ws;
+  for (int b = 0; b < e->size(); ++b) {
+    Eigen::MatrixXf mean, log_var;
+    e->MemberForward(b, x, &mean, &log_var);
+    InferenceEnsemble::RowMatrix fast_mean(rows, e->output_dim()), fast_lv(rows, e->output_dim());
+    fast.ForwardMember(b, x_rows.data(), rows, fast_mean.data(), fast_lv.data(), &ws);
+    ASSERT_TRUE(fast_mean.allFinite());
+    ASSERT_TRUE(fast_lv.allFinite());
+    const double scale = std::max(1.0f, mean.cwiseAbs().maxCoeff());
+    EXPECT_LT((fast_mean - mean).cwiseAbs().maxCoeff() / scale, 1e-5) << "member " << b;
+    EXPECT_LT((fast_lv - log_var).cwiseAbs().maxCoeff(), 1e-4) << "member " << b;
+  }
+}
+
 INSTANTIATE_TEST_SUITE_P(
     Shapes, InferenceTest,
     ::testing::Values(Param{Activation::kSilu, {64, 64, 64}, 4, 1000},
