@@ -63,6 +63,10 @@ class Forayd:
                 self.process.kill()
                 self.process.wait()
         self.log.close()
+        report = self.output()
+        if "Sanitizer" in report or "runtime error:" in report:
+            # A sanitizer build's report: shown with the failing test's captured output.
+            print(f"forayd log ({self.log_path}):\n{report}")
         return self.process.returncode
 
     def output(self):
