@@ -77,6 +77,10 @@ ABSL_FLAG(double, robot_transitions_per_s, 0,
           "batch beyond it is refused whole with RESOURCE_EXHAUSTED. 0: no limit.");
 ABSL_FLAG(int, max_message_mb, 16,
           "Largest gRPC message accepted, MiB (10,000 transitions of a 14-D robot are about 3 MiB).");
+ABSL_FLAG(double, stalled_write_timeout_s, 120.0,
+          "End a session, progress watch or export whose client has not read what the server "
+          "sends for this many seconds (flow control holds the write); it frees the handler "
+          "thread. 0: never.");
 ABSL_FLAG(double, shutdown_grace_s, 5.0,
           "Seconds in-flight calls get to finish after SIGINT/SIGTERM before they are cancelled.");
 
@@ -235,9 +239,16 @@ int main(int argc, char** argv) {
                  plans_per_s, transitions_per_s);
     return 2;
   }
-  foray::api::SessionService session(&directory, &gate, {plans_per_s, transitions_per_s});
+  const double stalled_write_s = absl::GetFlag(FLAGS_stalled_write_timeout_s);
+  if (!(stalled_write_s >= 0)) {
+    std::fprintf(stderr, "forayd: --stalled_write_timeout_s=%g must be >= 0\n", stalled_write_s);
+    return 2;
+  }
+  foray::api::WriteWatch write_watch(absl::Seconds(stalled_write_s));
+  foray::api::SessionService session(&directory, &gate, {plans_per_s, transitions_per_s},
+                                     &write_watch);
   foray::api::ModelsService models(&directory);
-  foray::api::MonitoringService monitoring(&directory);
+  foray::api::MonitoringService monitoring(&directory, absl::Milliseconds(200), &write_watch);
   grpc::ServerBuilder builder;
   int bound_port = 0;
   const std::string listen = absl::GetFlag(FLAGS_listen);

@@ -231,13 +231,15 @@ grpc::Status SessionService::Connect(
   auto authorized = directory_->Authorize(*context, first.hello().robot_id(), /*admin_ok=*/false);
   if (!authorized.ok()) return ToGrpc(authorized.status());
   const std::shared_ptr<const RobotEntry> entry = *authorized;
+  WriteWatch::Call watched(write_watch_, context,
+                           absl::StrFormat("session of robot \"%s\"", entry->spec.name()));
   {
     v1::SessionServerMessage out;
     const robot::RobotStatus status = entry->runtime->Status();
     out.mutable_welcome()->set_last_seq(status.last_seq);
     out.mutable_welcome()->set_model_version(status.model_version);
     *out.mutable_welcome()->mutable_spec() = entry->spec;
-    if (!stream->Write(out)) return grpc::Status::OK;
+    if (!watched.Write(stream, out)) return grpc::Status::OK;
   }
   // A reader thread queues what arrives while this thread commits: the transitions that arrived
   // during one commit go into the next as one group (one SQLite transaction, one ack).
@@ -313,7 +315,7 @@ grpc::Status SessionService::Connect(
     }
     flush();
     for (const v1::SessionServerMessage& reply : replies) {
-      if (writing && !stream->Write(reply)) writing = false;
+      if (writing && !watched.Write(stream, reply)) writing = false;
     }
     // The client is gone, or the session stopped storing: end the reader's Read too.
     if (!writing || stopped) context->TryCancel();
@@ -570,6 +572,7 @@ grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
                                               grpc::ServerWriter<v1::ProgressEvent>* writer) {
   auto robots = Visible(*context, request->robot_id());
   if (!robots.ok()) return ToGrpc(robots.status());
+  WriteWatch::Call watched(write_watch_, context, "progress watch");
   // First where every robot stands now, then the records since the requested time (history
   // from the store), then new records as they are written, until the client goes away.
   for (const auto& entry : *robots) {
@@ -577,7 +580,7 @@ grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
     event.set_robot_id(entry->robot_id);
     *event.mutable_at() = ToTimestamp(absl::Now());
     *event.mutable_snapshot() = ProgressToWire(*entry);
-    if (!writer->Write(event)) return grpc::Status::OK;
+    if (!watched.Write(writer, event)) return grpc::Status::OK;
   }
   const absl::Time since = request->has_since()
                                ? absl::FromUnixSeconds(request->since().seconds()) +
@@ -599,7 +602,7 @@ grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
       } else {
         continue;
       }
-      if (!writer->Write(event)) return grpc::Status::OK;
+      if (!watched.Write(writer, event)) return grpc::Status::OK;
     }
     if (records->size() < 1000) absl::SleepFor(poll_);
   }
@@ -619,9 +622,11 @@ grpc::Status MonitoringService::ExportTransitions(grpc::ServerContext* context,
   }
   auto transitions = directory_->store()->LoadTransitions(request->robot_id(), from - 1);
   if (!transitions.ok()) return ToGrpc(transitions.status());
+  WriteWatch::Call watched(write_watch_, context,
+                           absl::StrFormat("export of robot \"%s\"", (*entry)->spec.name()));
   v1::TransitionBatch batch;
   auto send = [&] {
-    const bool ok = writer->Write(batch);
+    const bool ok = watched.Write(writer, batch);
     batch.Clear();
     return ok;
   };

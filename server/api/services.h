@@ -9,6 +9,7 @@
 #include "foray/v1/registry.grpc.pb.h"
 #include "foray/v1/session.grpc.pb.h"
 #include "server/api/directory.h"
+#include "server/api/write_watch.h"
 #include "server/sched/plan_gate.h"
 #include "server/sched/rate_limit.h"
 
@@ -43,10 +44,13 @@ struct SessionLimits {
 
 class SessionService final : public v1::RobotSession::Service {
  public:
-  // `gate` admits plans to the cores; both must outlive the service.
-  SessionService(RobotDirectory* directory, sched::PlanGate* gate, SessionLimits limits = {})
+  // `gate` admits plans to the cores; `write_watch` (may be null) ends sessions whose client
+  // stops reading. All must outlive the service.
+  SessionService(RobotDirectory* directory, sched::PlanGate* gate, SessionLimits limits = {},
+                 WriteWatch* write_watch = nullptr)
       : directory_(directory),
         gate_(gate),
+        write_watch_(write_watch),
         plan_limit_(limits.plans_per_s, 2.0 * std::max(1.0, limits.plans_per_s)),
         transition_limit_(limits.transitions_per_s, 2.0 * std::max(1.0, limits.transitions_per_s)) {}
 
@@ -66,6 +70,7 @@ class SessionService final : public v1::RobotSession::Service {
 
   RobotDirectory* const directory_;
   sched::PlanGate* const gate_;
+  WriteWatch* const write_watch_;
   sched::RateLimit plan_limit_;
   sched::RateLimit transition_limit_;
 };
@@ -98,9 +103,11 @@ class ModelsService final : public v1::Models::Service {
 // robot's own token for that robot; ExportTransitions the admin or the robot's own token.
 class MonitoringService final : public v1::Monitoring::Service {
  public:
-  // `poll` is how often a watch looks for new records.
-  explicit MonitoringService(RobotDirectory* directory, absl::Duration poll = absl::Milliseconds(200))
-      : directory_(directory), poll_(poll) {}
+  // `poll` is how often a watch looks for new records; `write_watch` (may be null) ends
+  // streams whose client stops reading.
+  explicit MonitoringService(RobotDirectory* directory, absl::Duration poll = absl::Milliseconds(200),
+                             WriteWatch* write_watch = nullptr)
+      : directory_(directory), poll_(poll), write_watch_(write_watch) {}
 
   grpc::Status GetProgress(grpc::ServerContext* context, const v1::GetProgressRequest* request,
                            v1::ProgressSnapshot* response) override;
@@ -117,6 +124,7 @@ class MonitoringService final : public v1::Monitoring::Service {
 
   RobotDirectory* const directory_;
   const absl::Duration poll_;
+  WriteWatch* const write_watch_;
 };
 
 }  // namespace foray::api

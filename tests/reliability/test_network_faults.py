@@ -7,15 +7,18 @@ import os
 import queue
 import sqlite3
 import sys
+import tempfile
 import threading
 import time
 
 import grpc
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "server"))
-from conftest import forayd  # noqa: F401,E402  (the fixture)
+from conftest import Forayd, forayd  # noqa: F401,E402  (the fixture)
 from test_service import Client, spec, transitions  # noqa: E402
 
+from foray.v1 import monitoring_pb2 as mon  # noqa: E402
+from foray.v1 import monitoring_pb2_grpc as mon_grpc  # noqa: E402
 from foray.v1 import session_pb2 as ses  # noqa: E402
 from foray.v1 import session_pb2_grpc  # noqa: E402
 from foray.v1 import types_pb2 as t  # noqa: E402
@@ -93,6 +96,51 @@ def test_a_client_that_does_not_read_is_held_back_and_memory_stays_bounded(foray
     finally:
         db.close()
     assert count == distinct and count <= 200 + stalled_at
+
+
+def test_a_stream_left_unread_is_ended_after_the_write_timeout():
+    """A client that stays connected but never reads leaves the server's write blocked (flow
+    control), holding a handler thread; with --stalled_write_timeout_s the server cancels that
+    stream, names it in its log, and keeps serving. Shown with an export of 12,000 transitions
+    of a 100-D robot (about 20 MB, far beyond the client's receive window); sessions and progress
+    watches go through the same watch (server/api/write_watch.h)."""
+    with tempfile.TemporaryDirectory(prefix="foray-test-") as data_dir:
+        server = Forayd(data_dir, ["--stalled_write_timeout_s=2"])
+        try:
+            c = Client(server)
+            robot = c.register(spec("unread", 100, 1, min_transitions=10 ** 6))
+            for first in range(1, 12_001, 2000):
+                c.append(robot, transitions(100, 1, first, 2000))
+            auth = [("authorization", f"Bearer {robot.token}")]
+            stub = mon_grpc.MonitoringStub(c.channel)
+            started = time.monotonic()
+            call = stub.ExportTransitions(mon.ExportTransitionsRequest(robot_id=robot.robot.robot_id),
+                                          metadata=auth)  # never read
+            # The server names the stream it ended in its log (bounded wait).
+            deadline = started + 60
+            while "ended the export" not in server.output() and time.monotonic() < deadline:
+                time.sleep(0.1)
+            took = time.monotonic() - started
+            log = server.output()
+            assert 'ended the export of robot "unread"' in log and "--stalled_write_timeout_s" in log, log
+            print(f"\nunread export ended by the server after {took:.1f} s")
+            assert 2.0 <= took < 30
+            # What reached the client's buffers before is still there, then the cancellation.
+            received = 0
+            try:
+                for b in call:
+                    received += len(b.transitions)
+                raise AssertionError("the export completed; the server's write never stalled")
+            except grpc.RpcError as e:
+                assert e.code() == grpc.StatusCode.CANCELLED, e
+            assert received < 12_000
+            # The server still serves the robot, and an export that is read goes through.
+            rows = [t for b in stub.ExportTransitions(
+                mon.ExportTransitionsRequest(robot_id=robot.robot.robot_id, from_seq=11_001),
+                metadata=auth) for t in b.transitions]
+            assert [r.seq for r in rows] == list(range(11_001, 12_001))
+        finally:
+            server.stop()
 
 
 def test_a_dropped_stream_resumes_with_a_stale_seq_and_loses_nothing(forayd):  # noqa: F811
