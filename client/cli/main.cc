@@ -181,7 +181,9 @@ int Status(v1::Monitoring::Stub& monitoring, const std::string& token, const std
   const v1::RobotProgress& p = snapshot.robots(0);
   absl::PrintF("%s (%s)%s\n", p.name().c_str(), p.robot_id().c_str(), p.archived() ? " archived" : "");
   absl::PrintF("  transitions %d, episodes %d, model v%d%s\n", p.transitions(), p.episodes(),
-              p.model_version(), p.queued_training() > 0 ? " (training)" : "");
+              p.model_version(),
+              p.training() ? " (training)" : (p.queued_training() > 0 ? " (training due)" : ""));
+  if (p.queued_plans() > 0) absl::PrintF("  plans waiting for a core: %d\n", p.queued_plans());
   if (p.has_last_training()) {
     absl::PrintF("  last training: %d epochs on %d transitions, holdout NLL %.4f, MSE %.4f\n",
                 p.last_training().epochs(), p.last_training().transitions(),
@@ -242,7 +244,7 @@ int Watch(v1::Monitoring::Stub& monitoring, const std::string& token, const std:
                   Header().c_str(), "coverage of the state grid");
       for (const auto& [id, p] : latest) {
         absl::PrintF("%s  %s%s\n", Row(p), Bar(Coverage(p.coverage()), 20),
-                     p.queued_training() > 0 ? "  training..." : "");
+                     p.training() ? "  training..." : "");
       }
     }
     std::fflush(stdout);

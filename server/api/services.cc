@@ -84,7 +84,9 @@ absl::Status SessionService::Plan(const RobotEntry& entry, const v1::PlanRequest
         entry.spec.name(), plan_limit_.rate()));
   }
   // The deadline counts from arrival: time spent waiting for a core is the plan's own.
+  entry.runtime->AddPlansWaiting(1);
   absl::StatusOr<sched::PlanGate::Ticket> ticket = gate_->Enter(arrived + input->budget);
+  entry.runtime->AddPlansWaiting(-1);
   if (!ticket.ok()) return ticket.status();
   input->budget -= absl::Now() - arrived;
   // Idle cores join this plan: its rollouts are split over them.
@@ -531,7 +533,9 @@ v1::RobotProgress ProgressToWire(const RobotEntry& entry) {
   l->set_p90_ms(p.p90_ms);
   l->set_p99_ms(p.p99_ms);
   l->set_deadline_misses(p.deadline_misses);
-  out.set_queued_training(p.status.training ? 1 : 0);
+  out.set_queued_plans(static_cast<uint32_t>(std::max(0, p.plans_waiting)));
+  out.set_queued_training(p.training_due ? 1 : 0);
+  out.set_training(p.status.training);
   out.set_archived(entry.archived);
   return out;
 }

@@ -103,6 +103,8 @@ ProgressView RobotRuntime::Progress() const {
   v.model = published_;
   v.plans = plans_;
   v.deadline_misses = deadline_misses_;
+  v.plans_waiting = plans_waiting_.load(std::memory_order_relaxed);
+  v.training_due = WantsTrainingLocked();
   if (!latencies_ms_.empty()) {
     std::vector<double> sorted = latencies_ms_;
     std::sort(sorted.begin(), sorted.end());
@@ -312,6 +314,10 @@ void RobotRuntime::RequestTraining() {
 
 bool RobotRuntime::WantsTraining() const {
   absl::MutexLock lock(&mu_);
+  return WantsTrainingLocked();
+}
+
+bool RobotRuntime::WantsTrainingLocked() const {
   if (training_) return false;
   if (training_requested_ && rewards_.size() >= 2) return true;
   if (static_cast<int>(rewards_.size()) < config_.policy.min_transitions) return false;

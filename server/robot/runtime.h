@@ -10,6 +10,7 @@
 #ifndef FORAY_SERVER_ROBOT_RUNTIME_H_
 #define FORAY_SERVER_ROBOT_RUNTIME_H_
 
+#include <atomic>
 #include <cstdint>
 #include <functional>
 #include <memory>
@@ -98,6 +99,10 @@ struct ProgressView {
   uint64_t plans = 0;
   double p50_ms = 0, p90_ms = 0, p99_ms = 0;
   uint64_t deadline_misses = 0;
+  // This robot's plans waiting for a core now, and whether a training round is due but has not
+  // started (the trainer is busy with another robot or paused for plans).
+  int plans_waiting = 0;
+  bool training_due = false;
 };
 
 class RobotRuntime {
@@ -135,6 +140,8 @@ class RobotRuntime {
   void RequestTraining();
   // Whether the training policy (or a request) asks for a round now.
   bool WantsTraining() const;
+  // Counts this robot's plans waiting for a core (the services call it around the plan gate).
+  void AddPlansWaiting(int delta) { plans_waiting_.fetch_add(delta, std::memory_order_relaxed); }
   // Trains one round on the caller's thread (warm start from the published model), publishes
   // the new version and writes its checkpoint. `between_epochs` (may be empty) runs after every
   // epoch: the scheduler pauses training there while plans need the cores.
@@ -150,6 +157,7 @@ class RobotRuntime {
  private:
   model::TransitionData Snapshot() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
   RobotStatus StatusLocked() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
+  bool WantsTrainingLocked() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
   absl::StatusOr<std::shared_ptr<const PublishedModel>> Publish(model::Ensemble ensemble,
                                                                 model::TrainingReport report,
                                                                 double seconds);
@@ -158,6 +166,7 @@ class RobotRuntime {
   const std::string robot_id_;
   store::Store* const store_;
 
+  std::atomic<int> plans_waiting_{0};
   absl::Mutex append_mu_ ABSL_ACQUIRED_BEFORE(mu_);
   // Serialises publishing: choosing the next version, writing its checkpoint, the swap.
   absl::Mutex publish_mu_ ABSL_ACQUIRED_BEFORE(mu_);

@@ -86,6 +86,11 @@ std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanG
           "Plan compute time over the last 1000 plans, by quantile.",
           absl::StrCat(robot, ",quantile=\"", q, "\""), v);
     }
+    add("foray_robot_plans_waiting", "gauge", "The robot's plans waiting for a core now.", robot,
+        static_cast<double>(p.plans_waiting));
+    add("foray_robot_training_due", "gauge",
+        "1 when a training round is due but has not started (the trainer is busy or paused).",
+        robot, p.training_due ? 1.0 : 0.0);
     add("foray_robot_coverage_ratio", "gauge",
         "Fraction of the coverage grid's cells the robot has visited.", robot, CoverageFraction(p));
     if (p.model) {
@@ -133,6 +138,8 @@ std::string RobotsJson(const api::RobotDirectory& directory) {
                     ", \"transitions\": ", p.status.transitions, ", \"episodes\": ", p.episodes,
                     ", \"model_version\": ", p.status.model_version,
                     ", \"training\": ", p.status.training ? "true" : "false",
+                    ", \"training_due\": ", p.training_due ? "true" : "false",
+                    ", \"plans_waiting\": ", p.plans_waiting,
                     ", \"plans\": ", p.plans, ", \"plan_p50_ms\": ", Number(p.p50_ms),
                     ", \"plan_p99_ms\": ", Number(p.p99_ms),
                     ", \"deadline_misses\": ", p.deadline_misses,

@@ -478,8 +478,33 @@ def test_overload_answers_resource_exhausted_and_nothing_hangs(forayd):
         except grpc.RpcError as e:
             return (e.code(), e.details())
 
-    with ThreadPoolExecutor(max_workers=40) as pool:
-        results = list(pool.map(one, range(40), timeout=120))
+    from foray.v1 import monitoring_pb2 as mon
+    from foray.v1 import monitoring_pb2_grpc
+
+    # Meanwhile the robot's progress shows its plans waiting for a core (queued_plans).
+    monitoring = monitoring_pb2_grpc.MonitoringStub(c.channel)
+    auth = [("authorization", f"Bearer {robot.token}")]
+    queued, done = [], threading.Event()
+
+    def watch_queue():
+        while not done.is_set() and len(queued) < 2000:
+            snap = monitoring.GetProgress(mon.GetProgressRequest(robot_id=robot.robot.robot_id),
+                                          metadata=auth)
+            queued.append(snap.robots[0].queued_plans)
+            time.sleep(0.01)
+
+    watcher = threading.Thread(target=watch_queue)
+    watcher.start()
+    try:
+        with ThreadPoolExecutor(max_workers=40) as pool:
+            results = list(pool.map(one, range(40), timeout=120))
+    finally:
+        done.set()
+        watcher.join()
+    after = monitoring.GetProgress(mon.GetProgressRequest(robot_id=robot.robot.robot_id),
+                                   metadata=auth).robots[0].queued_plans
+    print(f"queued_plans seen: max {max(queued)}, after {after}")
+    assert max(queued) >= 1 and after == 0
     refused = [r for r in results if r != "ok"]
     print(f"overload: {results.count('ok')} admitted, {len(refused)} refused")
     assert "bad" not in results
