@@ -60,9 +60,30 @@ absl::Status FullError(absl::string_view what) {
             "nothing of this write was stored"));
 }
 
+// A write the disk refused (an I/O error, or a file system that turned read-only after a disk
+// error): the transaction is rolled back, so nothing of it is stored.
+absl::Status DiskError(sqlite3* db, absl::string_view what) {
+  const int os_error = sqlite3_system_errno(db);
+  return absl::UnavailableError(absl::StrCat(
+      what, os_error != 0 ? absl::StrCat(" (", std::strerror(os_error), ")") : std::string(),
+      ": the disk of the data directory failed a write or turned read-only; nothing of this "
+      "write was stored"));
+}
+
+// What a failed SQLite call on `db` returned, as a status naming `what` (which starts with
+// "store: ").
+absl::Status ErrorOf(sqlite3* db, int code, const std::string& what) {
+  switch (code & 0xff) {
+    case SQLITE_FULL: return FullError(what);
+    case SQLITE_IOERR:
+    case SQLITE_READONLY:
+    case SQLITE_CANTOPEN: return DiskError(db, what);
+    default: return absl::UnavailableError(what);
+  }
+}
+
 absl::Status SqlError(sqlite3* db, absl::string_view what) {
-  const std::string message = absl::StrCat("store: ", what, ": ", sqlite3_errmsg(db));
-  return (sqlite3_errcode(db) & 0xff) == SQLITE_FULL ? FullError(message) : absl::UnavailableError(message);
+  return ErrorOf(db, sqlite3_extended_errcode(db), absl::StrCat("store: ", what, ": ", sqlite3_errmsg(db)));
 }
 
 // A prepared statement, finalised on destruction.
@@ -112,7 +133,7 @@ absl::Status Exec(sqlite3* db, const char* sql) {
   if (code != SQLITE_OK) {
     const std::string what = absl::StrCat("store: ", error != nullptr ? error : "error");
     sqlite3_free(error);
-    return (code & 0xff) == SQLITE_FULL ? FullError(what) : absl::UnavailableError(what);
+    return ErrorOf(db, code, what);
   }
   return absl::OkStatus();
 }

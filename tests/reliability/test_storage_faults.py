@@ -130,3 +130,53 @@ def test_a_read_only_data_directory_is_reported_by_name(tmp_path):
     finally:
         subprocess.run(["umount", str(view)], capture_output=True)
     assert count(str(data)) == (20, 20)  # the data is untouched
+
+
+def test_a_disk_that_turns_read_only_while_serving(tmp_path):
+    """The file system under a running server turns read-only, as ext4 does after a disk error
+    (errors=remount-ro; triggered here through ext4's trigger_fs_error on a loop-mounted image):
+    writes are refused with a clear error and acknowledge nothing, reads and plans go on, and the
+    server still stops cleanly."""
+    image, mnt = tmp_path / "disk.img", tmp_path / "mnt"
+    mnt.mkdir()
+    with open(image, "wb") as f:
+        f.truncate(64 * 1024 * 1024)
+    if subprocess.run(["mkfs.ext4", "-q", "-F", str(image)], capture_output=True).returncode != 0:
+        pytest.skip("mkfs.ext4 is not available here")
+    if subprocess.run(["mount", "-o", "loop,errors=remount-ro", str(image), str(mnt)],
+                      capture_output=True).returncode != 0:
+        pytest.skip("no permission to loop-mount here")
+    server = None
+    try:
+        device = os.path.basename(subprocess.run(["findmnt", "-n", "-o", "SOURCE", str(mnt)],
+                                                 capture_output=True, text=True).stdout.strip())
+        trigger = f"/sys/fs/ext4/{device}/trigger_fs_error"
+        if not os.path.exists(trigger):
+            pytest.skip("ext4's trigger_fs_error is not available here")
+        data = mnt / "foray-data"
+        data.mkdir()
+        server = Forayd(str(data))
+        c = Client(server)
+        robot = c.register(spec("keeper", 2, 1, min_transitions=10 ** 6))
+        assert c.append(robot, transitions(2, 1, 1, 20)).durable_seq == 20
+        with open(trigger, "w") as f:
+            f.write("foray storage-fault test\n")
+        options = subprocess.run(["findmnt", "-n", "-o", "OPTIONS", str(mnt)], capture_output=True,
+                                 text=True).stdout
+        assert "emergency_ro" in options or options.startswith("ro"), options
+        with pytest.raises(grpc.RpcError) as refused:
+            c.append(robot, transitions(2, 1, 21, 20))
+        print(f"\nwrite after the disk turned read-only: {refused.value.code()} {refused.value.details()}")
+        assert "nothing of this write was stored" in refused.value.details(), refused.value.details()
+        assert "read-only" in refused.value.details().lower() or "readonly" in refused.value.details().lower()
+        # Reads and plans go on; nothing beyond what was acknowledged.
+        assert c.get(robot.robot.robot_id).last_seq == 20
+        assert c.plan(robot, [0.0, 0.0]).steps
+        code = server.stop()
+        server = None
+        assert code == 0, code
+        assert count(str(data)) == (20, 20)
+    finally:
+        if server is not None:
+            server.stop()
+        subprocess.run(["umount", str(mnt)], capture_output=True)
