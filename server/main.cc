@@ -40,6 +40,7 @@
 #include "server/api/auth.h"
 #include "server/api/directory.h"
 #include "server/api/services.h"
+#include "server/sched/helper_pool.h"
 #include "server/sched/training_loop.h"
 #include "server/web/web_server.h"
 #include "server/store/store.h"
@@ -245,8 +246,10 @@ int main(int argc, char** argv) {
     return 2;
   }
   foray::api::WriteWatch write_watch(absl::Seconds(stalled_write_s));
+  // Threads that join a plan on the cores the gate lends it (one per core beyond the first).
+  foray::sched::HelperPool helpers(gate.slots() - 1);
   foray::api::SessionService session(&directory, &gate, {plans_per_s, transitions_per_s},
-                                     &write_watch);
+                                     &write_watch, &helpers);
   foray::api::ModelsService models(&directory);
   foray::api::MonitoringService monitoring(&directory, absl::Milliseconds(200), &write_watch);
   grpc::ServerBuilder builder;

@@ -24,7 +24,7 @@ cmake -S . -B build-asan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo -DFORAY_PORT
   -DFORAY_SANITIZE="address;undefined" >/dev/null
 cmake --build build-asan --parallel "$(nproc)"
 (cd build-asan && ctest --output-on-failure --parallel "$(nproc)" \
-  -R '^(server\.|client\.|reliability\.|deploy\.|interop\.|Store|PlanGate|SpecFile|TableFiles|RuntimeConcurrency|DirectoryConcurrency)')
+  -R '^(server\.|client\.|reliability\.|deploy\.|interop\.|Store|PlanGate|SpecFile|TableFiles|RuntimeConcurrency|DirectoryConcurrency|HelperPool)')
 
 ./tests/build_tsan_abseil.sh build-tsan-abseil/prefix
 cmake -S . -B build-tsan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo -DFORAY_PORTABLE=ON \
@@ -38,4 +38,4 @@ if ! ldd build-tsan/server/forayd | grep -q "libabsl_synchronization.so.* => $PW
   exit 1
 fi
 (cd build-tsan && ctest --output-on-failure --parallel "$(nproc)" \
-  -R '^(RuntimeConcurrency|DirectoryConcurrency|PlanGate|Store|PlannerTest\.Parallel|server\.|client\.|reliability\.(network_faults|rate_limits|bad_input|storage_faults)|interop\.)')
+  -R '^(RuntimeConcurrency|DirectoryConcurrency|HelperPool|PlanGate|Store|PlannerTest\.Parallel|server\.|client\.|reliability\.(network_faults|rate_limits|bad_input|storage_faults)|interop\.)')

@@ -10,6 +10,7 @@
 #include "foray/v1/session.grpc.pb.h"
 #include "server/api/directory.h"
 #include "server/api/write_watch.h"
+#include "server/sched/helper_pool.h"
 #include "server/sched/plan_gate.h"
 #include "server/sched/rate_limit.h"
 
@@ -46,11 +47,14 @@ class SessionService final : public v1::RobotSession::Service {
  public:
   // `gate` admits plans to the cores; `write_watch` (may be null) ends sessions whose client
   // stops reading. All must outlive the service.
+  // `helpers` (may be null: threads started per plan) runs the rollouts a plan splits over the
+  // idle cores the gate lends it.
   SessionService(RobotDirectory* directory, sched::PlanGate* gate, SessionLimits limits = {},
-                 WriteWatch* write_watch = nullptr)
+                 WriteWatch* write_watch = nullptr, sched::HelperPool* helpers = nullptr)
       : directory_(directory),
         gate_(gate),
         write_watch_(write_watch),
+        helpers_(helpers),
         plan_limit_(limits.plans_per_s, 2.0 * std::max(1.0, limits.plans_per_s)),
         transition_limit_(limits.transitions_per_s, 2.0 * std::max(1.0, limits.transitions_per_s)) {}
 
@@ -71,6 +75,7 @@ class SessionService final : public v1::RobotSession::Service {
   RobotDirectory* const directory_;
   sched::PlanGate* const gate_;
   WriteWatch* const write_watch_;
+  sched::HelperPool* const helpers_;
   sched::RateLimit plan_limit_;
   sched::RateLimit transition_limit_;
 };

@@ -1,7 +1,7 @@
 // Planner benchmark, C++ side: the SGEMM peak (Eigen, one thread), then one plan (iCEM over
 // particle rollouts through an ensemble, reward + pairwise-KL information gain) at the "small"
-// and "arm" configurations, on one thread and split over two (the planner's ParallelFor with
-// plain threads standing in for the server's worker pool). Prints one JSON object per figure; run_plan_bench.sh runs it beside
+// and "arm" configurations, on one thread and split over two (the planner's ParallelFor on
+// the server's helper pool, server/sched/helper_pool.h). Prints one JSON object per figure; run_plan_bench.sh runs it beside
 // the PyTorch reference (plan_bench_torch.py) in the same run.
 //
 //   foray_plan_bench [repeats] [config name, default all]
@@ -17,6 +17,7 @@
 #include "Eigen/Core"
 #include "core/model/ensemble.h"
 #include "core/plan/planner.h"
+#include "server/sched/helper_pool.h"
 #include "tests/bench/bench_common.h"
 
 namespace {
@@ -71,16 +72,12 @@ int main(int argc, char** argv) {
         Eigen::VectorXf::Constant(c.action_dim, -1.0f), Eigen::VectorXf::Constant(c.action_dim, 1.0f));
     const Eigen::VectorXf state = Random(c.state_dim, 1, 9).col(0) * 0.1f;
 
+    foray::sched::HelperPool pool(1);  // the server's helper threads (one per extra core)
     for (int threads : {1, 2}) {
     foray::plan::PlanContext context;
     if (threads > 1) {
       context.tasks = threads;
-      context.parallel = [](int n, const std::function<void(int)>& task) {
-        std::vector<std::thread> workers;
-        for (int i = 1; i < n; ++i) workers.emplace_back(task, i);
-        task(0);
-        for (std::thread& w : workers) w.join();
-      };
+      context.parallel = pool.ParallelFor();
     }
     std::vector<double> ms, model_ms;
     double flops = 0;

@@ -1,6 +1,6 @@
 // The server's concurrency without the network: what the rpc threads and the trainer thread do
 // to one robot at the same time, in one process. A writer appends transitions (and resends some,
-// as a reconnecting client does), two planners plan through the plan gate with borrowed helper
+// as a reconnecting client does), two planners plan through the plan gate with the helper pool's
 // threads, the background trainer retrains and publishes new versions, and a monitor reads the
 // status, the progress and the settings while they change. Built for the ThreadSanitizer run of
 // tests/run_sanitizers.sh, where every unordered access is a failure; in the plain build it
@@ -20,6 +20,7 @@
 #include "gtest/gtest.h"
 #include "server/api/directory.h"
 #include "server/robot/runtime.h"
+#include "server/sched/helper_pool.h"
 #include "server/sched/plan_gate.h"
 #include "server/sched/training_loop.h"
 #include "server/store/store.h"
@@ -84,6 +85,7 @@ TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
   auto runtime = std::make_shared<robot::RobotRuntime>(record.robot_id, SmallRobot(), store->get());
   ASSERT_TRUE(runtime->Load().ok());
   sched::PlanGate gate(/*slots=*/2, /*max_waiting=*/8);
+  sched::HelperPool helpers(gate.slots() - 1);  // as forayd has it
   sched::TrainingLoop trainer([runtime] { return std::vector<std::shared_ptr<robot::RobotRuntime>>{runtime}; },
                               &gate, absl::Milliseconds(5), absl::Milliseconds(50));
   trainer.Start();
@@ -123,12 +125,7 @@ TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
       const int threads = 1 + ticket->Borrow(gate.slots() - 1);
       if (threads > 1) {
         input.context.tasks = threads;
-        input.context.parallel = [](int tasks, const std::function<void(int)>& task) {
-          std::vector<std::thread> helpers;
-          for (int i = 1; i < tasks; ++i) helpers.emplace_back(task, i);
-          task(0);
-          for (std::thread& h : helpers) h.join();
-        };
+        input.context.parallel = helpers.ParallelFor();
       }
       absl::StatusOr<robot::PlanOutcome> outcome = runtime->Plan(std::move(input));
       if (!outcome.ok()) {
