@@ -248,8 +248,8 @@ int main(int argc, char** argv) {
   foray::api::WriteWatch write_watch(absl::Seconds(stalled_write_s));
   // Threads that join a plan on the cores the gate lends it (one per core beyond the first).
   foray::sched::HelperPool helpers(gate.slots() - 1);
-  foray::api::SessionService session(&directory, &gate, {plans_per_s, transitions_per_s},
-                                     &write_watch, &helpers);
+  foray::api::SessionService session(&directory, &gate, &helpers, {plans_per_s, transitions_per_s},
+                                     &write_watch);
   foray::api::ModelsService models(&directory);
   foray::api::MonitoringService monitoring(&directory, absl::Milliseconds(200), &write_watch);
   grpc::ServerBuilder builder;

@@ -93,16 +93,7 @@ absl::Status SessionService::Plan(const RobotEntry& entry, const v1::PlanRequest
   const int threads = 1 + ticket->Borrow(gate_->slots() - 1);
   if (threads > 1) {
     input->context.tasks = threads;
-    if (helpers_ != nullptr) {
-      input->context.parallel = helpers_->ParallelFor();
-    } else {
-      input->context.parallel = [](int n, const std::function<void(int)>& task) {
-        std::vector<std::thread> helpers;
-        for (int i = 1; i < n; ++i) helpers.emplace_back(task, i);
-        task(0);
-        for (std::thread& h : helpers) h.join();
-      };
-    }
+    input->context.parallel = helpers_->ParallelFor();
   }
   absl::StatusOr<robot::PlanOutcome> outcome = entry.runtime->Plan(*std::move(input));
   if (!outcome.ok()) return outcome.status();

@@ -45,16 +45,15 @@ struct SessionLimits {
 
 class SessionService final : public v1::RobotSession::Service {
  public:
-  // `gate` admits plans to the cores; `write_watch` (may be null) ends sessions whose client
-  // stops reading. All must outlive the service.
-  // `helpers` (may be null: threads started per plan) runs the rollouts a plan splits over the
-  // idle cores the gate lends it.
-  SessionService(RobotDirectory* directory, sched::PlanGate* gate, SessionLimits limits = {},
-                 WriteWatch* write_watch = nullptr, sched::HelperPool* helpers = nullptr)
+  // `gate` admits plans to the cores; `helpers` runs the rollouts a plan splits over the idle
+  // cores the gate lends it; `write_watch` (may be null) ends sessions whose client stops
+  // reading. All must outlive the service.
+  SessionService(RobotDirectory* directory, sched::PlanGate* gate, sched::HelperPool* helpers,
+                 SessionLimits limits = {}, WriteWatch* write_watch = nullptr)
       : directory_(directory),
         gate_(gate),
-        write_watch_(write_watch),
         helpers_(helpers),
+        write_watch_(write_watch),
         plan_limit_(limits.plans_per_s, 2.0 * std::max(1.0, limits.plans_per_s)),
         transition_limit_(limits.transitions_per_s, 2.0 * std::max(1.0, limits.transitions_per_s)) {}
 
@@ -74,8 +73,8 @@ class SessionService final : public v1::RobotSession::Service {
 
   RobotDirectory* const directory_;
   sched::PlanGate* const gate_;
-  WriteWatch* const write_watch_;
   sched::HelperPool* const helpers_;
+  WriteWatch* const write_watch_;
   sched::RateLimit plan_limit_;
   sched::RateLimit transition_limit_;
 };

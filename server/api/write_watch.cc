@@ -19,11 +19,6 @@ WriteWatch::~WriteWatch() {
   if (thread_.joinable()) thread_.join();
 }
 
-uint64_t WriteWatch::cancelled() const {
-  absl::MutexLock lock(&mu_);
-  return cancelled_;
-}
-
 void WriteWatch::Run() {
   absl::MutexLock lock(&mu_);
   auto stopping = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return stopping_; };
@@ -34,7 +29,6 @@ void WriteWatch::Run() {
       // Under the lock: the handler cannot have returned (its Call waits for the lock).
       entry.context->TryCancel();
       entry.cancelled = true;
-      ++cancelled_;
       std::fprintf(stderr,
                    "forayd: ended the %s: its client has not read for %s (flow control; "
                    "forayd --stalled_write_timeout_s)\n",
@@ -47,9 +41,9 @@ WriteWatch::Call::Call(WriteWatch* watch, grpc::ServerContextBase* context, std:
     : watch_(watch != nullptr && watch->limit_ > absl::ZeroDuration() ? watch : nullptr) {
   if (watch_ == nullptr) return;
   absl::MutexLock lock(&watch_->mu_);
-  Entry& entry = watch_->calls_[this];
-  entry.context = context;
-  entry.what = std::move(what);
+  entry_ = &watch_->calls_[this];
+  entry_->context = context;
+  entry_->what = std::move(what);
 }
 
 WriteWatch::Call::~Call() {
@@ -61,13 +55,13 @@ WriteWatch::Call::~Call() {
 void WriteWatch::Call::Begin() {
   if (watch_ == nullptr) return;
   absl::MutexLock lock(&watch_->mu_);
-  watch_->calls_[this].writing_since = absl::Now();
+  entry_->writing_since = absl::Now();
 }
 
 void WriteWatch::Call::End() {
   if (watch_ == nullptr) return;
   absl::MutexLock lock(&watch_->mu_);
-  watch_->calls_[this].writing_since = absl::InfiniteFuture();
+  entry_->writing_since = absl::InfiniteFuture();
 }
 
 }  // namespace foray::api

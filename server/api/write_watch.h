@@ -12,7 +12,6 @@
 #ifndef FORAY_SERVER_API_WRITE_WATCH_H_
 #define FORAY_SERVER_API_WRITE_WATCH_H_
 
-#include <cstdint>
 #include <map>
 #include <string>
 #include <thread>
@@ -25,16 +24,20 @@
 namespace foray::api {
 
 class WriteWatch {
+ private:
+  struct Entry {
+    grpc::ServerContextBase* context = nullptr;
+    std::string what;
+    absl::Time writing_since = absl::InfiniteFuture();  // InfiniteFuture: not writing
+    bool cancelled = false;
+  };
+
  public:
   // `limit` <= 0 turns the watch off (writes are not timed). `poll`: how often it looks.
   explicit WriteWatch(absl::Duration limit, absl::Duration poll = absl::Milliseconds(250));
   WriteWatch(const WriteWatch&) = delete;
   WriteWatch& operator=(const WriteWatch&) = delete;
   ~WriteWatch();
-
-  absl::Duration limit() const { return limit_; }
-  // Calls cancelled so far because a write stalled.
-  uint64_t cancelled() const;
 
   // One call's registration, for the handler's lifetime (the watch never touches the context
   // after the Call is destroyed).
@@ -59,23 +62,16 @@ class WriteWatch {
     void Begin();
     void End();
     WriteWatch* const watch_;
+    Entry* entry_ = nullptr;  // this call's record in the watch (map nodes do not move)
   };
 
  private:
-  struct Entry {
-    grpc::ServerContextBase* context = nullptr;
-    std::string what;
-    absl::Time writing_since = absl::InfiniteFuture();  // InfiniteFuture: not writing
-    bool cancelled = false;
-  };
-
   void Run();
 
   const absl::Duration limit_;
   const absl::Duration poll_;
   mutable absl::Mutex mu_;
   std::map<const Call*, Entry> calls_ ABSL_GUARDED_BY(mu_);
-  uint64_t cancelled_ ABSL_GUARDED_BY(mu_) = 0;
   bool stopping_ ABSL_GUARDED_BY(mu_) = false;
   std::thread thread_;
 };

@@ -30,8 +30,6 @@ class HelperPool {
   HelperPool& operator=(const HelperPool&) = delete;
   ~HelperPool();  // joins the threads; no Run may be in progress
 
-  int threads() const { return static_cast<int>(threads_.size()); }
-
   // Runs task(i) for every i in [0, tasks) on the caller and the pool; returns when all ran.
   void Run(int tasks, const std::function<void(int)>& task);
 

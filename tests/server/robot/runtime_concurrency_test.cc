@@ -70,10 +70,16 @@ store::TransitionRecord Step(uint64_t seq) {
   return t;
 }
 
-TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
-  const std::string dir = ::testing::TempDir() + "/foray-runtime-concurrency";
+// An empty directory of the test's own under the test temp dir.
+std::string FreshDir(const std::string& name) {
+  const std::string dir = ::testing::TempDir() + "/" + name;
   std::filesystem::remove_all(dir);
   std::filesystem::create_directories(dir);
+  return dir;
+}
+
+TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
+  const std::string dir = FreshDir("foray-runtime-concurrency");
   auto store = store::Store::Open(dir + "/foray.db");
   ASSERT_TRUE(store.ok()) << store.status();
   store::RobotRecord record;
@@ -218,9 +224,7 @@ v1::RobotSpec SpecNamed(const std::string& name) {
 // Registrations racing for names and ids while others list and archive: each name and id is
 // taken once, the losers get ALREADY_EXISTS, and the directory matches the store afterwards.
 TEST(DirectoryConcurrencyTest, RegisterListAndArchiveAtOnce) {
-  const std::string dir = ::testing::TempDir() + "/foray-directory-concurrency";
-  std::filesystem::remove_all(dir);
-  std::filesystem::create_directories(dir);
+  const std::string dir = FreshDir("foray-directory-concurrency");
   auto store = store::Store::Open(dir + "/foray.db");
   ASSERT_TRUE(store.ok()) << store.status();
   api::RobotDirectory directory(store->get(), std::string(64, 'a'));
