@@ -221,13 +221,16 @@ int main(int argc, char** argv) {
   const int cores = plan_threads > 0 ? plan_threads
                                      : static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
   foray::sched::PlanGate gate(cores, /*max_waiting=*/plan_queue > 0 ? plan_queue : 4 * cores);
+  // Threads that join a plan on the cores the gate lends it (one per core beyond the first),
+  // and a training step while no plan computes.
+  foray::sched::HelperPool helpers(gate.slots() - 1);
   foray::sched::TrainingLoop trainer([&directory] {
     std::vector<std::shared_ptr<foray::robot::RobotRuntime>> runtimes;
     for (const auto& entry : directory.List(/*include_archived=*/false)) {
       runtimes.push_back(entry->runtime);
     }
     return runtimes;
-  }, &gate);
+  }, &gate, &helpers);
 
   grpc::EnableDefaultHealthCheckService(true);
   grpc::reflection::InitProtoReflectionServerBuilderPlugin();
@@ -246,8 +249,6 @@ int main(int argc, char** argv) {
     return 2;
   }
   foray::api::WriteWatch write_watch(absl::Seconds(stalled_write_s));
-  // Threads that join a plan on the cores the gate lends it (one per core beyond the first).
-  foray::sched::HelperPool helpers(gate.slots() - 1);
   foray::api::SessionService session(&directory, &gate, &helpers, {plans_per_s, transitions_per_s},
                                      &write_watch);
   foray::api::ModelsService models(&directory);

@@ -11,11 +11,13 @@ namespace {
 
 constexpr double kHalfLog2Pi = 0.91893853320467274178;  // 0.5 * ln(2 pi)
 
-// softplus(x) = ln(1 + e^x), evaluated without overflow.
+// softplus(x) = ln(1 + e^x) = max(x, 0) + ln(1 + e^-|x|), evaluated without overflow. ln(1 + t)
+// rather than log1p(t): Eigen vectorises log but not log1p, and the two differ only where t is
+// below float epsilon, by less than t (under 1.2e-7 absolute).
 template <typename Derived>
 auto Softplus(const Eigen::ArrayBase<Derived>& x) {
   using S = typename Derived::Scalar;
-  return x.max(S(0)) + (-(x.abs())).exp().log1p();
+  return x.max(S(0)) + (S(1) + (-(x.abs())).exp()).log();
 }
 
 template <typename Derived>
@@ -42,21 +44,29 @@ void ApplyActivation(Activation activation, Matrix* z) {
   }
 }
 
-// d act(z) / dz, elementwise.
+// In place: z <- act(z), and *slope <- act'(z) at the old z, elementwise.
 template <typename Matrix>
-Matrix ActivationDerivative(Activation activation, const Matrix& z) {
+void ActivateWithSlope(Activation activation, Matrix* z, Matrix* slope) {
   using S = typename Matrix::Scalar;
+  slope->resize(z->rows(), z->cols());
+  auto a = z->array();
+  auto s = slope->array();
   switch (activation) {
-    case Activation::kSilu: {
-      const auto s = Sigmoid(z.array()).eval();
-      return (s * (S(1) + z.array() * (S(1) - s))).matrix();
-    }
+    case Activation::kSilu:
+      // With s = sigmoid(z): silu(z) = z s and silu'(z) = s (1 + z (1 - s)) = s + silu(z) (1 - s).
+      s = (S(1) + (-a).exp()).inverse();
+      a *= s;
+      s += a * (S(1) - s);
+      break;
     case Activation::kRelu:
-      return (z.array() > S(0)).template cast<S>().matrix();
+      s = (a > S(0)).template cast<S>();
+      a = a.max(S(0));
+      break;
     case Activation::kTanh:
-      return (S(1) - z.array().tanh().square()).matrix();
+      a = a.tanh();
+      s = S(1) - a.square();
+      break;
   }
-  return Matrix();
 }
 
 }  // namespace
@@ -195,35 +205,34 @@ Scalar EnsembleT<Scalar>::MemberLoss(int member, const Matrix& x, const Matrix& 
 template <typename Scalar>
 Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, const Matrix& y,
                                                 Scalar* grad_params, Vector* grad_max_log_var,
-                                                Vector* grad_min_log_var) const {
+                                                Vector* grad_min_log_var,
+                                                GradientWorkspace* workspace) const {
   FORAY_CHECK(member >= 0 && member < size(), "member index out of range");
   FORAY_CHECK(x.cols() == input_dim(), "input has the wrong number of columns");
   FORAY_CHECK(y.cols() == output_dim() && y.rows() == x.rows(), "target shape mismatch");
+  GradientWorkspace local;
+  GradientWorkspace& ws = workspace != nullptr ? *workspace : local;
   const Scalar* p = params_.col(member).data();
   const int layers = num_layers();
+  const Eigen::Index rows = x.rows();
+  ws.hidden.resize(layers - 1);
+  ws.slope.resize(layers - 1);
 
-  // Forward, keeping each layer's input h_{l} and hidden pre-activation z_l.
-  std::vector<Matrix> inputs(layers);
-  std::vector<Matrix> pre(layers);
-  inputs[0] = x;
-  Matrix out;
+  // Forward, keeping each hidden layer's output (the next layer's input) and the slope of
+  // its activation, which is all the backward pass needs of it.
+  auto layer_input = [&](int l) -> const Matrix& { return l == 0 ? x : ws.hidden[l - 1]; };
   for (int l = 0; l < layers; ++l) {
     const Eigen::Map<const Matrix> w(p + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
     const Eigen::Map<const Vector> bias(p + bias_offset(l), layer_fan_out(l));
-    Matrix z = inputs[l] * w;
+    Matrix& z = l + 1 < layers ? ws.hidden[l] : ws.out;
+    z.resize(rows, layer_fan_out(l));
+    z.noalias() = layer_input(l) * w;
     z.rowwise() += bias.transpose();
-    if (l + 1 < layers) {
-      pre[l] = z;
-      ApplyActivation(activation_, &z);
-      inputs[l + 1] = std::move(z);
-    } else {
-      out = std::move(z);
-    }
+    if (l + 1 < layers) ActivateWithSlope(activation_, &z, &ws.slope[l]);
   }
   const int d = output_dim();
-  const Eigen::Index rows = x.rows();
-  const auto mean = out.leftCols(d).array();
-  const auto raw = out.rightCols(d).array();
+  const auto mean = ws.out.leftCols(d).array();
+  const auto raw = ws.out.rightCols(d).array();
   const auto max_lv = max_log_var_.transpose().array().replicate(rows, 1).eval();
   const auto min_lv = min_log_var_.transpose().array().replicate(rows, 1).eval();
   const auto u = (max_lv - raw).eval();              // max_lv - raw
@@ -243,22 +252,24 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
   const auto d_lv = (Scalar(0.5) * inv_n * (Scalar(1) - err.square() * inv_var)).eval();
   const auto sig_u = Sigmoid(u).eval();
   const auto sig_v = Sigmoid(v).eval();
-  Matrix d_out(rows, 2 * d);
-  d_out.leftCols(d) = (err * inv_var * inv_n).matrix();
-  d_out.rightCols(d) = (d_lv * sig_v * sig_u).matrix();
+  Matrix& delta = ws.delta;
+  delta.resize(rows, 2 * d);
+  delta.leftCols(d) = (err * inv_var * inv_n).matrix();
+  delta.rightCols(d) = (d_lv * sig_v * sig_u).matrix();
   *grad_max_log_var += (d_lv * sig_v * (Scalar(1) - sig_u)).matrix().colwise().sum().transpose();
   *grad_min_log_var += (d_lv * (Scalar(1) - sig_v)).matrix().colwise().sum().transpose();
 
-  Matrix delta = std::move(d_out);
   for (int l = layers - 1; l >= 0; --l) {
     Eigen::Map<Matrix> gw(grad_params + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
     Eigen::Map<Vector> gb(grad_params + bias_offset(l), layer_fan_out(l));
-    gw.noalias() = inputs[l].transpose() * delta;
+    gw.noalias() = layer_input(l).transpose() * delta;
     gb = delta.colwise().sum().transpose();
     if (l > 0) {
       const Eigen::Map<const Matrix> w(p + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
-      Matrix back = delta * w.transpose();
-      delta = (back.array() * ActivationDerivative(activation_, pre[l - 1]).array()).matrix();
+      ws.back.resize(rows, layer_fan_in(l));
+      ws.back.noalias() = delta * w.transpose();
+      ws.back.array() *= ws.slope[l - 1].array();
+      delta.swap(ws.back);
     }
   }
   return static_cast<Scalar>(loss);

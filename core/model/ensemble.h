@@ -108,9 +108,16 @@ class EnsembleT {
   // x: (rows, input_dim), y: (rows, output_dim), normalised. Writes dL/dparams of the member
   // to grad_params (num_member_params scalars, overwritten) and adds dL/dmax_lv and dL/dmin_lv
   // to *grad_max_log_var and *grad_min_log_var (output_dim each). Returns L.
+  // `workspace` holds the layer buffers between calls (one per thread); null: a fresh one.
+  struct GradientWorkspace {
+    std::vector<Matrix> hidden;  // per hidden layer: act(z_l), the next layer's input
+    std::vector<Matrix> slope;   // per hidden layer: act'(z_l)
+    Matrix out, delta, back;
+  };
   Scalar MemberLossAndGradient(int member, const Matrix& x, const Matrix& y,
                                Scalar* grad_params, Vector* grad_max_log_var,
-                               Vector* grad_min_log_var) const;
+                               Vector* grad_min_log_var,
+                               GradientWorkspace* workspace = nullptr) const;
 
   // L of MemberLossAndGradient without the gradient.
   Scalar MemberLoss(int member, const Matrix& x, const Matrix& y) const;

@@ -228,12 +228,30 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
     ws->bound_min = min_log_var_.replicate(rows, 1).array();
     ws->softplus.resize(n);
   }
+  // Computed in the workspace's own (aligned) arrays and copied out: Eigen splits an
+  // expression over a caller's buffer into scalar and SIMD parts by the buffer's address, and
+  // the scalar and SIMD exp and log may round differently; the result must not depend on where
+  // the caller's buffer lies.
   Eigen::Map<Eigen::ArrayXf> lv(log_var, static_cast<Eigen::Index>(n));
   Eigen::ArrayXf& t = ws->softplus;
   t = ws->bound_max - lv;
-  lv = ws->bound_max - (t.max(0.0f) + (1.0f + (-t.abs()).exp()).log());
-  t = lv - ws->bound_min;
-  lv = ws->bound_min + (t.max(0.0f) + (1.0f + (-t.abs()).exp()).log());
+  t = ws->bound_max - (t.max(0.0f) + (1.0f + (-t.abs()).exp()).log());
+  t = t - ws->bound_min;
+  t = ws->bound_min + (t.max(0.0f) + (1.0f + (-t.abs()).exp()).log());
+  lv = t;
+}
+
+void InferenceEnsemble::ForwardAll(const float* x, int rows, float* mean, float* log_var,
+                                   const ParallelFor& parallel) const {
+  const int blocks = (rows + kBlockRows - 1) / kBlockRows;
+  RunTasks(parallel, members_ * blocks, [&](int task) {
+    const int b = task / blocks;
+    const int r0 = (task % blocks) * kBlockRows;
+    const size_t at = (static_cast<size_t>(b) * rows + r0) * output_dim_;
+    Workspace ws;
+    ForwardMember(b, x + static_cast<size_t>(r0) * input_dim_, std::min(kBlockRows, rows - r0),
+                  mean + at, log_var + at, &ws);
+  });
 }
 
 }  // namespace foray::model

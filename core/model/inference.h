@@ -13,6 +13,7 @@
 #include <vector>
 
 #include "core/model/ensemble.h"
+#include "core/util/parallel.h"
 
 namespace foray::model {
 
@@ -40,6 +41,14 @@ class InferenceEnsemble {
   // outputs: the same numbers as Ensemble::MemberForward up to float rounding.
   void ForwardMember(int member, const float* x, int rows, float* mean, float* log_var,
                      Workspace* workspace) const;
+
+  // Every member at the same `rows` normalised inputs x (rows, input_dim), row-major. Writes
+  // member b's mean and log-variance at mean + b * rows * output_dim (and likewise log_var),
+  // each (rows, output_dim) row-major. Runs one task per member and block of up to kBlockRows
+  // rows through `parallel`; the numbers do not depend on the split.
+  static constexpr int kBlockRows = 256;
+  void ForwardAll(const float* x, int rows, float* mean, float* log_var,
+                  const ParallelFor& parallel) const;
 
  private:
   struct Layer {

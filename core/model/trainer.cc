@@ -10,6 +10,8 @@
 namespace foray::model {
 namespace {
 
+constexpr double kHalfLog2Pi = 0.91893853320467274178;  // 0.5 * ln(2 pi)
+
 absl::Status CheckShape(const char* name, Eigen::Index rows, Eigen::Index cols, Eigen::Index want_rows,
                         Eigen::Index want_cols) {
   if (rows != want_rows || cols != want_cols) {
@@ -32,13 +34,18 @@ absl::Status CheckFinite(const char* name, const Eigen::DenseBase<Derived>& valu
   return absl::OkStatus();
 }
 
-Eigen::MatrixXf GatherRows(const Eigen::MatrixXf& m, const int* rows, int count) {
-  Eigen::MatrixXf out(count, m.cols());
+void GatherRowsInto(const Eigen::MatrixXf& m, const int* rows, int count, Eigen::MatrixXf* out) {
+  out->resize(count, m.cols());
   for (Eigen::Index c = 0; c < m.cols(); ++c) {
     const float* src = m.col(c).data();
-    float* dst = out.col(c).data();
+    float* dst = out->col(c).data();
     for (int i = 0; i < count; ++i) dst[i] = src[rows[i]];
   }
+}
+
+Eigen::MatrixXf GatherRows(const Eigen::MatrixXf& m, const int* rows, int count) {
+  Eigen::MatrixXf out;
+  GatherRowsInto(m, rows, count, &out);
   return out;
 }
 
@@ -143,6 +150,8 @@ absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
   const std::vector<int>& eval_rows = holdout > 0 ? t->holdout_rows_ : t->train_rows_;
   t->holdout_x_ = GatherRows(t->x_, eval_rows.data(), static_cast<int>(eval_rows.size()));
   t->holdout_y_ = GatherRows(t->y_, eval_rows.data(), static_cast<int>(eval_rows.size()));
+  t->holdout_x_rows_ = t->holdout_x_;
+  t->holdout_y_rows_ = t->holdout_y_;
 
   const int n_train = static_cast<int>(t->train_rows_.size());
   t->member_rows_.resize(model.size());
@@ -168,14 +177,32 @@ absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
     *vec = Eigen::VectorXf::Zero(d);
   }
   t->best_ = t->current_;
-  t->best_holdout_nll_ = t->HoldoutNll(t->current_);
+  t->best_holdout_nll_ = t->HoldoutNll(t->current_, {});
   return t;
 }
 
-double EnsembleTrainer::HoldoutNll(const Ensemble& model) const {
-  double sum = 0;
-  for (int b = 0; b < model.size(); ++b) sum += model.MemberLoss(b, holdout_x_, holdout_y_);
-  return sum / model.size();
+double EnsembleTrainer::HoldoutNll(const Ensemble& model, const ParallelFor& parallel) const {
+  // The same loss as Ensemble::MemberLoss, through the inference kernels: this evaluation is a
+  // forward pass of every member over every holdout row, each epoch.
+  const InferenceEnsemble fast(model);
+  const int n = static_cast<int>(holdout_y_rows_.size());  // rows * output_dim
+  Eigen::ArrayXf mean(static_cast<Eigen::Index>(n) * model.size()), log_var(mean.size());
+  fast.ForwardAll(holdout_x_rows_.data(), static_cast<int>(holdout_x_rows_.rows()), mean.data(),
+                  log_var.data(), parallel);
+  const Eigen::Map<const Eigen::ArrayXf> y(holdout_y_rows_.data(), n);
+  Eigen::ArrayXf terms(n);
+  double total = 0;
+  for (int b = 0; b < model.size(); ++b) {
+    const auto mu = mean.segment(static_cast<Eigen::Index>(b) * n, n);
+    const auto lv = log_var.segment(static_cast<Eigen::Index>(b) * n, n);
+    terms = 0.5f * ((mu - y).square() * (-lv).exp() + lv);
+    // A plain loop: Eigen's vectorised sum groups the terms differently for other sizes and
+    // alignments; this sum is the same for any build of the same inputs.
+    double sum = 0;
+    for (int i = 0; i < n; ++i) sum += terms[i];
+    total += sum / n + kHalfLog2Pi;
+  }
+  return total / model.size();
 }
 
 void EnsembleTrainer::AdamStep() {
@@ -201,7 +228,7 @@ void EnsembleTrainer::AdamStep() {
   update(current_.mutable_min_log_var(), grad_min_, m_min_, v_min_, 1.0f);
 }
 
-bool EnsembleTrainer::RunEpoch() {
+bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
   if (done_) return true;
   const int members = current_.size();
   for (std::vector<int>& rows : member_rows_) {
@@ -213,18 +240,29 @@ bool EnsembleTrainer::RunEpoch() {
   const int batch = options_.batch_size;
   const int steps = (rows_per_member + batch - 1) / batch;
   const float penalty = static_cast<float>(options_.log_var_bound_penalty);
+  const Eigen::Index d = current_.output_dim();
+  member_steps_.resize(members);
   double nll_sum = 0;
   for (int s = 0; s < steps; ++s) {
     const int begin = s * batch;
     const int count = std::min(batch, rows_per_member - begin);
+    // Members are independent within a step: each writes its own gradient column and parts.
+    RunTasks(parallel, members, [&](int b) {
+      MemberStep& m = member_steps_[b];
+      const int* rows = member_rows_[b].data() + begin;
+      GatherRowsInto(x_, rows, count, &m.x);
+      GatherRowsInto(y_, rows, count, &m.y);
+      m.grad_max.setZero(d);
+      m.grad_min.setZero(d);
+      m.nll = current_.MemberLossAndGradient(b, m.x, m.y, grad_.col(b).data(), &m.grad_max,
+                                             &m.grad_min, &m.workspace);
+    });
     grad_max_.setZero();
     grad_min_.setZero();
-    for (int b = 0; b < members; ++b) {
-      const int* rows = member_rows_[b].data() + begin;
-      const Eigen::MatrixXf xb = GatherRows(x_, rows, count);
-      const Eigen::MatrixXf yb = GatherRows(y_, rows, count);
-      nll_sum += current_.MemberLossAndGradient(b, xb, yb, grad_.col(b).data(), &grad_max_,
-                                                &grad_min_);
+    for (const MemberStep& m : member_steps_) {
+      grad_max_ += m.grad_max;
+      grad_min_ += m.grad_min;
+      nll_sum += m.nll;
     }
     grad_max_.array() += penalty;
     grad_min_.array() -= penalty;
@@ -233,7 +271,7 @@ bool EnsembleTrainer::RunEpoch() {
   last_train_nll_ = nll_sum / (static_cast<double>(steps) * members);
   ++epoch_;
 
-  const double holdout_nll = HoldoutNll(current_);
+  const double holdout_nll = HoldoutNll(current_, parallel);
   if (holdout_nll < best_holdout_nll_) {
     best_holdout_nll_ = holdout_nll;
     best_ = current_;

@@ -20,6 +20,8 @@
 #include "absl/status/status.h"
 #include "absl/status/statusor.h"
 #include "core/model/ensemble.h"
+#include "core/model/inference.h"
+#include "core/util/parallel.h"
 #include "core/util/random.h"
 
 namespace foray::model {
@@ -96,8 +98,10 @@ class EnsembleTrainer {
       Ensemble start, const TransitionData& data, const TrainingOptions& options);
 
   // Runs one epoch. Returns true when training has finished (early stop or max_epochs);
-  // further calls do nothing and return true.
-  bool RunEpoch();
+  // further calls do nothing and return true. `parallel` may run the members' gradient passes
+  // of each minibatch step, and the evaluation, on several threads; the result is the same bit
+  // for bit however the work is split (each member's figures are summed in member order).
+  bool RunEpoch(const ParallelFor& parallel = {});
   bool done() const { return done_; }
 
   // The weights with the lowest holdout NLL so far.
@@ -107,7 +111,7 @@ class EnsembleTrainer {
 
  private:
   EnsembleTrainer(Ensemble start, const TrainingOptions& options);
-  double HoldoutNll(const Ensemble& model) const;
+  double HoldoutNll(const Ensemble& model, const ParallelFor& parallel) const;
   void AdamStep();
 
   const TrainingOptions options_;
@@ -121,9 +125,21 @@ class EnsembleTrainer {
   std::vector<std::vector<int>> member_rows_;  // bootstrap resample per member
   Eigen::MatrixXf holdout_x_;
   Eigen::MatrixXf holdout_y_;
+  // The same rows, row-major, for the inference kernels.
+  InferenceEnsemble::RowMatrix holdout_x_rows_;
+  InferenceEnsemble::RowMatrix holdout_y_rows_;
   // AdamW state: gradients and moments of params (num_member_params, B) and of the bounds.
   Eigen::MatrixXf grad_, m_, v_;
   Eigen::VectorXf grad_max_, m_max_, v_max_, grad_min_, m_min_, v_min_;
+  // Per member, reused across steps: its minibatch, the gradient pass's buffers, its part of
+  // the bound gradients and its loss.
+  struct MemberStep {
+    Eigen::MatrixXf x, y;
+    Ensemble::GradientWorkspace workspace;
+    Eigen::VectorXf grad_max, grad_min;
+    double nll = 0;
+  };
+  std::vector<MemberStep> member_steps_;
   int64_t step_ = 0;
   int epoch_ = 0;
   int best_epoch_ = 0;

@@ -22,6 +22,7 @@
 #include "core/explore/objective.h"
 #include "core/model/ensemble.h"
 #include "core/model/inference.h"
+#include "core/util/parallel.h"
 
 namespace foray::plan {
 
@@ -146,10 +147,7 @@ struct RolloutWorkspace {
   std::vector<int> member_of;
 };
 
-// Runs task(i) for every i in [0, tasks), possibly on several threads at once, and returns when
-// all have finished. Core starts no threads of its own: a caller with a worker pool passes one
-// that runs the tasks there; an empty ParallelFor runs them in order on the caller's thread.
-using ParallelFor = std::function<void(int tasks, const std::function<void(int)>& task)>;
+using ::foray::ParallelFor;  // core/util/parallel.h
 
 // Scores `candidates` action sequences. sequences: (candidates, horizon * action_dim)
 // row-major, step t of candidate n at [n * horizon * action_dim + t * action_dim]; robot units.

@@ -341,7 +341,7 @@ model::TransitionData RobotRuntime::Snapshot() const {
 }
 
 absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce(
-    const std::function<void()>& between_epochs) {
+    const std::function<void()>& between_epochs, const ParallelFor& parallel) {
   model::TransitionData data;
   RobotConfig config;
   std::shared_ptr<const PublishedModel> start;
@@ -382,7 +382,7 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce(
   const auto begin = std::chrono::steady_clock::now();
   auto trainer = model::EnsembleTrainer::Create(std::move(initial), data, options);
   if (!trainer.ok()) return finish(trainer.status());
-  while (!(*trainer)->RunEpoch()) {
+  while (!(*trainer)->RunEpoch(parallel)) {
     if (between_epochs) between_epochs();
   }
   const double seconds =

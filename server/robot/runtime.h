@@ -26,6 +26,7 @@
 #include "core/model/trainer.h"
 #include "core/plan/planner.h"
 #include "core/plan/rollout.h"
+#include "core/util/parallel.h"
 #include "foray/v1/types.pb.h"
 #include "server/robot/config.h"
 #include "server/store/store.h"
@@ -144,10 +145,11 @@ class RobotRuntime {
   void AddPlansWaiting(int delta) { plans_waiting_.fetch_add(delta, std::memory_order_relaxed); }
   // Trains one round on the caller's thread (warm start from the published model), publishes
   // the new version and writes its checkpoint. `between_epochs` (may be empty) runs after every
-  // epoch: the scheduler pauses training there while plans need the cores.
+  // epoch: the scheduler pauses training there while plans need the cores. `parallel` (may be
+  // empty) may split each minibatch step's members over threads; the model is the same.
   // FailedPrecondition with too few transitions.
   absl::StatusOr<std::shared_ptr<const PublishedModel>> TrainOnce(
-      const std::function<void()>& between_epochs = {});
+      const std::function<void()>& between_epochs = {}, const ParallelFor& parallel = {});
 
   // Publishes a model from elsewhere (a restored checkpoint or an import) as the next version
   // and writes its checkpoint. InvalidArgument when its dimensions are not the robot's.

@@ -5,9 +5,13 @@
 
 namespace foray::sched {
 
-TrainingLoop::TrainingLoop(RobotSource robots, const PlanGate* gate, absl::Duration idle_poll,
-                           absl::Duration max_pause)
-    : robots_(std::move(robots)), gate_(gate), idle_poll_(idle_poll), max_pause_(max_pause) {}
+TrainingLoop::TrainingLoop(RobotSource robots, const PlanGate* gate, HelperPool* helpers,
+                           absl::Duration idle_poll, absl::Duration max_pause)
+    : robots_(std::move(robots)),
+      gate_(gate),
+      helpers_(helpers),
+      idle_poll_(idle_poll),
+      max_pause_(max_pause) {}
 
 TrainingLoop::~TrainingLoop() { Stop(); }
 
@@ -39,9 +43,17 @@ void TrainingLoop::Run() {
     for (size_t i = 0; i < robots.size(); ++i) {
       const auto& runtime = robots[(next + i) % robots.size()];
       if (!runtime->WantsTraining()) continue;
-      auto published = runtime->TrainOnce([this] {
-        if (gate_ != nullptr) gate_->WaitForIdleCore(max_pause_);
-      });
+      auto published = runtime->TrainOnce(
+          [this] {
+            if (gate_ != nullptr) gate_->WaitForIdleCore(max_pause_);
+          },
+          [this](int tasks, const std::function<void(int)>& task) {
+            if (helpers_ != nullptr && (gate_ == nullptr || gate_->busy() == 0)) {
+              helpers_->Run(tasks, task);
+            } else {
+              for (int i = 0; i < tasks; ++i) task(i);
+            }
+          });
       if (!published.ok()) {
         std::fprintf(stderr, "forayd: training robot %s failed: %s\n", runtime->robot_id().c_str(),
                      std::string(published.status().message()).c_str());

@@ -1,7 +1,9 @@
 // The background trainer: one thread that visits the robots in turn (round robin, so that no
 // robot starves another) and runs a training round for each whose policy asks for one. Plans
 // never wait for it: they run on the rpc threads with the published model version, and
-// training steps aside between epochs while they need every core.
+// training steps aside between epochs while they need every core. While no plan computes, a
+// minibatch step may also split its members over the helper pool (checked at every step, so
+// that a plan that arrives gets its core back within one step).
 // Thread-safe; Stop() joins the thread (a round in progress finishes first).
 #ifndef FORAY_SERVER_SCHED_TRAINING_LOOP_H_
 #define FORAY_SERVER_SCHED_TRAINING_LOOP_H_
@@ -15,6 +17,7 @@
 #include "absl/synchronization/mutex.h"
 #include "absl/time/time.h"
 #include "server/robot/runtime.h"
+#include "server/sched/helper_pool.h"
 #include "server/sched/plan_gate.h"
 
 namespace foray::sched {
@@ -27,7 +30,9 @@ class TrainingLoop {
   // Not copyable or movable (owns a thread). `gate` (may be null; must outlive the loop) is
   // the plans' admission: between epochs training waits while every core is planning (at most
   // `max_pause` per epoch, so that training still makes progress under constant load).
-  TrainingLoop(RobotSource robots, const PlanGate* gate,
+  // `helpers` (may be null; must outlive the loop) lends its threads to steps taken while no
+  // plan holds a slot of `gate`.
+  TrainingLoop(RobotSource robots, const PlanGate* gate, HelperPool* helpers = nullptr,
                absl::Duration idle_poll = absl::Milliseconds(50),
                absl::Duration max_pause = absl::Seconds(1));
   TrainingLoop(const TrainingLoop&) = delete;
@@ -42,6 +47,7 @@ class TrainingLoop {
 
   const RobotSource robots_;
   const PlanGate* const gate_;
+  HelperPool* const helpers_;
   const absl::Duration idle_poll_;
   const absl::Duration max_pause_;
   mutable absl::Mutex mu_;

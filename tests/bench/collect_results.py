@@ -1,7 +1,8 @@
 """Merges the benchmark outputs (model_bench.json, plan_bench.json, service_bench.json: one JSON
 object per line, as each runner writes them) into results.json, one object per figure with the
 same keys (name, config, median, min, max, unit, reference, reference_median, ratio), and prints
-the table. Ratios are the reference's median over Foray's for times, Foray's over the
+the table. The reference is PyTorch's fastest setting (threads, allocator: torch_env.sh). Ratios
+are the reference's median over Foray's for times, Foray's over the
 reference's for rates: above 1 means Foray is faster."""
 
 import json
@@ -47,7 +48,8 @@ def main(folder):
             t = torch.get(r["name"])
             threads = r.get("threads", 1)
             name = f"{r['name']}_{threads}t" if "threads" in r else r["name"]
-            ref = f"PyTorch (OpenBLAS), {t['threads']} thread(s)" if t else None
+            ref = (f"PyTorch (OpenBLAS), {t['threads']} thread(s), {t.get('allocator', 'default')} allocator"
+                   if t else None)
             config = json.dumps(r["config"]) if "config" in r else ""
             results.append(figure(name, config, r["median_ms"], r["min_ms"], r["max_ms"], "ms", ref,
                                   t["median_ms"] if t else None, t["median_ms"] / r["median_ms"] if t else None))

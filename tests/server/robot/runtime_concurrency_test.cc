@@ -93,7 +93,7 @@ TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
   sched::PlanGate gate(/*slots=*/2, /*max_waiting=*/8);
   sched::HelperPool helpers(gate.slots() - 1);  // as forayd has it
   sched::TrainingLoop trainer([runtime] { return std::vector<std::shared_ptr<robot::RobotRuntime>>{runtime}; },
-                              &gate, absl::Milliseconds(5), absl::Milliseconds(50));
+                              &gate, &helpers, absl::Milliseconds(5), absl::Milliseconds(50));
   trainer.Start();
 
   constexpr uint64_t kTransitions = 600;
