@@ -195,7 +195,7 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
                                       float* log_var, Workspace* ws) const {
   FORAY_CHECK(member >= 0 && member < members_, "member index out of range");
   const std::vector<Layer>& layers = layers_[member];
-  const size_t need = static_cast<size_t>(rows) * widest_pad_;
+  const Eigen::Index need = static_cast<Eigen::Index>(rows) * widest_pad_;
   if (ws->a.size() < need) ws->a.resize(need);
   if (ws->b.size() < need) ws->b.resize(need);
 

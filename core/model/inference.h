@@ -24,7 +24,7 @@ class InferenceEnsemble {
 
   // Per-thread scratch buffers; grow on first use and are reused afterwards.
   struct Workspace {
-    std::vector<float> a, b;
+    Eigen::ArrayXf a, b;  // layer outputs, alternating (not zero-filled when they grow)
     // Log-variance bounds repeated over the rows of the last call, and scratch for them.
     Eigen::ArrayXf bound_max, bound_min, softplus;
   };
@@ -46,7 +46,7 @@ class InferenceEnsemble {
   // member b's mean and log-variance at mean + b * rows * output_dim (and likewise log_var),
   // each (rows, output_dim) row-major. Runs one task per member and block of up to kBlockRows
   // rows through `parallel`; the numbers do not depend on the split.
-  static constexpr int kBlockRows = 256;
+  static constexpr int kBlockRows = 512;
   void ForwardAll(const float* x, int rows, float* mean, float* log_var,
                   const ParallelFor& parallel) const;
 
