@@ -3,7 +3,8 @@
 # AddressSanitizer + UndefinedBehaviorSanitizer (build-asan/): the server's and clients'
 #     tests, the crash, network-fault and bad-input tests, the router test.
 # ThreadSanitizer (build-tsan/): the server's concurrency tests without the network (robot
-#     runtime, trainer thread, plan gate, store, directory) and the server's, clients' and
+#     runtime, trainer thread, plan gate, store, directory, the trainer's and the planner's
+#     split over threads) and the server's, clients' and
 #     fault tests over loopback. Debian's Abseil is rebuilt for TSan from its own source
 #     (tests/build_tsan_abseil.sh) and the TSan binaries load it through their RPATH, so every
 #     absl::Mutex, gRPC's too, is seen. gRPC and protobuf themselves are not rebuilt: reports
@@ -38,4 +39,4 @@ if ! ldd build-tsan/server/forayd | grep -q "libabsl_synchronization.so.* => $PW
   exit 1
 fi
 (cd build-tsan && ctest --output-on-failure --parallel "$(nproc)" \
-  -R '^(RuntimeConcurrency|DirectoryConcurrency|HelperPool|PlanGate|Store|PlannerTest\.Parallel|server\.|client\.|reliability\.(network_faults|rate_limits|bad_input|storage_faults)|interop\.)')
+  -R '^(RuntimeConcurrency|DirectoryConcurrency|HelperPool|PlanGate|Store|PlannerTest\.Parallel|TrainerTest\.Parallel|server\.|client\.|reliability\.(network_faults|rate_limits|bad_input|storage_faults)|interop\.)')
