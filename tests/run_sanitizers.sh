@@ -39,4 +39,4 @@ if ! ldd build-tsan/server/forayd | grep -q "libabsl_synchronization.so.* => $PW
   exit 1
 fi
 (cd build-tsan && ctest --output-on-failure --parallel "$(nproc)" \
-  -R '^(RuntimeConcurrency|DirectoryConcurrency|HelperPool|PlanGate|Store|PlannerTest\.Parallel|TrainerTest\.Parallel|server\.|client\.|reliability\.(network_faults|rate_limits|bad_input|storage_faults)|interop\.)')
+  -R '^(RuntimeConcurrency|DirectoryConcurrency|HelperPool|TrainingSplit|PlanGate|Store|PlannerTest\.Parallel|TrainerTest\.Parallel|server\.|client\.|reliability\.(network_faults|rate_limits|bad_input|storage_faults)|interop\.)')

@@ -5,6 +5,16 @@
 
 namespace foray::sched {
 
+ParallelFor TrainingSplit(const PlanGate* gate, HelperPool* helpers) {
+  return [gate, helpers](int tasks, const std::function<void(int)>& task) {
+    if (helpers != nullptr && (gate == nullptr || gate->busy() == 0)) {
+      helpers->Run(tasks, task);
+    } else {
+      for (int i = 0; i < tasks; ++i) task(i);
+    }
+  };
+}
+
 TrainingLoop::TrainingLoop(RobotSource robots, const PlanGate* gate, HelperPool* helpers,
                            absl::Duration idle_poll, absl::Duration max_pause)
     : robots_(std::move(robots)),
@@ -47,13 +57,7 @@ void TrainingLoop::Run() {
           [this] {
             if (gate_ != nullptr) gate_->WaitForIdleCore(max_pause_);
           },
-          [this](int tasks, const std::function<void(int)>& task) {
-            if (helpers_ != nullptr && (gate_ == nullptr || gate_->busy() == 0)) {
-              helpers_->Run(tasks, task);
-            } else {
-              for (int i = 0; i < tasks; ++i) task(i);
-            }
-          });
+          TrainingSplit(gate_, helpers_));
       if (!published.ok()) {
         std::fprintf(stderr, "forayd: training robot %s failed: %s\n", runtime->robot_id().c_str(),
                      std::string(published.status().message()).c_str());

@@ -16,11 +16,17 @@
 #include "absl/base/thread_annotations.h"
 #include "absl/synchronization/mutex.h"
 #include "absl/time/time.h"
+#include "core/util/parallel.h"
 #include "server/robot/runtime.h"
 #include "server/sched/helper_pool.h"
 #include "server/sched/plan_gate.h"
 
 namespace foray::sched {
+
+// How a training step may split its members: over `helpers` (with the caller) while no plan
+// holds a slot of `gate`, on the caller's thread alone otherwise or when `helpers` is null.
+// Checked at every step, so a plan that arrives gets its core back within one step.
+ParallelFor TrainingSplit(const PlanGate* gate, HelperPool* helpers);
 
 class TrainingLoop {
  public:

@@ -55,7 +55,7 @@ def main(folder):
                                   t["median_ms"] if t else None, t["median_ms"] / r["median_ms"] if t else None))
             if r["name"] == "train_epoch" and t:
                 per_s = lambda ms: 5000 / (ms / 1000.0)  # noqa: E731  (5,000 transitions per epoch)
-                results.append(figure("train_throughput", "5,000 transitions, batch 256, B=5, 3x64",
+                results.append(figure(f"train_throughput_{threads}t", "5,000 transitions, batch 256, B=5, 3x64",
                                       per_s(r["median_ms"]), per_s(r["max_ms"]), per_s(r["min_ms"]),
                                       "transitions/s per epoch", ref, per_s(t["median_ms"]),
                                       t["median_ms"] / r["median_ms"]))
