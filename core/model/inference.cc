@@ -248,7 +248,9 @@ void InferenceEnsemble::ForwardAll(const float* x, int rows, float* mean, float*
     const int b = task / blocks;
     const int r0 = (task % blocks) * kBlockRows;
     const size_t at = (static_cast<size_t>(b) * rows + r0) * output_dim_;
-    Workspace ws;
+    // One workspace per thread, kept: a fresh one per task would allocate (and, at 128 kB and
+    // more, map and fault in) its layer buffers for every block.
+    thread_local Workspace ws;
     ForwardMember(b, x + static_cast<size_t>(r0) * input_dim_, std::min(kBlockRows, rows - r0),
                   mean + at, log_var + at, &ws);
   });
