@@ -1,6 +1,7 @@
 #include "core/model/inference.h"
 
 #include <algorithm>
+#include <atomic>
 #include <cmath>
 
 #include "core/util/status_macros.h"
@@ -16,6 +17,11 @@ constexpr int kLanes = 16;   // floats per 512-bit vector
 constexpr int kTileRows = 6; // rows per register tile: 6 x 4 accumulators + 4 weight vectors
 
 int PadTo(int n, int multiple) { return (n + multiple - 1) / multiple * multiple; }
+
+uint64_t NextId() {
+  static std::atomic<uint64_t> next{1};
+  return next.fetch_add(1, std::memory_order_relaxed);
+}
 
 // What a dense layer does after x W + b.
 struct Epilogue {
@@ -164,7 +170,8 @@ void Dense(const float* x, int ldx, int rows, int k_count, const float* w, int l
 }  // namespace
 
 InferenceEnsemble::InferenceEnsemble(const Ensemble& e)
-    : members_(e.size()),
+    : id_(NextId()),
+      members_(e.size()),
       input_dim_(e.input_dim()),
       output_dim_(e.output_dim()),
       activation_(e.activation()) {
@@ -223,9 +230,10 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
   // (every SIMD lane does useful work): lv = max - softplus(max - raw);
   // lv = min + softplus(lv - min), softplus(x) = max(x, 0) + ln(1 + e^-|x|).
   const size_t n = static_cast<size_t>(rows) * d;
-  if (ws->bound_max.size() != static_cast<Eigen::Index>(n)) {
+  if (ws->bounds_of != id_ || ws->bound_max.size() != static_cast<Eigen::Index>(n)) {
     ws->bound_max = max_log_var_.replicate(rows, 1).array();
     ws->bound_min = min_log_var_.replicate(rows, 1).array();
+    ws->bounds_of = id_;
     ws->softplus.resize(n);
   }
   // Computed in the workspace's own (aligned) arrays and copied out: Eigen splits an

@@ -5,6 +5,7 @@
 #include "core/model/inference.h"
 
 #include <tuple>
+#include <vector>
 
 #include "core/util/random.h"
 #include "gtest/gtest.h"
@@ -73,6 +74,31 @@ TEST(InferenceExtremeTest, SiluSaturatesLikeReference) {
     for (int j = 0; j < x.cols(); ++j) x(i, j) = static_cast<float>((i - rows / 2) * (j + 1)) * 2.0f;
   }
   ExpectMatchesReference(*e, x, 1e-4, /*require_finite=*/true);
+}
+
+// A workspace kept across model versions (as a trainer's threads keep theirs from epoch to
+// epoch) must not carry one version's log-variance bounds into the next: the second model's
+// outputs through a used workspace equal those through a fresh one.
+TEST(InferenceWorkspaceTest, ReusedAcrossModelsGivesEachModelsOwnBounds) {
+  auto first = Ensemble::Create(3, 1, EnsembleOptions{}, 5);
+  ASSERT_TRUE(first.ok());
+  Ensemble second = *first;
+  second.mutable_max_log_var().array() -= 2.0f;  // bounds that bind at these inputs
+  second.mutable_min_log_var().array() += 7.0f;
+  const int rows = 40;
+  InferenceEnsemble::RowMatrix x(rows, first->input_dim());
+  Rng rng(3);
+  for (int i = 0; i < x.size(); ++i) x.data()[i] = static_cast<float>(rng.Normal());
+  const int d = first->output_dim();
+  std::vector<float> mean(rows * d), used_lv(rows * d), fresh_lv(rows * d);
+
+  InferenceEnsemble::Workspace used;
+  InferenceEnsemble(*first).ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
+  const InferenceEnsemble fast_second(second);
+  fast_second.ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
+  InferenceEnsemble::Workspace fresh;
+  fast_second.ForwardMember(0, x.data(), rows, mean.data(), fresh_lv.data(), &fresh);
+  EXPECT_EQ(used_lv, fresh_lv);
 }
 
 INSTANTIATE_TEST_SUITE_P(
