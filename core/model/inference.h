@@ -27,7 +27,7 @@ class InferenceEnsemble {
   struct Workspace {
     Eigen::ArrayXf a, b;  // layer outputs, alternating (not zero-filled when they grow)
     // Log-variance bounds repeated over the rows of the last call, and scratch for them;
-    // bounds_of: the id() of the ensemble whose bounds they are (a workspace may outlive it).
+    // bounds_of: the id of the ensemble whose bounds they are (a workspace may outlive it).
     Eigen::ArrayXf bound_max, bound_min, softplus;
     uint64_t bounds_of = 0;
   };
@@ -36,8 +36,6 @@ class InferenceEnsemble {
   explicit InferenceEnsemble(const Ensemble& ensemble);
 
   int size() const { return members_; }
-  // Unique per constructed copy (copies of it share it: same weights), never 0.
-  uint64_t id() const { return id_; }
   int input_dim() const { return input_dim_; }
   int output_dim() const { return output_dim_; }
 
@@ -65,7 +63,7 @@ class InferenceEnsemble {
     Eigen::VectorXf bias; // (fan_out_pad)
   };
 
-  uint64_t id_ = 0;
+  uint64_t id_ = 0;  // unique per construction (copies share it: same weights), never 0
   int members_ = 0;
   int input_dim_ = 0;
   int output_dim_ = 0;

@@ -150,8 +150,6 @@ absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
   const std::vector<int>& eval_rows = holdout > 0 ? t->holdout_rows_ : t->train_rows_;
   t->holdout_x_ = GatherRows(t->x_, eval_rows.data(), static_cast<int>(eval_rows.size()));
   t->holdout_y_ = GatherRows(t->y_, eval_rows.data(), static_cast<int>(eval_rows.size()));
-  t->holdout_x_rows_ = t->holdout_x_;
-  t->holdout_y_rows_ = t->holdout_y_;
 
   const int n_train = static_cast<int>(t->train_rows_.size());
   t->member_rows_.resize(model.size());
@@ -185,11 +183,11 @@ double EnsembleTrainer::HoldoutNll(const Ensemble& model, const ParallelFor& par
   // The same loss as Ensemble::MemberLoss, through the inference kernels: this evaluation is a
   // forward pass of every member over every holdout row, each epoch.
   const InferenceEnsemble fast(model);
-  const int n = static_cast<int>(holdout_y_rows_.size());  // rows * output_dim
+  const int n = static_cast<int>(holdout_y_.size());  // rows * output_dim
   Eigen::ArrayXf mean(static_cast<Eigen::Index>(n) * model.size()), log_var(mean.size());
-  fast.ForwardAll(holdout_x_rows_.data(), static_cast<int>(holdout_x_rows_.rows()), mean.data(),
+  fast.ForwardAll(holdout_x_.data(), static_cast<int>(holdout_x_.rows()), mean.data(),
                   log_var.data(), parallel);
-  const Eigen::Map<const Eigen::ArrayXf> y(holdout_y_rows_.data(), n);
+  const Eigen::Map<const Eigen::ArrayXf> y(holdout_y_.data(), n);
   Eigen::ArrayXf terms(n);
   double total = 0;
   for (int b = 0; b < model.size(); ++b) {
@@ -296,13 +294,14 @@ TrainingReport EnsembleTrainer::Report() const {
 
   // Moment-matched mixture of the members: mean of means; mean of variances plus the
   // variance of the means.
+  const Eigen::MatrixXf holdout_x = holdout_x_;  // column-major, as MemberForward takes it
   const Eigen::Index rows = holdout_x_.rows();
   const Eigen::Index d = best_.output_dim();
   Eigen::ArrayXXd mix_mean = Eigen::ArrayXXd::Zero(rows, d);
   Eigen::ArrayXXd second = Eigen::ArrayXXd::Zero(rows, d);
   Eigen::MatrixXf mean, log_var;
   for (int b = 0; b < best_.size(); ++b) {
-    best_.MemberForward(b, holdout_x_, &mean, &log_var);
+    best_.MemberForward(b, holdout_x, &mean, &log_var);
     const Eigen::ArrayXXd m = mean.cast<double>().array();
     mix_mean += m;
     second += log_var.cast<double>().array().exp() + m.square();

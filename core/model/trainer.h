@@ -123,11 +123,10 @@ class EnsembleTrainer {
   std::vector<int> train_rows_;
   std::vector<int> holdout_rows_;
   std::vector<std::vector<int>> member_rows_;  // bootstrap resample per member
-  Eigen::MatrixXf holdout_x_;
-  Eigen::MatrixXf holdout_y_;
-  // The same rows, row-major, for the inference kernels.
-  InferenceEnsemble::RowMatrix holdout_x_rows_;
-  InferenceEnsemble::RowMatrix holdout_y_rows_;
+  // The evaluation rows (the holdout, or the training rows when there is none), row-major for
+  // the inference kernels.
+  InferenceEnsemble::RowMatrix holdout_x_;
+  InferenceEnsemble::RowMatrix holdout_y_;
   // AdamW state: gradients and moments of params (num_member_params, B) and of the bounds.
   Eigen::MatrixXf grad_, m_, v_;
   Eigen::VectorXf grad_max_, m_max_, v_max_, grad_min_, m_min_, v_min_;

@@ -82,7 +82,7 @@ void HelperPool::Run(int tasks, const std::function<void(int)>& task) {
   batch->mu.Await(absl::Condition(&batch->done));
 }
 
-std::function<void(int, const std::function<void(int)>&)> HelperPool::ParallelFor() {
+::foray::ParallelFor HelperPool::ParallelFor() {
   return [this](int tasks, const std::function<void(int)>& task) { Run(tasks, task); };
 }
 

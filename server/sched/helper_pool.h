@@ -1,6 +1,7 @@
-// Threads that join a plan's rollouts when the plan gate lends it idle cores. Started once and
-// kept: a plan's optimiser hands out its rollouts once per iteration, and starting threads
-// each time costs more than the split saves on a small plan (measured in tests/bench).
+// Threads that join a plan's rollouts when the plan gate lends it idle cores, and a training
+// step while no plan computes (sched/training_loop.h). Started once and kept: a plan's
+// optimiser hands out its rollouts once per iteration, and starting threads each time costs
+// more than the split saves on a small plan (measured in tests/bench).
 // Run(tasks, task) is the planner's ParallelFor: the caller and the pool's threads take task
 // indices from a shared counter until none is left, so a Run never waits for a pool thread that
 // is busy elsewhere (the caller does the work itself), and it returns when every task finished.
@@ -19,6 +20,7 @@
 
 #include "absl/base/thread_annotations.h"
 #include "absl/synchronization/mutex.h"
+#include "core/util/parallel.h"
 
 namespace foray::sched {
 
@@ -33,8 +35,9 @@ class HelperPool {
   // Runs task(i) for every i in [0, tasks) on the caller and the pool; returns when all ran.
   void Run(int tasks, const std::function<void(int)>& task);
 
-  // Run as a std::function, for plan::PlanContext::parallel. The pool must outlive it.
-  std::function<void(int, const std::function<void(int)>&)> ParallelFor();
+  // Run as a ParallelFor, for plan::PlanContext::parallel or a training step. The pool must
+  // outlive it.
+  ::foray::ParallelFor ParallelFor();
 
  private:
   struct Batch;

@@ -19,7 +19,7 @@ TrainingLoop::TrainingLoop(RobotSource robots, const PlanGate* gate, HelperPool*
                            absl::Duration idle_poll, absl::Duration max_pause)
     : robots_(std::move(robots)),
       gate_(gate),
-      helpers_(helpers),
+      split_(TrainingSplit(gate, helpers)),
       idle_poll_(idle_poll),
       max_pause_(max_pause) {}
 
@@ -57,7 +57,7 @@ void TrainingLoop::Run() {
           [this] {
             if (gate_ != nullptr) gate_->WaitForIdleCore(max_pause_);
           },
-          TrainingSplit(gate_, helpers_));
+          split_);
       if (!published.ok()) {
         std::fprintf(stderr, "forayd: training robot %s failed: %s\n", runtime->robot_id().c_str(),
                      std::string(published.status().message()).c_str());

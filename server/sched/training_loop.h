@@ -53,7 +53,7 @@ class TrainingLoop {
 
   const RobotSource robots_;
   const PlanGate* const gate_;
-  HelperPool* const helpers_;
+  const ParallelFor split_;  // TrainingSplit(gate_, helpers)
   const absl::Duration idle_poll_;
   const absl::Duration max_pause_;
   mutable absl::Mutex mu_;

@@ -6,8 +6,8 @@
 #   reference runs without them (as fast as it can be here).
 # - glibc's allocator two ways. PyTorch allocates and frees its tensors on every call; with
 #   glibc's default thresholds every buffer above 128 kB comes from mmap and goes back at once,
-#   so each call pays the page faults for it again (dear on this VM: PyTorch's small plan took
-#   2.4x as long, its training epoch 1.5x, measured 2026-12-03). "heap" raises the thresholds so
+#   so each call pays the page faults for it again (dear on this VM: PyTorch's plans took
+#   2.4-3.2x as long, its training epoch 1.5x, measured 2026-12-03). "heap" raises the thresholds so
 #   that freed memory stays in the heap and is reused, as a tuned deployment of PyTorch would.
 #
 #   run_torch tests/bench/model_bench_torch.py --threads 1 --repeats 30
