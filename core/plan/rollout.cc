@@ -158,22 +158,42 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
         std::copy(a, a + ad, &ws->actions[(static_cast<size_t>(n) * particles + p) * ad]);
       }
     }
+    // At the first step every particle of a candidate is at the initial state with the
+    // candidate's first action, so the members are evaluated once per candidate (row n of the
+    // predictions stands for rows n * particles ... n * particles + particles - 1). The model
+    // and the estimators treat rows independently, so the scores are those of evaluating every
+    // particle; the step is 1/horizon of the work, of which this saves (particles-1)/particles.
+    const bool shared = t == 0 && particles > 1;
+    const int evaluated = shared ? candidates : rows;
+    const float* eval_actions = ws->actions.data();
+    if (shared) {
+      ws->first_actions.resize(static_cast<size_t>(candidates) * ad);
+      for (int n = 0; n < candidates; ++n) {
+        std::copy_n(sequences + n * seq_stride, ad, &ws->first_actions[static_cast<size_t>(n) * ad]);
+      }
+      eval_actions = ws->first_actions.data();
+    }
     auto start = Clock::now();
-    model.Evaluate(ws->states.data(), ws->actions.data(), rows, &pred);
+    model.Evaluate(ws->states.data(), eval_actions, evaluated, &pred);
     if (stats != nullptr) {
       stats->model_seconds += SecondsSince(start);
-      stats->model_flops += model.FlopsPerMemberRow() * rows * nb;
+      stats->model_flops += model.FlopsPerMemberRow() * evaluated * nb;
     }
     if (want_information) {
       start = Clock::now();
       explore::Information(objective.estimator, pred.StateDeltaSet(), ws->information.data(),
                            objective.monte_carlo_samples, seed + 7919u * (t + 1));
+      // Spread row n to its particles; from the top down, so no source is overwritten first.
+      if (shared) {
+        for (int r = rows - 1; r >= 0; --r) ws->information[r] = ws->information[r / particles];
+      }
       if (stats != nullptr) stats->information_seconds += SecondsSince(start);
     }
     for (int r = 0; r < rows; ++r) {
       const int p = r % particles;
       const int m = ws->member_of[t * particles + p];
-      const std::ptrdiff_t at = (static_cast<std::ptrdiff_t>(m) * rows + r) * od;
+      const int source = shared ? r / particles : r;
+      const std::ptrdiff_t at = (static_cast<std::ptrdiff_t>(m) * evaluated + source) * od;
       const float* mu = pred.mean.data() + at;
       const float* lv = pred.log_var.data() + at;
       const float* eps = &ws->noise[(static_cast<size_t>(t) * particles + p) * sd];

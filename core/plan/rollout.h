@@ -1,7 +1,8 @@
 // Rollouts: P particles per candidate action sequence propagated through a model of B members
 // (Chua et al. 2018, "Deep Reinforcement Learning in a Handful of Trials using Probabilistic
 // Dynamics Models", NeurIPS). At every step every member is evaluated at every particle in one
-// batched call; the particle's next state is sampled from its own member (TS-inf: member
+// batched call (at the first step, where a candidate's particles share the initial state and
+// the action, once per candidate); the particle's next state is sampled from its own member (TS-inf: member
 // p mod B for the whole horizon; TS1: a fresh uniform draw per step), and the information
 // gain of the step is computed from all B members at the particle's state. A candidate scores
 //   J = (1/P) sum_p sum_t gamma^t ( w_r r_{p,t} + w_i I_{p,t} ),
@@ -143,7 +144,7 @@ struct RolloutStats {
 // Reused buffers of one thread's rollouts.
 struct RolloutWorkspace {
   MemberPredictions predictions;
-  std::vector<float> states, actions, reward, information, noise;
+  std::vector<float> states, actions, first_actions, reward, information, noise;
   std::vector<int> member_of;
 };
 

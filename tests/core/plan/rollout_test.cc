@@ -252,6 +252,112 @@ TEST(RolloutTest, EnsembleModelGivesPredictInRobotUnits) {
   EXPECT_GT(rollout.FlopsPerMemberRow(), 0.0);
 }
 
+// Counts the rows of every Evaluate call and passes it on.
+class RowCountingModel final : public RolloutModel {
+ public:
+  explicit RowCountingModel(const RolloutModel& inner) : inner_(inner) {}
+  int members() const override { return inner_.members(); }
+  int state_dim() const override { return inner_.state_dim(); }
+  int action_dim() const override { return inner_.action_dim(); }
+  void Evaluate(const float* states, const float* actions, int rows,
+                MemberPredictions* out) const override {
+    rows_.push_back(rows);
+    inner_.Evaluate(states, actions, rows, out);
+  }
+  const std::vector<int>& rows() const { return rows_; }
+
+ private:
+  const RolloutModel& inner_;
+  mutable std::vector<int> rows_;
+};
+
+class RolloutSimulationTest : public ::testing::TestWithParam<Propagation> {};
+
+TEST_P(RolloutSimulationTest, MatchesEachParticleSimulatedAlone) {
+  // Reference: the definition of the score (rollout.h; Chua et al. 2018 for the propagation),
+  // simulated one particle at a time with one-row model calls: particle p of candidate n starts
+  // at the initial state; at step t it takes the candidate's action, every member is evaluated
+  // there, the information gain is the estimator over those members, the next state is drawn
+  // from member m(t, p) with noise eps(t, p), the reward is that member's mean. The draws are
+  // taken from Rng(seed) in the documented order (per step, per particle: the member for TS1,
+  // then state_dim normals). The batched rollout evaluates the first step once per candidate;
+  // this checks that sharing against the particle-by-particle definition.
+  model::EnsembleOptions eo;
+  eo.hidden_widths = {24, 24};
+  auto ensemble = model::Ensemble::Create(3, 2, eo, 31);
+  ASSERT_TRUE(ensemble.ok());
+  const EnsembleRolloutModel model(*ensemble);
+  const RowCountingModel counting(model);
+  explore::ObjectiveOptions objective;  // learned reward and pairwise-KL information
+  objective.reward_weight = 0.7;
+  objective.information_weight = 1.3;
+  objective.discount = 0.9;
+  RolloutOptions options;
+  options.horizon = 4;
+  options.particles = 4;
+  options.propagation = GetParam();
+  const int candidates = 3, sd = 3, ad = 2, od = sd + 1, nb = model.members();
+  const uint64_t seed = 17;
+  const float initial[sd] = {0.4f, -0.3f, 1.1f};
+  Rng draws(5);
+  std::vector<float> sequences(candidates * options.horizon * ad);
+  for (float& u : sequences) u = static_cast<float>(2.0 * draws.Uniform() - 1.0);
+
+  std::vector<float> scores(candidates);
+  RolloutWorkspace ws;
+  ScoreSequences(counting, objective, options, initial, sequences.data(), candidates, seed,
+                 scores.data(), &ws);
+  const std::vector<int> expected_rows = {candidates, candidates * options.particles,
+                                          candidates * options.particles,
+                                          candidates * options.particles};
+  EXPECT_EQ(counting.rows(), expected_rows);
+
+  Rng rng(seed);
+  std::vector<int> member(options.horizon * options.particles);
+  std::vector<double> eps(options.horizon * options.particles * sd);
+  for (int t = 0; t < options.horizon; ++t) {
+    for (int p = 0; p < options.particles; ++p) {
+      member[t * options.particles + p] =
+          GetParam() == Propagation::kTsInf ? p % nb : static_cast<int>(rng.UniformInt(nb));
+      for (int k = 0; k < sd; ++k) eps[(t * options.particles + p) * sd + k] = rng.Normal();
+    }
+  }
+  MemberPredictions pred;
+  for (int n = 0; n < candidates; ++n) {
+    double score = 0.0;
+    for (int p = 0; p < options.particles; ++p) {
+      std::vector<float> s(initial, initial + sd);
+      double discount = 1.0;
+      for (int t = 0; t < options.horizon; ++t) {
+        const float* a = &sequences[(n * options.horizon + t) * ad];
+        model.Evaluate(s.data(), a, 1, &pred);
+        float information = 0.0f;
+        explore::Information(objective.estimator, pred.StateDeltaSet(), &information);
+        const int m = member[t * options.particles + p];
+        const float* mu = &pred.mean[static_cast<size_t>(m) * od];
+        const float* lv = &pred.log_var[static_cast<size_t>(m) * od];
+        for (int k = 0; k < sd; ++k) {
+          s[k] += static_cast<float>(
+              (mu[k] + std::exp(0.5 * lv[k]) * eps[(t * options.particles + p) * sd + k]) *
+                  pred.scale[k] + pred.offset[k]);
+        }
+        const double reward = mu[sd] * pred.scale[sd] + pred.offset[sd];
+        score += discount * (objective.reward_weight * reward +
+                             objective.information_weight * information);
+        discount *= objective.discount;
+      }
+    }
+    score /= options.particles;
+    EXPECT_NEAR(scores[n], score, 1e-5 * (1.0 + std::abs(score))) << "candidate " << n;
+  }
+}
+
+INSTANTIATE_TEST_SUITE_P(Propagations, RolloutSimulationTest,
+                         ::testing::Values(Propagation::kTsInf, Propagation::kTs1),
+                         [](const ::testing::TestParamInfo<Propagation>& info) {
+                           return info.param == Propagation::kTsInf ? "TsInf" : "Ts1";
+                         });
+
 TEST(RolloutTest, OptionsValidateNamesTheField) {
   RolloutOptions options;
   options.horizon = 0;
