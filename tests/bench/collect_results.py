@@ -35,6 +35,11 @@ def main(folder):
                 results.append(figure(f"sgemm_peak ({label})", f"Eigen, 1 thread, {r['n']}x{r['n']} float",
                                       flops / (r["median_ms"] * 1e6), flops / (r["max_ms"] * 1e6),
                                       flops / (r["min_ms"] * 1e6), "GFLOP/s"))
+    for r in plan:
+        if r["impl"] == "foray" and r["name"] == "fma_peak":
+            results.append(figure(f"fma_peak_{r['threads']}t", "vector FMAs in registers, the cores' limit",
+                                  r["gflops"], r["gflops"], r["gflops"], "GFLOP/s"))
+    fma2 = next((r["gflops"] for r in plan if r["name"] == "fma_peak" and r["threads"] == 2), None)
     for rows in (model, plan):
         torch = {}
         for r in rows:
@@ -43,7 +48,7 @@ def main(folder):
                 if best is None or r["median_ms"] < best["median_ms"]:
                     torch[r["name"]] = r
         for r in rows:
-            if r["impl"] != "foray" or r["name"] == "sgemm_peak":
+            if r["impl"] != "foray" or r["name"] in ("sgemm_peak", "fma_peak"):
                 continue
             t = torch.get(r["name"])
             threads = r.get("threads", 1)
@@ -53,6 +58,13 @@ def main(folder):
             config = json.dumps(r["config"]) if "config" in r else ""
             results.append(figure(name, config, r["median_ms"], r["min_ms"], r["max_ms"], "ms", ref,
                                   t["median_ms"] if t else None, t["median_ms"] / r["median_ms"] if t else None))
+            if r["name"].startswith("plan_") and t and fma2 and threads == 2:
+                # Foray's model work done at the 2-core FMA peak: no implementation can beat it.
+                floor_ms = r["flops"] / (fma2 * 1e6)
+                results.append(figure(f"{r['name']}_bound", "PyTorch's time over Foray's model work at the "
+                                      "2-core FMA peak: the largest possible speed-up",
+                                      t["median_ms"] / floor_ms, t["median_ms"] / floor_ms,
+                                      t["median_ms"] / floor_ms, "x"))
             if r["name"] == "train_epoch" and t:
                 per_s = lambda ms: 5000 / (ms / 1000.0)  # noqa: E731  (5,000 transitions per epoch)
                 results.append(figure(f"train_throughput_{threads}t", "5,000 transitions, batch 256, B=5, 3x64",

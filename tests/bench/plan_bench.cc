@@ -52,6 +52,12 @@ int main(int argc, char** argv) {
     std::fflush(stdout);
   }
 
+  for (int threads : {1, 2}) {
+    std::printf("{\"name\": \"fma_peak\", \"impl\": \"foray\", \"gflops\": %.2f, \"threads\": %d}\n",
+                foray::bench::FmaPeakGflops(threads), threads);
+    std::fflush(stdout);
+  }
+
   const std::string only = argc > 2 ? argv[2] : "";
   for (const Config& c : kConfigs) {
     if (!only.empty() && only != c.name) continue;
@@ -99,14 +105,19 @@ int main(int argc, char** argv) {
       evaluations = plan->evaluations;
     }
     const Timing t = Summarise(ms), m = Summarise(model_ms);
+    // The work of the scored candidates when every member is evaluated at every particle at
+    // every step (the reference does that; Foray evaluates the first step once per candidate).
+    const double every_particle = model.FlopsPerMemberRow() * c.members * c.particles *
+                                  c.horizon * static_cast<double>(evaluations);
     // model_seconds counts thread-seconds: per-thread GFLOP/s.
     std::printf("{\"name\": \"plan_%s\", \"impl\": \"foray\", \"threads\": %d, \"median_ms\": %.3f, \"min_ms\": %.3f, "
                 "\"max_ms\": %.3f, \"model_median_ms\": %.3f, \"model_gflops\": %.2f, "
-                "\"flops\": %.4g, \"evaluations\": %d, \"config\": {\"state_dim\": %d, "
+                "\"flops\": %.4g, \"flops_every_particle\": %.4g, \"evaluations\": %d, "
+                "\"config\": {\"state_dim\": %d, "
                 "\"action_dim\": %d, \"members\": %d, \"hidden\": \"%dx%d\", \"population\": %d, "
                 "\"elites\": %d, \"particles\": %d, \"horizon\": %d, \"iterations\": %d}}\n",
                 c.name, threads, t.median_ms, t.min_ms, t.max_ms, m.median_ms, flops / (m.median_ms * 1e6),
-                flops, evaluations, c.state_dim, c.action_dim, c.members, c.layers, c.width,
+                flops, every_particle, evaluations, c.state_dim, c.action_dim, c.members, c.layers, c.width,
                 c.population, c.elites, c.particles, c.horizon, c.iterations);
     std::fflush(stdout);
     }

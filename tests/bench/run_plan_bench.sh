@@ -4,7 +4,8 @@
 # OpenBLAS, 1 and 2 threads, two allocator settings: see torch_env.sh), in one run; prints
 # medians, the ratio against the fastest PyTorch,
 # and the GFLOP/s per thread of the model part against the SGEMM peak measured at the start (the
-# fastest of 8 products: the machine is shared and noisy, and a peak is a best case).
+# fastest of 8 products: the machine is shared and noisy, and a peak is a best case); then the
+# cores' FMA peak and, from it, the largest speed-up over PyTorch any implementation could reach.
 # Writes build/bench/plan_bench.json.
 #
 #   ./tests/bench/run_plan_bench.sh [repeats]
@@ -40,4 +41,14 @@ for name in ("plan_small", "plan_arm"):
         print(f"{name:11} {threads:7d} {f['median_ms']:9.1f} {f['model_gflops']:21.1f} "
               f"{100 * f['model_gflops'] / peak:5.0f}% {each:>44} {best / f['median_ms']:8.2f}x")
 print("allocator: d = glibc default, h = heap (tests/bench/torch_env.sh); speed-up against the fastest")
+fma1, fma2 = ours[("fma_peak", 1)]["gflops"], ours[("fma_peak", 2)]["gflops"]
+print(f"FMA peak of the cores (the hardware's limit): {fma1:.0f} GFLOP/s on 1 thread, {fma2:.0f} on 2")
+for name in ("plan_small", "plan_arm"):
+    best = min(r["median_ms"] for r in rows if r["impl"] == "torch" and r["name"] == name)
+    f = ours[(name, 2)]
+    # The fastest any implementation could do Foray's model work: all of it at the 2-core FMA peak.
+    floor_ms = f["flops"] / (fma2 * 1e6)
+    print(f"{name}: PyTorch does {f['flops_every_particle'] / (best * 1e6):.0f} GFLOP/s; Foray's model work at the "
+          f"2-core FMA peak would take {floor_ms:.1f} ms, so no implementation could be more than "
+          f"{best / floor_ms:.1f}x faster than PyTorch here")
 PY
