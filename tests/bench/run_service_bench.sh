@@ -37,8 +37,11 @@ for r in rows:
 load = [r for r in rows if r["name"].startswith("load_")]
 if load:
     print(f"{'robots':>6} {'plans':>6} {'p50 ms':>8} {'p99 ms':>8} {'misses':>7} {'train rounds':>13} "
-          f"{'s/round/robot':>14} {'server kB/robot':>16}")
+          f"{'s/round/robot':>14} {'server MB':>10} {'kB/robot':>9}")
     for r in load:
         print(f"{r['robots']:6d} {r['plans']:6d} {r['median']:8.1f} {r['p99']:8.1f} {r['deadline_misses']:7d} "
-              f"{r['training_rounds']:13d} {r['seconds_per_round_per_robot']:14.1f} {r['server_rss_kb_per_robot']:16.0f}")
+              f"{r['training_rounds']:13d} {r['seconds_per_round_per_robot']:14.1f} {r['server_rss_kb'] / 1024:10.1f} "
+              f"{r['server_rss_kb_per_robot']:9.0f}")
+    print("kB/robot: the server's resident growth since the first round over all robots registered so far "
+          "(earlier rounds' robots stay registered)")
 PY

@@ -279,7 +279,7 @@ void Stream() {
   const uint64_t bytes_after = FileBytes(db) + FileBytes(db + "-wal");
   if (bytes_before > 0 || bytes_after > 0) {
     Summary b;
-    b.median = b.min = b.max = static_cast<double>(bytes_after - bytes_before) / n;
+    b.median = b.min = b.max = (static_cast<double>(bytes_after) - static_cast<double>(bytes_before)) / n;
     Emit("sqlite_bytes_per_transition", "14-D state, 4-D action; growth of foray.db plus its WAL / transitions",
          b, "bytes");
   }
@@ -298,10 +298,18 @@ uint64_t ServerRssKb() {
   return 0;
 }
 
+// The server's resident memory before the first load round, and the robots registered since:
+// the robots of earlier rounds stay registered (and keep their models), so memory per robot is
+// the growth since then over all of them. A difference of one round alone is noise (the
+// allocator gives memory back at times, the resident size can shrink).
+uint64_t load_rss_baseline_kb = 0;
+int load_robots_so_far = 0;
+
 void Load(int robots, int round) {
   const double seconds = absl::GetFlag(FLAGS_load_seconds);
   std::vector<foray::client::Identity> ids;
-  const uint64_t rss_before = ServerRssKb();
+  if (round == 0) load_rss_baseline_kb = ServerRssKb();
+  load_robots_so_far += robots;
   for (int r = 0; r < robots; ++r) {
     // Retrain every 200 new transitions: every 10 s at 20 Hz.
     absl::StatusOr<foray::client::Identity> id =
@@ -366,10 +374,16 @@ void Load(int robots, int round) {
   Emit(absl::StrFormat("load_plan_latency_n%d", robots), config, s, "ms",
        absl::StrFormat("\"robots\": %d, \"p99\": %.6g, \"plans\": %d, \"deadline_misses\": %d, "
                        "\"training_rounds\": %d, \"seconds_per_round_per_robot\": %.4g, "
-                       "\"server_rss_kb_per_robot\": %.6g",
+                       "\"server_rss_kb\": %d, \"server_rss_kb_per_robot\": %.6g, "
+                       "\"robots_registered\": %d",
                        robots, s.p99, plans, misses, rounds,
                        rounds > 0 ? seconds * robots / rounds : -1.0,
-                       rss_before > 0 ? static_cast<double>(rss_after - rss_before) / robots : -1.0));
+                       static_cast<int>(rss_after),
+                       load_rss_baseline_kb > 0
+                           ? (static_cast<double>(rss_after) - static_cast<double>(load_rss_baseline_kb)) /
+                                 load_robots_so_far
+                           : -1.0,
+                       load_robots_so_far));
 }
 
 }  // namespace
