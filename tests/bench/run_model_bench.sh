@@ -2,7 +2,8 @@
 # Model benchmark: Foray's ensemble forward and training epoch beside the same computations in
 # PyTorch (Debian's python3-torch, with OpenBLAS; 1 and 2 threads, two allocator settings, see
 # torch_env.sh), in one run; prints both, the ratios against PyTorch's fastest, and
-# GFLOP/s against the SGEMM peak measured at the start. Writes build/bench/model_bench.json.
+# GFLOP/s against the SGEMM peak and the FMA peak of one core measured at the start. Writes
+# build/bench/model_bench.json.
 #
 #   ./tests/bench/run_model_bench.sh [repeats]
 set -euo pipefail
@@ -24,8 +25,9 @@ import json, sys
 rows = [json.loads(line) for line in open(sys.argv[1])]
 ours = {(r["name"], r.get("threads", 1)): r for r in rows if r["impl"] == "foray"}
 peak = ours[("sgemm_peak", 1)]["gflops"]
-print(f"SGEMM peak (Eigen, 1 thread, n=1536): {peak:.1f} GFLOP/s")
-print(f"{'figure':18} {'threads':>7} {'foray ms':>9} {'GFLOP/s/thread':>15} {'%peak':>6} "
+fma = ours[("fma_peak", 1)]["gflops"]
+print(f"SGEMM peak (Eigen, 1 thread, n=1536): {peak:.1f} GFLOP/s; FMA peak of one core: {fma:.1f} GFLOP/s")
+print(f"{'figure':18} {'threads':>7} {'foray ms':>9} {'GFLOP/s/thread':>15} {'%peak':>6} {'%FMA':>5} "
       f"{'torch ms, threads/allocator':>44} {'speed-up':>9}")
 for name in ("ensemble_forward", "train_epoch"):
     t = {(r["threads"], r["allocator"]): r["median_ms"] for r in rows if r["impl"] == "torch" and r["name"] == name}
@@ -34,7 +36,7 @@ for name in ("ensemble_forward", "train_epoch"):
     for threads in (1, 2):
         f = ours[(name, threads)]
         per_thread = f["gflops"] / threads
-        print(f"{name:18} {threads:7d} {f['median_ms']:9.3f} {per_thread:15.1f} {100 * per_thread / peak:5.0f}% "
+        print(f"{name:18} {threads:7d} {f['median_ms']:9.3f} {per_thread:15.1f} {100 * per_thread / peak:5.0f}% {100 * per_thread / fma:4.0f}% "
               f"{each:>44} {best / f['median_ms']:8.2f}x")
 print("allocator: d = glibc default, h = heap (tests/bench/torch_env.sh); speed-up against the fastest")
 PY
