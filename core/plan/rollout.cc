@@ -161,8 +161,10 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
     // At the first step every particle of a candidate is at the initial state with the
     // candidate's first action, so the members are evaluated once per candidate (row n of the
     // predictions stands for rows n * particles ... n * particles + particles - 1). The model
-    // and the estimators treat rows independently, so the scores are those of evaluating every
-    // particle; the step is 1/horizon of the work, of which this saves (particles-1)/particles.
+    // and the closed-form estimators treat rows independently, so the scores are those of
+    // evaluating every particle (the Monte Carlo estimator draws per row, so there the particles
+    // share one estimate instead of drawing their own); the step is 1/horizon of the work, of
+    // which this saves (particles-1)/particles.
     const bool shared = t == 0 && particles > 1;
     const int evaluated = shared ? candidates : rows;
     const float* eval_actions = ws->actions.data();
