@@ -171,7 +171,8 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
     if (shared) {
       ws->first_actions.resize(static_cast<size_t>(candidates) * ad);
       for (int n = 0; n < candidates; ++n) {
-        std::copy_n(sequences + n * seq_stride, ad, &ws->first_actions[static_cast<size_t>(n) * ad]);
+        std::copy_n(sequences + n * seq_stride, ad,
+                    &ws->first_actions[static_cast<size_t>(n) * ad]);
       }
       eval_actions = ws->first_actions.data();
     }

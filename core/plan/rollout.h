@@ -2,9 +2,10 @@
 // (Chua et al. 2018, "Deep Reinforcement Learning in a Handful of Trials using Probabilistic
 // Dynamics Models", NeurIPS). At every step every member is evaluated at every particle in one
 // batched call (at the first step, where a candidate's particles share the initial state and
-// the action, once per candidate); the particle's next state is sampled from its own member (TS-inf: member
-// p mod B for the whole horizon; TS1: a fresh uniform draw per step), and the information
-// gain of the step is computed from all B members at the particle's state. A candidate scores
+// the action, once per candidate); the particle's next state is sampled from its own member
+// (TS-inf: member p mod B for the whole horizon; TS1: a fresh uniform draw per step), and the
+// information gain of the step is computed from all B members at the particle's state. A
+// candidate scores
 //   J = (1/P) sum_p sum_t gamma^t ( w_r r_{p,t} + w_i I_{p,t} ),
 // with r_{p,t} the expected reward under the particle's member (or the known reward at the
 // sampled next state).

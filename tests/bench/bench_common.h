@@ -7,6 +7,7 @@
 #include <algorithm>
 #include <chrono>
 #include <cstdint>
+#include <cstdio>
 #include <thread>
 #include <vector>
 
@@ -106,6 +107,13 @@ inline double FmaPeakGflops(int threads, int repeats = 5) {
     best = std::max(best, total);
   }
   return best;
+}
+
+// Prints the FMA peak on `threads` threads as one JSON line (name "fma_peak").
+inline void PrintFmaPeak(int threads) {
+  std::printf("{\"name\": \"fma_peak\", \"impl\": \"foray\", \"gflops\": %.2f, \"threads\": %d}\n",
+              FmaPeakGflops(threads), threads);
+  std::fflush(stdout);
 }
 
 }  // namespace foray::bench

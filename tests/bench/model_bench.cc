@@ -44,10 +44,7 @@ int main(int argc, char** argv) {
     const Timing t = foray::bench::SgemmTiming(n, std::max(5, repeats / 3), /*warmup=*/3);
     Print("sgemm_peak", t, 2.0 * n * n * n, ", \"n\": 1536, \"threads\": 1");
   }
-  // The cores' FMA limit, one thread (the hardware's bound; bench_common.h).
-  std::printf("{\"name\": \"fma_peak\", \"impl\": \"foray\", \"gflops\": %.2f, \"threads\": 1}\n",
-              foray::bench::FmaPeakGflops(1));
-  std::fflush(stdout);
+  foray::bench::PrintFmaPeak(1);  // the cores' limit, one thread
 
   const int state_dim = 4, action_dim = 1;
   const foray::model::EnsembleOptions eopt;

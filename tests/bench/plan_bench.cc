@@ -52,11 +52,7 @@ int main(int argc, char** argv) {
     std::fflush(stdout);
   }
 
-  for (int threads : {1, 2}) {
-    std::printf("{\"name\": \"fma_peak\", \"impl\": \"foray\", \"gflops\": %.2f, \"threads\": %d}\n",
-                foray::bench::FmaPeakGflops(threads), threads);
-    std::fflush(stdout);
-  }
+  for (int threads : {1, 2}) foray::bench::PrintFmaPeak(threads);
 
   const std::string only = argc > 2 ? argv[2] : "";
   for (const Config& c : kConfigs) {
