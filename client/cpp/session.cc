@@ -95,6 +95,10 @@ absl::Status SessionOptions::Validate() const {
   }
   if (max_unacknowledged == 0) return absl::InvalidArgumentError("max_unacknowledged is 0");
   if (write_batch < 1) return absl::InvalidArgumentError(absl::StrFormat("write_batch is %d", write_batch));
+  if (ack_timeout <= absl::ZeroDuration()) {
+    return absl::InvalidArgumentError(absl::StrFormat("ack_timeout is %s; give a duration above 0",
+                                                      absl::FormatDuration(ack_timeout)));
+  }
   if (safe_action.kind == SafeAction::Kind::kFixed) {
     if (safe_action.fixed.empty()) return absl::InvalidArgumentError("safe_action is kFixed but fixed is empty");
     if (absl::Status s = CheckVector("safe_action.fixed", safe_action.fixed, 0); !s.ok()) return s;
@@ -112,6 +116,7 @@ RobotSession::RobotSession(SessionOptions options)
     std::abort();
   }
   io_thread_ = std::thread([this] { IoLoop(); });
+  watch_thread_ = std::thread([this] { WatchLoop(); });
 }
 
 RobotSession::~RobotSession() { Stop(); }
@@ -123,6 +128,7 @@ void RobotSession::Stop() {
     if (context_ != nullptr) context_->TryCancel();
   }
   if (io_thread_.joinable()) io_thread_.join();
+  if (watch_thread_.joinable()) watch_thread_.join();
 }
 
 absl::StatusOr<Identity> RobotSession::Register(const std::string& address,
@@ -195,6 +201,7 @@ absl::Status RobotSession::Record(const StepRecord& step) {
         "%d transitions wait for an acknowledgement (max_unacknowledged); is forayd at %s reachable?",
         unacked_.size(), options_.address));
   }
+  if (unacked_.empty()) waiting_since_ = absl::Now();
   v1::Transition& t = unacked_.emplace_back();
   if (next_seq_ != 0) t.set_seq(next_seq_++);
   t.set_episode(step.episode);
@@ -304,8 +311,36 @@ SessionStats RobotSession::Stats() const {
   s.connects = connects_;
   s.rejected = rejected_;
   s.safe_actions = safe_actions_;
+  s.ack_wait = AckWaitLocked(absl::Now());
+  s.healthy = connected_ && s.ack_wait <= options_.ack_timeout;
+  s.stalls = stalls_;
   s.last_error = last_error_;
   return s;
+}
+
+absl::Duration RobotSession::AckWaitLocked(absl::Time now) const {
+  if (!connected_ || unacked_.empty()) return absl::ZeroDuration();
+  return std::max(absl::ZeroDuration(), now - waiting_since_);
+}
+
+void RobotSession::WatchLoop() {
+  const absl::Duration poll = std::min(absl::Seconds(1), options_.ack_timeout / 4);
+  absl::MutexLock lock(&mu_);
+  auto stop = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return stopping_; };
+  while (!mu_.AwaitWithTimeout(absl::Condition(&stop), poll)) {
+    const absl::Duration wait = AckWaitLocked(absl::Now());
+    if (wait <= options_.ack_timeout || context_ == nullptr) continue;
+    ++stalls_;
+    last_error_ = absl::StrFormat(
+        "no acknowledgement for %s with %d transitions waiting (ack_timeout %s): re-opened the "
+        "session", absl::FormatDuration(absl::Trunc(wait, absl::Milliseconds(100))), unacked_.size(),
+        absl::FormatDuration(options_.ack_timeout));
+    std::fprintf(stderr, "foray session of robot %s: %s\n", options_.identity.robot_id.c_str(),
+                 last_error_.c_str());
+    connected_ = false;
+    stream_broken_ = true;
+    context_->TryCancel();
+  }
 }
 
 void RobotSession::IoLoop() {
@@ -427,12 +462,14 @@ void RobotSession::OnWelcome(const v1::Welcome& welcome) {
   durable_seq_ = std::max(durable_seq_, server_last);
   while (!unacked_.empty() && unacked_.front().seq() <= durable_seq_) unacked_.pop_front();
   sent_ = 0;
+  waiting_since_ = absl::Now();
   connected_ = true;
   ++connects_;
   last_error_.clear();
 }
 
 void RobotSession::OnAck(const v1::Ack& ack) {
+  if (ack.durable_seq() > durable_seq_) waiting_since_ = absl::Now();
   durable_seq_ = std::max(durable_seq_, ack.durable_seq());
   size_t popped = 0;
   for (; !unacked_.empty() && unacked_.front().seq() <= durable_seq_; ++popped) unacked_.pop_front();

@@ -3,6 +3,10 @@
 // was not acknowledged after a reconnect (with exponential backoff), and asks for plans with
 // deadlines. When no valid plan arrives in time, Act() returns the robot's safe action instead
 // (the watchdog). Thread-safe: one control thread (or several) plus the library's own I/O threads.
+// Liveness: while transitions wait, the server must acknowledge progress within ack_timeout of
+// the stream's welcome or of its previous acknowledgement; otherwise the session logs a line on
+// stderr, counts a stall and re-opens the stream, which resends what waits. Stats().healthy is
+// the figure a robot's code can check.
 //
 //   foray::client::SessionOptions options;
 //   options.identity = {robot_id, token};
@@ -83,6 +87,10 @@ struct SessionOptions {
   // Transitions written per wake-up of the I/O thread (the server commits what arrives
   // together as one group).
   int write_batch = 512;
+  // How long the server may leave waiting transitions unacknowledged on an open stream (since
+  // its welcome or its last acknowledgement) before the session re-opens the stream. Above 0;
+  // a group commit takes milliseconds, so 15 s means the session is stuck, not slow.
+  absl::Duration ack_timeout = absl::Seconds(15);
   std::string client_name = "foray-cpp/0.1";
 
   absl::Status Validate() const;
@@ -115,6 +123,11 @@ struct SessionStats {
   uint64_t connects = 0;         // successful welcomes, the first one included
   uint64_t rejected = 0;         // transitions the server refused (see last_error)
   uint64_t safe_actions = 0;     // Act() calls that returned the safe action
+  // How long the server has owed this client progress: zero when nothing waits or while
+  // disconnected. healthy: connected and ack_wait within options.ack_timeout.
+  absl::Duration ack_wait;
+  bool healthy = false;
+  uint64_t stalls = 0;           // streams re-opened for lack of acknowledgements
   std::string last_error;
 };
 
@@ -178,6 +191,9 @@ class RobotSession {
   };
 
   void IoLoop();
+  // Re-opens a connected stream that acknowledges nothing for ack_timeout.
+  void WatchLoop();
+  absl::Duration AckWaitLocked(absl::Time now) const ABSL_SHARED_LOCKS_REQUIRED(mu_);
   // Reads the stream until it ends; runs on its own thread per connection.
   void ReadLoop(grpc::ClientReaderWriter<foray::v1::SessionClientMessage,
                                          foray::v1::SessionServerMessage>* stream);
@@ -211,8 +227,13 @@ class RobotSession {
   uint64_t rejected_ ABSL_GUARDED_BY(mu_) = 0;
   uint64_t safe_actions_ ABSL_GUARDED_BY(mu_) = 0;
   std::string last_error_ ABSL_GUARDED_BY(mu_);
+  // Since when the server owes progress: the welcome, the last ack that advanced durable_seq_,
+  // or the Record() that found nothing waiting, whichever is latest.
+  absl::Time waiting_since_ ABSL_GUARDED_BY(mu_) = absl::Now();
+  uint64_t stalls_ ABSL_GUARDED_BY(mu_) = 0;
 
   std::thread io_thread_;
+  std::thread watch_thread_;
 };
 
 }  // namespace foray::client

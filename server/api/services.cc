@@ -2,6 +2,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <cstdio>
 #include <limits>
 #include <thread>
 
@@ -174,12 +175,21 @@ namespace {
 // flow control holds the client back, instead of memory growing without bound.
 class Inbox {
  public:
-  explicit Inbox(size_t capacity) : capacity_(capacity) {}
-  // Waits while the inbox is full; false when it was closed meanwhile.
+  // `what` names the session in the server's log.
+  Inbox(size_t capacity, std::string what) : capacity_(capacity), what_(std::move(what)) {}
+  // Waits while the inbox is full; false when it was closed meanwhile. A wait of more than
+  // kSlowWait is logged once per wait: the session has stopped reading its client.
   bool Push(v1::SessionClientMessage message) {
+    static constexpr absl::Duration kSlowWait = absl::Seconds(10);
     absl::MutexLock lock(&mu_);
     auto room = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return closed_ || queue_.size() < capacity_; };
-    mu_.Await(absl::Condition(&room));
+    if (!mu_.AwaitWithTimeout(absl::Condition(&room), kSlowWait)) {
+      std::fprintf(stderr,
+                   "forayd: the %s stopped reading its client for %s: %zu messages wait for the "
+                   "store or for the client to read its replies (flow control holds the client)\n",
+                   what_.c_str(), absl::FormatDuration(kSlowWait).c_str(), queue_.size());
+      mu_.Await(absl::Condition(&room));
+    }
     if (closed_) return false;
     queue_.push_back(std::move(message));
     return true;
@@ -200,6 +210,7 @@ class Inbox {
 
  private:
   const size_t capacity_;
+  const std::string what_;
   absl::Mutex mu_;
   std::vector<v1::SessionClientMessage> queue_ ABSL_GUARDED_BY(mu_);
   bool closed_ ABSL_GUARDED_BY(mu_) = false;
@@ -228,8 +239,9 @@ grpc::Status SessionService::Connect(
   auto authorized = directory_->Authorize(*context, first.hello().robot_id(), /*admin_ok=*/false);
   if (!authorized.ok()) return ToGrpc(authorized.status());
   const std::shared_ptr<const RobotEntry> entry = *authorized;
-  WriteWatch::Call watched(write_watch_, context,
-                           absl::StrFormat("session of robot \"%s\"", entry->spec.name()));
+  const std::string what = absl::StrFormat("session of robot \"%s\" (%s)", entry->spec.name(),
+                                           entry->robot_id);
+  WriteWatch::Call watched(write_watch_, context, what);
   {
     v1::SessionServerMessage out;
     const robot::RobotStatus status = entry->runtime->Status();
@@ -241,7 +253,7 @@ grpc::Status SessionService::Connect(
   // A reader thread queues what arrives while this thread commits: the transitions that arrived
   // during one commit go into the next as one group (one SQLite transaction, one ack).
   // 20,000 transitions: about a second of a fast robot, a few MB at most.
-  Inbox inbox(/*capacity=*/20000);
+  Inbox inbox(/*capacity=*/20000, what);
   std::thread reader([&] {
     v1::SessionClientMessage in;
     while (stream->Read(&in)) {
@@ -270,6 +282,11 @@ grpc::Status SessionService::Connect(
       if (!s.ok()) {
         ack = ErrorReply(s, group.front().seq, 0);
         stopped = true;
+        std::fprintf(stderr,
+                     "forayd: ended the %s: a group of %zu transitions from seq %llu was not "
+                     "stored (%s); the client reconnects and resends it\n",
+                     what.c_str(), group.size(), static_cast<unsigned long long>(group.front().seq),
+                     std::string(s.message()).c_str());
       }
       replies.push_back(std::move(ack));
       group.clear();

@@ -30,6 +30,8 @@ ABSL_FLAG(int, robots, 2, "Robots streaming at once.");
 ABSL_FLAG(int, max_unacked, 20000, "A robot pauses while this many transitions wait for an ack.");
 ABSL_FLAG(int, min_transitions, 500, "Training starts after this many transitions.");
 ABSL_FLAG(int, train_every, 3000, "Retrain after this many new transitions.");
+ABSL_FLAG(double, ack_timeout_s, 15.0, "The sessions' ack_timeout, seconds.");
+ABSL_FLAG(double, flush_timeout_s, 120.0, "How long the final flush may take, seconds.");
 
 int main(int argc, char** argv) {
   absl::ParseCommandLine(argc, argv);
@@ -70,6 +72,7 @@ int main(int argc, char** argv) {
     options.identity = *id;
     options.initial_backoff = absl::Milliseconds(20);
     options.max_backoff = absl::Milliseconds(200);
+    options.ack_timeout = absl::Seconds(absl::GetFlag(FLAGS_ack_timeout_s));
     sessions.push_back(std::make_unique<foray::client::RobotSession>(options));
   }
   std::atomic<bool> stop{false};
@@ -104,8 +107,10 @@ int main(int argc, char** argv) {
       std::this_thread::sleep_for(std::chrono::milliseconds(100));
       for (int r = 0; r < robots; ++r) {
         const foray::client::SessionStats st = sessions[r]->Stats();
-        absl::PrintF("{\"robot_id\": \"%s\", \"durable_seq\": %d, \"connected\": %s}\n", ids[r].robot_id,
-                     st.durable_seq, st.connected ? "true" : "false");
+        absl::PrintF("{\"robot_id\": \"%s\", \"durable_seq\": %d, \"connected\": %s, "
+                     "\"unacknowledged\": %d, \"stalls\": %d, \"healthy\": %s}\n",
+                     ids[r].robot_id, st.durable_seq, st.connected ? "true" : "false",
+                     st.unacknowledged, st.stalls, st.healthy ? "true" : "false");
       }
       std::fflush(stdout);
     }
@@ -118,12 +123,13 @@ int main(int argc, char** argv) {
   reporter.join();
   int failed = 0;
   for (int r = 0; r < robots; ++r) {
-    const absl::Status flushed = sessions[r]->Flush(absl::Minutes(2));
+    const absl::Status flushed = sessions[r]->Flush(absl::Seconds(absl::GetFlag(FLAGS_flush_timeout_s)));
     const foray::client::SessionStats st = sessions[r]->Stats();
     absl::PrintF("{\"final\": true, \"robot_id\": \"%s\", \"recorded\": %d, \"durable_seq\": %d, "
-                 "\"unacknowledged\": %d, \"rejected\": %d, \"connects\": %d, \"flushed\": %s}\n",
+                 "\"unacknowledged\": %d, \"rejected\": %d, \"connects\": %d, \"stalls\": %d, "
+                 "\"flushed\": %s}\n",
                  ids[r].robot_id, recorded[r], st.durable_seq, st.unacknowledged, st.rejected, st.connects,
-                 flushed.ok() ? "true" : "false");
+                 st.stalls, flushed.ok() ? "true" : "false");
     if (!flushed.ok()) {
       absl::FPrintF(stderr, "crash_client: %s\n", flushed.message());
       ++failed;

@@ -4,6 +4,10 @@ Same semantics as the C++ library (client/cpp/session.h): one session stream to 
 open by a background thread; every recorded transition is buffered until the server
 acknowledges it as durable and is resent after a reconnect (exponential backoff); plans are
 requested with deadlines; act() returns the safe action when no valid plan comes in time.
+Liveness: while transitions wait, the server must acknowledge progress within `ack_timeout`
+seconds of the stream's welcome or of its previous acknowledgement; if it does not, the session
+logs a warning, counts a stall in stats(), and re-opens the stream (which resends what waits).
+stats()["healthy"] is the figure a robot's code can check.
 Thread-safe: call it from the control loop while the library's thread does the I/O.
 
     from foray_client import RobotSession
@@ -19,6 +23,7 @@ substitute for emergency stops and safety-rated limits on the robot.
 
 import collections
 import dataclasses
+import logging
 import math
 import os
 import secrets
@@ -39,6 +44,7 @@ ROBOT_HEADER = "foray-robot"
 
 
 _CODES = {c.value[0]: c for c in grpc.StatusCode}
+_LOG = logging.getLogger("foray_client")
 
 
 class ForayError(Exception):
@@ -124,13 +130,16 @@ class RobotSession:
     """A robot's session with forayd. See the module documentation."""
 
     def __init__(self, address, robot_id, token, *, credentials=None, safe_action="last",
-                 initial_backoff=0.1, max_backoff=5.0, max_unacknowledged=1_000_000, write_batch=512):
+                 initial_backoff=0.1, max_backoff=5.0, max_unacknowledged=1_000_000, write_batch=512,
+                 ack_timeout=15.0):
         if not address:
             raise ValueError("address is empty; give host:port")
         if not robot_id or not token:
             raise ValueError("robot_id and token are required (from registration)")
         if not 0 < initial_backoff <= max_backoff:
             raise ValueError(f"backoff: initial {initial_backoff} s, max {max_backoff} s; need 0 < initial <= max")
+        if not (isinstance(ack_timeout, (int, float)) and math.isfinite(ack_timeout) and ack_timeout > 0):
+            raise ValueError(f"ack_timeout is {ack_timeout!r}; give seconds > 0")
         if isinstance(safe_action, str):
             if safe_action not in ("last", "zeros"):
                 raise ValueError(f"safe_action is {safe_action!r}; use 'last', 'zeros' or an array")
@@ -144,6 +153,7 @@ class RobotSession:
         self._max_backoff = max_backoff
         self._max_unacked = max_unacknowledged
         self._write_batch = write_batch
+        self._ack_timeout = float(ack_timeout)
         self._channel = _channel(address, credentials, initial_backoff, max_backoff)
         self._stub = session_pb2_grpc.RobotSessionStub(self._channel)
         self._monitoring = monitoring_pb2_grpc.MonitoringStub(self._channel)
@@ -167,8 +177,15 @@ class RobotSession:
         self._safe_actions = 0
         self._last_error = ""
         self._generation = 0  # one per stream; a request generator ends when it changes
+        # Liveness: since when (time.monotonic()) the server owes this client progress: the
+        # stream's welcome, the last acknowledgement that advanced durable_seq, or the record()
+        # that found nothing waiting, whichever is latest.
+        self._waiting_since = time.monotonic()
+        self._stalls = 0
         self._thread = threading.Thread(target=self._io_loop, name="foray-session", daemon=True)
         self._thread.start()
+        self._watch = threading.Thread(target=self._watch_loop, name="foray-session-watch", daemon=True)
+        self._watch.start()
 
     # --- registration -------------------------------------------------------------------------
 
@@ -231,6 +248,8 @@ class RobotSession:
                                      reward=float(reward), terminal=bool(terminal))
             if self._next_seq:
                 self._next_seq += 1
+            if not self._unacked:
+                self._waiting_since = time.monotonic()
             self._unacked.append(t)
             self._cv.notify_all()
 
@@ -305,11 +324,21 @@ class RobotSession:
         return Decision(action, False, why)
 
     def stats(self):
+        """The session's figures. ack_wait_s: seconds the server has owed this client progress
+        (0 when nothing waits or while disconnected); healthy: connected and ack_wait_s within
+        ack_timeout; stalls: how often the stream was re-opened for lack of acknowledgements."""
         with self._cv:
+            wait = self._ack_wait()
             return {"connected": self._connected, "durable_seq": self._durable_seq, "next_seq": self._next_seq,
                     "unacknowledged": len(self._unacked), "connects": self._connects,
                     "rejected": self._rejected, "safe_actions": self._safe_actions,
-                    "last_error": self._last_error}
+                    "last_error": self._last_error, "ack_wait_s": wait, "stalls": self._stalls,
+                    "healthy": self._connected and wait <= self._ack_timeout}
+
+    def _ack_wait(self):
+        if not self._connected or not self._unacked:
+            return 0.0
+        return max(0.0, time.monotonic() - self._waiting_since)
 
     # --- unary helpers -------------------------------------------------------------------------
 
@@ -355,6 +384,7 @@ class RobotSession:
                 self._call.cancel()
             self._cv.notify_all()
         self._thread.join()
+        self._watch.join()
         self._channel.close()
 
     def __enter__(self):
@@ -386,44 +416,77 @@ class RobotSession:
     def _io_loop(self):
         backoff = self._initial_backoff
         while True:
-            with self._cv:
-                if self._stopping:
-                    return
-                self._generation += 1
-                generation = self._generation
-                self._sent = 0
-                connects_before = self._connects
-            call = self._stub.Connect(self._requests(generation), metadata=self._metadata, wait_for_ready=True)
-            with self._cv:
-                self._call = call
-                if self._stopping:
-                    call.cancel()
-            error = ""
             try:
-                for message in call:
-                    with self._cv:
-                        self._on_message(message)
-                        self._cv.notify_all()
-            except grpc.RpcError as e:
-                if e.code() != grpc.StatusCode.CANCELLED:
-                    error = f"session stream: {e.details()}"
-            with self._cv:
-                self._call = None
+                backoff = self._one_stream(backoff)
+            except Exception as e:  # noqa: BLE001 - the I/O thread must outlive any one stream
+                _LOG.exception("foray session of robot %s: the I/O thread caught an error; reconnecting",
+                               self.robot_id)
+                with self._cv:
+                    self._call, self._connected = None, False
+                    self._generation += 1
+                    self._last_error = f"client I/O error: {e!r}"
+                    self._cv.notify_all()
+                    if self._cv.wait_for(lambda: self._stopping, backoff):
+                        return
+            if backoff is None:
+                return
+
+    def _watch_loop(self):
+        """Re-opens a stream that is connected but acknowledges nothing for ack_timeout seconds."""
+        poll = min(1.0, self._ack_timeout / 4)
+        with self._cv:
+            while not self._cv.wait_for(lambda: self._stopping, poll):
+                wait = self._ack_wait()
+                if wait <= self._ack_timeout or self._call is None:
+                    continue
+                self._stalls += 1
+                self._last_error = (f"no acknowledgement for {wait:.1f} s with {len(self._unacked)} transitions "
+                                    f"waiting (ack_timeout {self._ack_timeout:g} s): re-opened the session")
+                _LOG.warning("foray session of robot %s: %s", self.robot_id, self._last_error)
                 self._connected = False
-                self._generation += 1  # ends this stream's request generator
-                self._plan_requests.clear()
-                for waiter in self._waiters.values():
-                    if not waiter[0]:
-                        waiter[0], waiter[1] = True, ForayError(grpc.StatusCode.UNAVAILABLE,
-                                                                "the session stream to forayd closed")
-                if error:
-                    self._last_error = error
+                self._call.cancel()
                 self._cv.notify_all()
-                if self._connects > connects_before:
-                    backoff = self._initial_backoff
-                if self._cv.wait_for(lambda: self._stopping, backoff):
-                    return
-            backoff = min(backoff * 2, self._max_backoff)
+
+    def _one_stream(self, backoff):
+        """One stream from connect to its end; returns the next backoff, None to stop."""
+        with self._cv:
+            if self._stopping:
+                return None
+            self._generation += 1
+            generation = self._generation
+            self._sent = 0
+            connects_before = self._connects
+        call = self._stub.Connect(self._requests(generation), metadata=self._metadata, wait_for_ready=True)
+        with self._cv:
+            self._call = call
+            if self._stopping:
+                call.cancel()
+        error = ""
+        try:
+            for message in call:
+                with self._cv:
+                    self._on_message(message)
+                    self._cv.notify_all()
+        except grpc.RpcError as e:
+            if e.code() != grpc.StatusCode.CANCELLED:
+                error = f"session stream: {e.details()}"
+        with self._cv:
+            self._call = None
+            self._connected = False
+            self._generation += 1  # ends this stream's request generator
+            self._plan_requests.clear()
+            for waiter in self._waiters.values():
+                if not waiter[0]:
+                    waiter[0], waiter[1] = True, ForayError(grpc.StatusCode.UNAVAILABLE,
+                                                            "the session stream to forayd closed")
+            if error:
+                self._last_error = error
+            self._cv.notify_all()
+            if self._connects > connects_before:
+                backoff = self._initial_backoff
+            if self._cv.wait_for(lambda: self._stopping, backoff):
+                return None
+        return min(backoff * 2, self._max_backoff)
 
     def _on_message(self, m):
         kind = m.WhichOneof("message")
@@ -443,10 +506,13 @@ class RobotSession:
             while self._unacked and self._unacked[0].seq <= self._durable_seq:
                 self._unacked.popleft()
             self._sent = 0
+            self._waiting_since = time.monotonic()
             self._connected = True
             self._connects += 1
             self._last_error = ""
         elif kind == "ack":
+            if m.ack.durable_seq > self._durable_seq:
+                self._waiting_since = time.monotonic()
             self._durable_seq = max(self._durable_seq, m.ack.durable_seq)
             popped = 0
             while self._unacked and self._unacked[0].seq <= self._durable_seq:
