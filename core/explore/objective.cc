@@ -94,6 +94,46 @@ void KnownReward::Evaluate(const float* next_states, int state_stride, const flo
   }
 }
 
+absl::Status KnownTermination::Validate(int state_dim) const {
+  if (indices.empty()) {
+    if (!lower.empty() || !upper.empty()) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "known_termination has no indices but %d lower and %d upper bounds", lower.size(),
+          upper.size()));
+    }
+    return absl::OkStatus();
+  }
+  if (lower.size() != indices.size() || upper.size() != indices.size()) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "known_termination has %d indices, %d lower and %d upper bounds; they must match",
+        indices.size(), lower.size(), upper.size()));
+  }
+  for (size_t i = 0; i < indices.size(); ++i) {
+    if (indices[i] < 0 || indices[i] >= state_dim) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "known_termination.indices[%d] is %d, the state has %d values", i, indices[i],
+          state_dim));
+    }
+    if (std::isnan(lower[i]) || std::isnan(upper[i]) || !(lower[i] <= upper[i])) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "known_termination bound %d: lower %g is not <= upper %g", i, lower[i], upper[i]));
+    }
+  }
+  return absl::OkStatus();
+}
+
+void KnownTermination::Evaluate(const float* next_states, int state_stride, int rows,
+                                float* out) const {
+  for (int r = 0; r < rows; ++r) {
+    const float* s = next_states + static_cast<std::ptrdiff_t>(r) * state_stride;
+    bool inside = true;
+    for (size_t i = 0; i < indices.size() && inside; ++i) {
+      inside = s[indices[i]] >= lower[i] && s[indices[i]] <= upper[i];
+    }
+    out[r] = inside != outside ? 1.0f : 0.0f;
+  }
+}
+
 absl::Status ObjectiveOptions::Validate(int state_dim, int action_dim) const {
   if (!std::isfinite(reward_weight) || !std::isfinite(information_weight)) {
     return absl::InvalidArgumentError(absl::StrFormat(
@@ -117,6 +157,11 @@ absl::Status ObjectiveOptions::Validate(int state_dim, int action_dim) const {
     default:
       return absl::InvalidArgumentError("estimator is not a known estimator");
   }
+  if (!std::isfinite(terminal_value)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("terminal_value is %g, must be finite", terminal_value));
+  }
+  if (absl::Status s = known_termination.Validate(state_dim); !s.ok()) return s;
   return known_reward.Validate(state_dim, action_dim);
 }
 

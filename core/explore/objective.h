@@ -2,7 +2,9 @@
 // estimator, and the known reward functions a robot's spec may give instead of the learned
 // reward head. Values; reading from several threads is safe.
 //
-//   J = mean_p sum_t gamma^t ( w_r E[r_t] + w_i I_t )
+//   J = mean_p sum_t gamma^t [ s_t ( w_r E[r_t] + w_i I_t ) + (s_t - s_{t+1}) V_term ],
+// with s_t the particle's probability of not having ended the episode before step t
+// (core/plan/rollout.h).
 #ifndef FORAY_CORE_EXPLORE_OBJECTIVE_H_
 #define FORAY_CORE_EXPLORE_OBJECTIVE_H_
 
@@ -43,6 +45,24 @@ struct KnownReward {
                 int action_stride, int rows, int state_dim, int action_dim, float* out) const;
 };
 
+// States that end the episode, given instead of learned (the same region syntax as
+// KnownReward's kRegion): a transition ends the episode when its next state lies inside the box
+// lower_i <= s'_{indices_i} <= upper_i for every i, or, with `outside`, when it lies outside it
+// (the usual way to say "the object left the workspace"). Empty indices: none given.
+struct KnownTermination {
+  std::vector<int> indices;
+  std::vector<double> lower;
+  std::vector<double> upper;
+  bool outside = false;
+
+  bool given() const { return !indices.empty(); }
+  // InvalidArgument naming the field and the values when the region does not fit the state.
+  absl::Status Validate(int state_dim) const;
+  // out[r] = 1 when row r's next state ends the episode, else 0. next_states: (rows,
+  // state_dim) with row stride `state_stride`, robot units. Requires given().
+  void Evaluate(const float* next_states, int state_stride, int rows, float* out) const;
+};
+
 struct ObjectiveOptions {
   double reward_weight = 1.0;       // w_r, per reward unit
   double information_weight = 1.0;  // w_i, per nat
@@ -50,6 +70,14 @@ struct ObjectiveOptions {
   Estimator estimator = Estimator::kPairwiseKl;
   int monte_carlo_samples = 1000;   // per row, kMonteCarlo only
   KnownReward known_reward;
+  // Paid once, in reward units, when a rollout ends the episode: V_term above, weighted by the
+  // probability of ending at that step. 0 (the default) means an ended episode simply earns
+  // nothing more: no reward, no information. Beware: when rewards are costs (negative per
+  // step), ending early then looks attractive; give a terminal_value at least as low as the
+  // rest of an episode's cost (e.g. horizon * the worst step cost) to make it a loss. Finite.
+  double terminal_value = 0.0;
+  // When given, termination comes from this region instead of the model's termination head.
+  KnownTermination known_termination;
 
   absl::Status Validate(int state_dim, int action_dim) const;
 };

@@ -129,9 +129,10 @@ absl::StatusOr<EnsembleT<Scalar>> EnsembleT<Scalar>::Create(int state_dim, int a
   e.action_dim_ = action_dim;
   e.activation_ = options.activation;
   e.hidden_widths_ = options.hidden_widths;
+  e.termination_head_ = options.termination_head;
   std::vector<int> widths = {state_dim + action_dim};
   widths.insert(widths.end(), options.hidden_widths.begin(), options.hidden_widths.end());
-  widths.push_back(2 * (state_dim + 1));
+  widths.push_back(2 * (state_dim + 1) + (options.termination_head ? 1 : 0));
   e.offsets_ = MemberParamOffsets(widths);
   e.params_ = Matrix::Zero(e.num_member_params(), options.ensemble_size);
   Rng rng(seed);
@@ -145,6 +146,12 @@ absl::StatusOr<EnsembleT<Scalar>> EnsembleT<Scalar>::Create(int state_dim, int a
         e.params_(e.weight_offset(l) + i, b) = static_cast<Scalar>(z * std);
       }
     }
+  }
+  if (e.termination_head_) {
+    // The head starts at a small termination probability (1%), not at 1/2: untrained, it
+    // should not make every rollout's survival halve per step.
+    e.params_.row(e.bias_offset(e.num_layers() - 1) + 2 * e.output_dim()).setConstant(
+        static_cast<Scalar>(std::log(0.01 / 0.99)));
   }
   e.max_log_var_ = Vector::Constant(e.output_dim(), static_cast<Scalar>(options.initial_max_log_var));
   e.min_log_var_ = Vector::Constant(e.output_dim(), static_cast<Scalar>(options.initial_min_log_var));
@@ -160,12 +167,36 @@ int EnsembleT<Scalar>::layer_fan_in(int layer) const {
 
 template <typename Scalar>
 int EnsembleT<Scalar>::layer_fan_out(int layer) const {
-  return layer == num_layers() - 1 ? 2 * output_dim() : hidden_widths_[layer];
+  return layer == num_layers() - 1 ? 2 * output_dim() + (termination_head_ ? 1 : 0)
+                                   : hidden_widths_[layer];
+}
+
+template <typename Scalar>
+EnsembleT<Scalar> EnsembleT<Scalar>::WithTerminationHead(double initial_probability) const {
+  if (termination_head_) return *this;
+  EnsembleT e = *this;
+  e.termination_head_ = true;
+  std::vector<int> widths = {input_dim()};
+  widths.insert(widths.end(), hidden_widths_.begin(), hidden_widths_.end());
+  widths.push_back(2 * output_dim() + 1);
+  e.offsets_ = MemberParamOffsets(widths);
+  e.params_ = Matrix::Zero(e.num_member_params(), size());
+  const int last = num_layers() - 1;
+  for (int l = 0; l < num_layers(); ++l) {
+    const int weights = layer_fan_in(l) * layer_fan_out(l);
+    // Column-major (fan_in, fan_out) blocks: the old columns are a prefix of the new block.
+    e.params_.middleRows(e.weight_offset(l), weights) = params_.middleRows(weight_offset(l), weights);
+    e.params_.middleRows(e.bias_offset(l), layer_fan_out(l)) =
+        params_.middleRows(bias_offset(l), layer_fan_out(l));
+  }
+  e.params_.row(e.bias_offset(last) + 2 * output_dim())
+      .setConstant(static_cast<Scalar>(std::log(initial_probability / (1.0 - initial_probability))));
+  return e;
 }
 
 template <typename Scalar>
 void EnsembleT<Scalar>::MemberForward(int member, const Matrix& x, Matrix* mean,
-                                      Matrix* log_var) const {
+                                      Matrix* log_var, Matrix* term_logit) const {
   FORAY_CHECK(member >= 0 && member < size(), "member index out of range");
   FORAY_CHECK(x.cols() == input_dim(), "input has the wrong number of columns");
   const Scalar* p = params_.col(member).data();
@@ -180,7 +211,8 @@ void EnsembleT<Scalar>::MemberForward(int member, const Matrix& x, Matrix* mean,
   }
   const int d = output_dim();
   *mean = h.leftCols(d);
-  const auto raw = h.rightCols(d).array();
+  if (term_logit != nullptr) *term_logit = h.rightCols(termination_head_ ? 1 : 0);
+  const auto raw = h.middleCols(d, d).array();
   const auto max_lv = max_log_var_.transpose().array();
   const auto min_lv = min_log_var_.transpose().array();
   const auto upper = (-Softplus((max_lv.replicate(raw.rows(), 1) - raw).eval()) +
@@ -193,23 +225,28 @@ void EnsembleT<Scalar>::MemberForward(int member, const Matrix& x, Matrix* mean,
 
 template <typename Scalar>
 Scalar EnsembleT<Scalar>::MemberLoss(int member, const Matrix& x, const Matrix& y) const {
-  FORAY_CHECK(y.cols() == output_dim() && y.rows() == x.rows(), "target shape mismatch");
+  FORAY_CHECK((y.cols() == output_dim() || y.cols() == output_dim() + 1) && y.rows() == x.rows(),
+              "target shape mismatch");
   Matrix mean, log_var;
   MemberForward(member, x, &mean, &log_var);
-  const auto err2 = (mean - y).array().square();
+  const auto err2 = (mean - y.leftCols(output_dim())).array().square();
   const double sum =
       (Scalar(0.5) * (err2 * (-log_var.array()).exp() + log_var.array())).template cast<double>().sum();
-  return static_cast<Scalar>(sum / static_cast<double>(y.size()) + kHalfLog2Pi);
+  return static_cast<Scalar>(sum / static_cast<double>(mean.size()) + kHalfLog2Pi);
 }
 
 template <typename Scalar>
 Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, const Matrix& y,
                                                 Scalar* grad_params, Vector* grad_max_log_var,
                                                 Vector* grad_min_log_var,
-                                                GradientWorkspace* workspace) const {
+                                                GradientWorkspace* workspace,
+                                                const TerminationLoss& termination,
+                                                Scalar* termination_bce) const {
   FORAY_CHECK(member >= 0 && member < size(), "member index out of range");
   FORAY_CHECK(x.cols() == input_dim(), "input has the wrong number of columns");
-  FORAY_CHECK(y.cols() == output_dim() && y.rows() == x.rows(), "target shape mismatch");
+  FORAY_CHECK((y.cols() == output_dim() || y.cols() == output_dim() + 1) && y.rows() == x.rows(),
+              "target shape mismatch");
+  const bool train_head = termination_head_ && y.cols() == output_dim() + 1;
   GradientWorkspace local;
   GradientWorkspace& ws = workspace != nullptr ? *workspace : local;
   const Scalar* p = params_.col(member).data();
@@ -232,7 +269,7 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
   }
   const int d = output_dim();
   const auto mean = ws.out.leftCols(d).array();
-  const auto raw = ws.out.rightCols(d).array();
+  const auto raw = ws.out.middleCols(d, d).array();
   const auto max_lv = max_log_var_.transpose().array().replicate(rows, 1).eval();
   const auto min_lv = min_log_var_.transpose().array().replicate(rows, 1).eval();
   const auto u = (max_lv - raw).eval();              // max_lv - raw
@@ -240,22 +277,42 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
   const auto v = (upper - min_lv).eval();
   const auto log_var = (min_lv + Softplus(v)).eval();
   const auto inv_var = (-log_var).exp().eval();
-  const auto err = (mean - y.array()).eval();
+  const auto err = (mean - y.leftCols(d).array()).eval();
+  const Eigen::Index elements = rows * d;
 
   const double loss =
       (Scalar(0.5) * (err.square() * inv_var + log_var)).template cast<double>().sum() /
-          static_cast<double>(y.size()) +
+          static_cast<double>(elements) +
       kHalfLog2Pi;
 
   // Backward. dL/dmu = err * inv_var / N; dL/dlv = 0.5 (1 - err^2 inv_var) / N.
-  const Scalar inv_n = Scalar(1) / static_cast<Scalar>(y.size());
+  const Scalar inv_n = Scalar(1) / static_cast<Scalar>(elements);
   const auto d_lv = (Scalar(0.5) * inv_n * (Scalar(1) - err.square() * inv_var)).eval();
   const auto sig_u = Sigmoid(u).eval();
   const auto sig_v = Sigmoid(v).eval();
   Matrix& delta = ws.delta;
-  delta.resize(rows, 2 * d);
+  delta.resize(rows, layer_fan_out(layers - 1));
   delta.leftCols(d) = (err * inv_var * inv_n).matrix();
-  delta.rightCols(d) = (d_lv * sig_v * sig_u).matrix();
+  delta.middleCols(d, d) = (d_lv * sig_v * sig_u).matrix();
+  if (termination_head_) {
+    // Weighted BCE with logits, written as PyTorch does for stability:
+    //   (1 - t) z + (1 + (w_pos - 1) t) softplus(-z);
+    // d/dz = sigmoid(z) (1 - t + w_pos t) - w_pos t.
+    if (train_head) {
+      const auto z = ws.out.col(2 * d).array();
+      const auto t = y.col(d).array();
+      const Scalar w_pos = static_cast<Scalar>(termination.pos_weight);
+      const auto coeff = (Scalar(1) + (w_pos - Scalar(1)) * t).eval();
+      const double bce = ((Scalar(1) - t) * z + coeff * Softplus((-z).eval()))
+                             .template cast<double>().sum() / static_cast<double>(rows);
+      if (termination_bce != nullptr) *termination_bce = static_cast<Scalar>(bce);
+      const Scalar scale = static_cast<Scalar>(termination.weight) / static_cast<Scalar>(rows);
+      delta.col(2 * d) = (scale * (Sigmoid(z.eval()) * coeff - w_pos * t)).matrix();
+    } else {
+      delta.col(2 * d).setZero();
+      if (termination_bce != nullptr) *termination_bce = Scalar(0);
+    }
+  }
   *grad_max_log_var += (d_lv * sig_v * (Scalar(1) - sig_u)).matrix().colwise().sum().transpose();
   *grad_min_log_var += (d_lv * (Scalar(1) - sig_v)).matrix().colwise().sum().transpose();
 
@@ -273,6 +330,21 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
     }
   }
   return static_cast<Scalar>(loss);
+}
+
+template <typename Scalar>
+absl::Status EnsembleT<Scalar>::PredictTermination(const Matrix& states, const Matrix& actions,
+                                                   Matrix* probability) const {
+  FORAY_RETURN_IF_ERROR(CheckRows(states, actions));
+  probability->setZero(states.rows(), size());
+  if (!termination_head_) return absl::OkStatus();
+  const Matrix x = NormalizedInput(states, actions);
+  Matrix mean_z, log_var_z, logit;
+  for (int b = 0; b < size(); ++b) {
+    MemberForward(b, x, &mean_z, &log_var_z, &logit);
+    probability->col(b) = Sigmoid(logit.col(0).array().eval()).matrix();
+  }
+  return absl::OkStatus();
 }
 
 template <typename Scalar>

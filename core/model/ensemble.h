@@ -6,9 +6,12 @@
 // normalised target y = norm([next_state - state, reward]) (Chua et al. 2018, "Deep
 // Reinforcement Learning in a Handful of Trials using Probabilistic Dynamics Models"):
 //   h_0 = x,  h_l = act(h_{l-1} W_l + b_l)  for the hidden layers,
-//   [mu, raw] = h_L W_out + b_out,           mu and raw each (output_dim),
+//   [mu, raw, z] = h_L W_out + b_out,        mu and raw each (output_dim), z one column,
 //   lv = max_lv - softplus(max_lv - raw),  lv = min_lv + softplus(lv - min_lv),
-// with the log-variance bounds max_lv, min_lv learned and shared by all members.
+// with the log-variance bounds max_lv, min_lv learned and shared by all members. z is the
+// termination head's logit: p_term = sigmoid(z) is the probability that the transition ends
+// the episode (an irrecoverable state: a dropped object, a fall). It exists when the ensemble
+// was made with a termination head (the default; models saved before it have none).
 //
 //   auto ensemble = Ensemble::Create(/*state_dim=*/4, /*action_dim=*/1, EnsembleOptions{}, 7);
 //   std::vector<Eigen::MatrixXf> means, variances;
@@ -39,6 +42,8 @@ struct EnsembleOptions {
   // are those of Chua et al. 2018's reference setup (common practice, quoted from memory).
   double initial_max_log_var = 0.5;
   double initial_min_log_var = -10.0;
+  // A termination head: one more output column per member, a Bernoulli logit.
+  bool termination_head = true;
 
   absl::Status Validate() const;
 };
@@ -65,11 +70,12 @@ class EnsembleT {
   // Outputs are the state delta then the reward: state_dim + 1.
   int output_dim() const { return state_dim_ + 1; }
   int size() const { return static_cast<int>(params_.cols()); }
+  bool has_termination_head() const { return termination_head_; }
   Activation activation() const { return activation_; }
   const std::vector<int>& hidden_widths() const { return hidden_widths_; }
 
   // Parameter layout of one member: for each layer l (hidden layers, then the output layer of
-  // width 2 * output_dim), the weights W_l as a column-major (fan_in, fan_out) block, then the
+  // width 2 * output_dim, plus 1 with a termination head), the weights W_l as a column-major (fan_in, fan_out) block, then the
   // bias (fan_out). Column b of params() holds member b.
   int num_layers() const { return static_cast<int>(hidden_widths_.size()) + 1; }
   int layer_fan_in(int layer) const;
@@ -99,28 +105,47 @@ class EnsembleT {
   // --- Normalised space ------------------------------------------------------------------
 
   // Member `member` on x (rows, input_dim), normalised inputs. Writes mean and bounded
-  // log-variance, each (rows, output_dim), normalised outputs. Aborts on a shape mismatch
-  // (internal entry point; the raw-unit entry points below validate).
-  void MemberForward(int member, const Matrix& x, Matrix* mean, Matrix* log_var) const;
+  // log-variance, each (rows, output_dim), normalised outputs, and when term_logit is not null
+  // the termination logit (rows, 1) (zeros-sized (rows, 0) without a head). Aborts on a shape
+  // mismatch (internal entry point; the raw-unit entry points below validate).
+  void MemberForward(int member, const Matrix& x, Matrix* mean, Matrix* log_var,
+                     Matrix* term_logit = nullptr) const;
 
   // Mean Gaussian negative log-likelihood per element of member `member` on (x, y):
   //   L = 1/(rows * output_dim) * sum 0.5 * [ (mu - y)^2 exp(-lv) + lv + ln(2 pi) ],
-  // x: (rows, input_dim), y: (rows, output_dim), normalised. Writes dL/dparams of the member
-  // to grad_params (num_member_params scalars, overwritten) and adds dL/dmax_lv and dL/dmin_lv
+  // x: (rows, input_dim), y: (rows, output_dim), normalised. Writes dL/dgrad of the member to
+  // grad_params (num_member_params scalars, overwritten) and adds dL/dmax_lv and dL/dmin_lv
   // to *grad_max_log_var and *grad_min_log_var (output_dim each). Returns L.
+  // With a termination head, y may carry one more column, the terminal flag t (0 or 1); then
+  // the head is trained too, by the weighted binary cross-entropy of PyTorch's
+  // binary_cross_entropy_with_logits(z, t, pos_weight=w_pos) (mean over rows):
+  //   BCE = 1/rows * sum -[ w_pos t ln sigmoid(z) + (1 - t) ln(1 - sigmoid(z)) ],
+  // the gradient is that of L + termination.weight * BCE, and BCE is written to
+  // *termination_bce (when not null). Without the column the head's gradient is zero.
   // `workspace` holds the layer buffers between calls (one per thread); null: a fresh one.
   struct GradientWorkspace {
     std::vector<Matrix> hidden;  // per hidden layer: act(z_l), the next layer's input
     std::vector<Matrix> slope;   // per hidden layer: act'(z_l)
     Matrix out, delta, back;
   };
+  struct TerminationLoss {
+    double weight = 1.0;      // of the BCE beside the NLL, >= 0
+    double pos_weight = 1.0;  // w_pos: weight of the terminal rows, >= 1 (rare terminals count)
+  };
   Scalar MemberLossAndGradient(int member, const Matrix& x, const Matrix& y,
                                Scalar* grad_params, Vector* grad_max_log_var,
                                Vector* grad_min_log_var,
-                               GradientWorkspace* workspace = nullptr) const;
+                               GradientWorkspace* workspace = nullptr,
+                               const TerminationLoss& termination = {},
+                               Scalar* termination_bce = nullptr) const;
 
-  // L of MemberLossAndGradient without the gradient.
+  // L of MemberLossAndGradient without the gradient (y's terminal column, if any, ignored).
   Scalar MemberLoss(int member, const Matrix& x, const Matrix& y) const;
+
+  // A copy with a termination head added (no-op when there is one): the new output column has
+  // zero weights and the bias logit(initial_probability), so the head predicts that
+  // probability everywhere until trained. For warm starts from models saved without a head.
+  EnsembleT WithTerminationHead(double initial_probability = 0.01) const;
 
   // --- Robot units -----------------------------------------------------------------------
 
@@ -134,6 +159,11 @@ class EnsembleT {
   absl::Status PredictMember(int member, const Matrix& states, const Matrix& actions,
                              Matrix* mean, Matrix* variance) const;
 
+  // Termination probability of every member at every row: (rows, B), sigmoid of the head's
+  // logit; zeros without a head. Shapes as in Predict.
+  absl::Status PredictTermination(const Matrix& states, const Matrix& actions,
+                                  Matrix* probability) const;
+
  private:
   absl::Status CheckRows(const Matrix& states, const Matrix& actions) const;
   Matrix NormalizedInput(const Matrix& states, const Matrix& actions) const;
@@ -143,6 +173,7 @@ class EnsembleT {
   int state_dim_ = 0;
   int action_dim_ = 0;
   Activation activation_ = Activation::kSilu;
+  bool termination_head_ = false;
   std::vector<int> hidden_widths_;
   std::vector<int> offsets_;  // weight and bias offset per layer, then the total
   Matrix params_;

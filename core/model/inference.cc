@@ -174,6 +174,7 @@ InferenceEnsemble::InferenceEnsemble(const Ensemble& e)
       members_(e.size()),
       input_dim_(e.input_dim()),
       output_dim_(e.output_dim()),
+      termination_head_(e.has_termination_head()),
       activation_(e.activation()) {
   layers_.resize(members_);
   for (int b = 0; b < members_; ++b) {
@@ -199,7 +200,7 @@ InferenceEnsemble::InferenceEnsemble(const Ensemble& e)
 }
 
 void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, float* mean,
-                                      float* log_var, Workspace* ws) const {
+                                      float* log_var, Workspace* ws, float* term_logit) const {
   FORAY_CHECK(member >= 0 && member < members_, "member index out of range");
   const std::vector<Layer>& layers = layers_[member];
   const Eigen::Index need = static_cast<Eigen::Index>(rows) * widest_pad_;
@@ -226,6 +227,9 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
     std::copy(row, row + d, mean + static_cast<size_t>(r) * d);
     std::copy(row + d, row + 2 * d, log_var + static_cast<size_t>(r) * d);
   }
+  if (termination_head_ && term_logit != nullptr) {
+    for (int r = 0; r < rows; ++r) term_logit[r] = in[static_cast<size_t>(r) * ld_in + 2 * d];
+  }
   // Chua et al. 2018 bounds, over the contiguous (rows, d) block rather than per padded row
   // (every SIMD lane does useful work): lv = max - softplus(max - raw);
   // lv = min + softplus(lv - min), softplus(x) = max(x, 0) + ln(1 + e^-|x|).
@@ -250,7 +254,7 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
 }
 
 void InferenceEnsemble::ForwardAll(const float* x, int rows, float* mean, float* log_var,
-                                   const ParallelFor& parallel) const {
+                                   const ParallelFor& parallel, float* term_logit) const {
   const int blocks = (rows + kBlockRows - 1) / kBlockRows;
   RunTasks(parallel, members_ * blocks, [&](int task) {
     const int b = task / blocks;
@@ -260,7 +264,9 @@ void InferenceEnsemble::ForwardAll(const float* x, int rows, float* mean, float*
     // more, map and fault in) its layer buffers for every block.
     thread_local Workspace ws;
     ForwardMember(b, x + static_cast<size_t>(r0) * input_dim_, std::min(kBlockRows, rows - r0),
-                  mean + at, log_var + at, &ws);
+                  mean + at, log_var + at, &ws,
+                  term_logit == nullptr ? nullptr
+                                        : term_logit + static_cast<size_t>(b) * rows + r0);
   });
 }
 

@@ -41,17 +41,21 @@ class InferenceEnsemble {
 
   // Member `member` at `rows` normalised inputs. x: (rows, input_dim) row-major, contiguous.
   // Writes mean and bounded log-variance, each (rows, output_dim) row-major, normalised
-  // outputs: the same numbers as Ensemble::MemberForward up to float rounding.
+  // outputs: the same numbers as Ensemble::MemberForward up to float rounding. With a
+  // termination head and term_logit not null, writes the head's logit (rows); without a
+  // head, term_logit is left alone.
   void ForwardMember(int member, const float* x, int rows, float* mean, float* log_var,
-                     Workspace* workspace) const;
+                     Workspace* workspace, float* term_logit = nullptr) const;
+  bool has_termination_head() const { return termination_head_; }
 
   // Every member at the same `rows` normalised inputs x (rows, input_dim), row-major. Writes
   // member b's mean and log-variance at mean + b * rows * output_dim (and likewise log_var),
   // each (rows, output_dim) row-major. Runs one task per member and block of up to kBlockRows
   // rows through `parallel`; the numbers do not depend on the split.
   static constexpr int kBlockRows = 512;
+  // term_logit (may be null): member b's logits at term_logit + b * rows, with a head.
   void ForwardAll(const float* x, int rows, float* mean, float* log_var,
-                  const ParallelFor& parallel) const;
+                  const ParallelFor& parallel, float* term_logit = nullptr) const;
 
  private:
   struct Layer {
@@ -67,6 +71,7 @@ class InferenceEnsemble {
   int members_ = 0;
   int input_dim_ = 0;
   int output_dim_ = 0;
+  bool termination_head_ = false;  // the output layer's column 2 * output_dim is its logit
   Activation activation_ = Activation::kSilu;
   int widest_pad_ = 0;  // widest padded layer output: the row stride of the scratch buffers
   std::vector<std::vector<Layer>> layers_;  // [member][layer]

@@ -15,7 +15,9 @@ static_assert(std::endian::native == std::endian::little,
               "the ensemble byte format is written for little-endian machines");
 
 constexpr char kMagic[8] = {'F', 'O', 'R', 'A', 'Y', 'E', 'N', 'S'};
-constexpr uint32_t kFormat = 1;
+// Format 2 adds a flag for the termination head after the hidden widths; format 1 (no head)
+// is still read.
+constexpr uint32_t kFormat = 2;
 
 template <typename T>
 void Put(std::string* out, T value) {
@@ -71,6 +73,7 @@ std::string SerializeEnsemble(const Ensemble& e) {
   Put<uint32_t>(&out, static_cast<uint32_t>(e.activation()));
   Put<uint32_t>(&out, e.hidden_widths().size());
   for (int w : e.hidden_widths()) Put<uint32_t>(&out, w);
+  Put<uint32_t>(&out, e.has_termination_head() ? 1 : 0);
   Put<uint64_t>(&out, e.version());
   PutFloats(&out, e.input_normalizer().mean().data(), e.input_dim());
   PutFloats(&out, e.input_normalizer().std().data(), e.input_dim());
@@ -89,9 +92,9 @@ absl::StatusOr<Ensemble> DeserializeEnsemble(std::string_view bytes) {
   Reader r(bytes.substr(sizeof(kMagic)));
   uint32_t format = 0, state_dim = 0, action_dim = 0, members = 0, activation = 0, layers = 0;
   FORAY_RETURN_IF_ERROR(r.Get("format", &format));
-  if (format != kFormat) {
-    return absl::InvalidArgumentError(
-        absl::StrFormat("ensemble format is %d, this build reads format %d", format, kFormat));
+  if (format != 1 && format != kFormat) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "ensemble format is %d, this build reads formats 1 and %d", format, kFormat));
   }
   FORAY_RETURN_IF_ERROR(r.Get("state_dim", &state_dim));
   FORAY_RETURN_IF_ERROR(r.Get("action_dim", &action_dim));
@@ -110,6 +113,16 @@ absl::StatusOr<Ensemble> DeserializeEnsemble(std::string_view bytes) {
     uint32_t width = 0;
     FORAY_RETURN_IF_ERROR(r.Get("hidden width", &width));
     options.hidden_widths[l] = static_cast<int>(std::min<uint32_t>(width, 1u << 20));
+  }
+  options.termination_head = false;
+  if (format >= 2) {
+    uint32_t head = 0;
+    FORAY_RETURN_IF_ERROR(r.Get("termination head flag", &head));
+    if (head > 1) {
+      return absl::InvalidArgumentError(
+          absl::StrFormat("termination head flag is %d, expected 0 or 1", head));
+    }
+    options.termination_head = head == 1;
   }
   uint64_t version = 0;
   FORAY_RETURN_IF_ERROR(r.Get("version", &version));

@@ -62,6 +62,15 @@ absl::Status TransitionData::Validate(int state_dim, int action_dim) const {
   FORAY_RETURN_IF_ERROR(CheckFinite("actions", actions));
   FORAY_RETURN_IF_ERROR(CheckFinite("next_states", next_states));
   FORAY_RETURN_IF_ERROR(CheckFinite("rewards", rewards));
+  if (terminals.size() != 0) {
+    FORAY_RETURN_IF_ERROR(CheckShape("terminals", terminals.rows(), 1, n, 1));
+    for (Eigen::Index i = 0; i < n; ++i) {
+      if (terminals[i] != 0.0f && terminals[i] != 1.0f) {
+        return absl::InvalidArgumentError(
+            absl::StrFormat("terminals[%d] is %g, expected 0 or 1", i, terminals[i]));
+      }
+    }
+  }
   return absl::OkStatus();
 }
 
@@ -96,6 +105,14 @@ absl::Status TrainingOptions::Validate() const {
   if (!(holdout_fraction >= 0 && holdout_fraction <= 0.5)) {
     return absl::InvalidArgumentError(
         absl::StrFormat("holdout_fraction is %g, expected in [0, 0.5]", holdout_fraction));
+  }
+  if (!(termination_weight >= 0 && std::isfinite(termination_weight))) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "termination_weight is %g, expected finite and >= 0", termination_weight));
+  }
+  if (!(max_terminal_pos_weight >= 1 && max_terminal_pos_weight <= 1000)) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "max_terminal_pos_weight is %g, expected in [1, 1000]", max_terminal_pos_weight));
   }
   if (patience < 1 || patience > 10000) {
     return absl::InvalidArgumentError(
@@ -146,10 +163,30 @@ absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
     FORAY_RETURN_IF_ERROR(model.mutable_output_normalizer().Fit(train_out));
   }
   t->x_ = model.input_normalizer().Apply(inputs);
-  t->y_ = model.output_normalizer().Apply(targets);
+  const Eigen::MatrixXf y = model.output_normalizer().Apply(targets);
   const std::vector<int>& eval_rows = holdout > 0 ? t->holdout_rows_ : t->train_rows_;
-  t->holdout_x_ = GatherRows(t->x_, eval_rows.data(), static_cast<int>(eval_rows.size()));
-  t->holdout_y_ = GatherRows(t->y_, eval_rows.data(), static_cast<int>(eval_rows.size()));
+  const int n_eval = static_cast<int>(eval_rows.size());
+  t->holdout_x_ = GatherRows(t->x_, eval_rows.data(), n_eval);
+  t->holdout_y_ = GatherRows(y, eval_rows.data(), n_eval);
+  if (model.has_termination_head()) {
+    // The terminal flag rides along as y's last column (not normalised): minibatches gather it
+    // with the targets, and MemberLossAndGradient trains the head on it.
+    const Eigen::VectorXf flags =
+        data.terminals.size() == 0 ? Eigen::VectorXf::Zero(n) : data.terminals;
+    t->y_.resize(n, model.output_dim() + 1);
+    t->y_ << y, flags;
+    t->holdout_terminal_.resize(n_eval);
+    for (int i = 0; i < n_eval; ++i) t->holdout_terminal_[i] = flags[eval_rows[i]];
+    int positives = 0;
+    for (int row : t->train_rows_) positives += flags[row] != 0.0f ? 1 : 0;
+    t->terminal_rows_ = static_cast<int>(flags.sum());
+    const int negatives = static_cast<int>(t->train_rows_.size()) - positives;
+    t->pos_weight_ = positives == 0 ? 1.0
+                                    : std::clamp(static_cast<double>(negatives) / positives, 1.0,
+                                                 options.max_terminal_pos_weight);
+  } else {
+    t->y_ = y;
+  }
 
   const int n_train = static_cast<int>(t->train_rows_.size());
   t->member_rows_.resize(model.size());
@@ -175,18 +212,23 @@ absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
     *vec = Eigen::VectorXf::Zero(d);
   }
   t->best_ = t->current_;
-  t->best_holdout_nll_ = t->HoldoutNll(t->current_, {});
+  t->best_holdout_loss_ =
+      t->HoldoutLoss(t->current_, {}, &t->best_holdout_nll_, &t->best_holdout_bce_);
   return t;
 }
 
-double EnsembleTrainer::HoldoutNll(const Ensemble& model, const ParallelFor& parallel) const {
-  // The same loss as Ensemble::MemberLoss, through the inference kernels: this evaluation is a
-  // forward pass of every member over every holdout row, each epoch.
+double EnsembleTrainer::HoldoutLoss(const Ensemble& model, const ParallelFor& parallel,
+                                    double* nll, double* bce) const {
+  // The same losses as Ensemble::MemberLossAndGradient, through the inference kernels: this
+  // evaluation is a forward pass of every member over every holdout row, each epoch.
   const InferenceEnsemble fast(model);
   const int n = static_cast<int>(holdout_y_.size());  // rows * output_dim
+  const int rows = static_cast<int>(holdout_x_.rows());
+  const bool head = holdout_terminal_.size() != 0;
   Eigen::ArrayXf mean(static_cast<Eigen::Index>(n) * model.size()), log_var(mean.size());
-  fast.ForwardAll(holdout_x_.data(), static_cast<int>(holdout_x_.rows()), mean.data(),
-                  log_var.data(), parallel);
+  Eigen::ArrayXf logit(head ? static_cast<Eigen::Index>(rows) * model.size() : 0);
+  fast.ForwardAll(holdout_x_.data(), rows, mean.data(), log_var.data(), parallel,
+                  head ? logit.data() : nullptr);
   const Eigen::Map<const Eigen::ArrayXf> y(holdout_y_.data(), n);
   Eigen::ArrayXf terms(n);
   double total = 0;
@@ -200,7 +242,25 @@ double EnsembleTrainer::HoldoutNll(const Ensemble& model, const ParallelFor& par
     for (int i = 0; i < n; ++i) sum += terms[i];
     total += sum / n + kHalfLog2Pi;
   }
-  return total / model.size();
+  double total_bce = 0;
+  if (head) {
+    const double w_pos = pos_weight_;
+    for (int b = 0; b < model.size(); ++b) {
+      double sum = 0;
+      for (int i = 0; i < rows; ++i) {
+        const double z = logit[static_cast<Eigen::Index>(b) * rows + i];
+        const double t = holdout_terminal_[i];
+        const double softplus_minus_z = std::max(-z, 0.0) + std::log1p(std::exp(-std::abs(z)));
+        sum += (1 - t) * z + (1 + (w_pos - 1) * t) * softplus_minus_z;
+      }
+      total_bce += sum / rows;
+    }
+  }
+  const double mean_nll = total / model.size();
+  const double mean_bce = total_bce / model.size();
+  if (nll != nullptr) *nll = mean_nll;
+  if (bce != nullptr) *bce = mean_bce;
+  return mean_nll + options_.termination_weight * mean_bce;
 }
 
 void EnsembleTrainer::AdamStep() {
@@ -240,6 +300,7 @@ bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
   const float penalty = static_cast<float>(options_.log_var_bound_penalty);
   const Eigen::Index d = current_.output_dim();
   member_steps_.resize(members);
+  const Ensemble::TerminationLoss termination{options_.termination_weight, pos_weight_};
   double nll_sum = 0;
   for (int s = 0; s < steps; ++s) {
     const int begin = s * batch;
@@ -253,7 +314,7 @@ bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
       m.grad_max.setZero(d);
       m.grad_min.setZero(d);
       m.nll = current_.MemberLossAndGradient(b, m.x, m.y, grad_.col(b).data(), &m.grad_max,
-                                             &m.grad_min, &m.workspace);
+                                             &m.grad_min, &m.workspace, termination, &m.bce);
     });
     grad_max_.setZero();
     grad_min_.setZero();
@@ -269,9 +330,12 @@ bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
   last_train_nll_ = nll_sum / (static_cast<double>(steps) * members);
   ++epoch_;
 
-  const double holdout_nll = HoldoutNll(current_, parallel);
-  if (holdout_nll < best_holdout_nll_) {
+  double holdout_nll = 0, holdout_bce = 0;
+  const double holdout_loss = HoldoutLoss(current_, parallel, &holdout_nll, &holdout_bce);
+  if (holdout_loss < best_holdout_loss_) {
+    best_holdout_loss_ = holdout_loss;
     best_holdout_nll_ = holdout_nll;
+    best_holdout_bce_ = holdout_bce;
     best_ = current_;
     best_epoch_ = epoch_;
     epochs_since_best_ = 0;
@@ -291,6 +355,11 @@ TrainingReport EnsembleTrainer::Report() const {
   r.holdout_rows = static_cast<int>(holdout_rows_.size());
   r.train_nll = last_train_nll_;
   r.holdout_nll = best_holdout_nll_;
+  if (best_.has_termination_head()) {
+    r.terminal_rows = terminal_rows_;
+    r.terminal_pos_weight = pos_weight_;
+    r.holdout_termination_bce = best_holdout_bce_;
+  }
 
   // Moment-matched mixture of the members: mean of means; mean of variances plus the
   // variance of the means.

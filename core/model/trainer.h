@@ -32,10 +32,15 @@ struct TransitionData {
   Eigen::MatrixXf actions;      // (n, action_dim)
   Eigen::MatrixXf next_states;  // (n, state_dim)
   Eigen::VectorXf rewards;      // (n)
+  // (n): 1 where the transition ended the episode in an irrecoverable state (the client's
+  // terminal flag), else 0; empty means no terminals. An episode cut by a time limit (the
+  // next transition has a new episode id) is not a terminal: only the flag teaches the
+  // termination head.
+  Eigen::VectorXf terminals;
 
   int size() const { return static_cast<int>(states.rows()); }
   // InvalidArgument naming the array and both sizes when shapes disagree with the dimensions
-  // or with each other, or when a value is not finite.
+  // or with each other, when a value is not finite, or when a terminal flag is not 0 or 1.
   absl::Status Validate(int state_dim, int action_dim) const;
 };
 
@@ -53,6 +58,14 @@ struct TrainingOptions {
   double adam_epsilon = 1e-8;
   // Weight of the bound penalty c * (sum(max_lv) - sum(min_lv)) (Chua et al. 2018).
   double log_var_bound_penalty = 0.01;
+  // Termination head: weight of its binary cross-entropy beside the NLL (>= 0, finite), and
+  // the largest weight of a terminal row. Terminal rows are weighted by
+  // w_pos = min(non-terminal rows / terminal rows, max_terminal_pos_weight) among the training
+  // rows (PyTorch's documentation of BCEWithLogitsLoss: pos_weight = negatives / positives);
+  // the cap (range 1..1000) is common practice, so that a handful of terminals does not make
+  // the head predict termination wherever the model is unsure.
+  double termination_weight = 1.0;
+  double max_terminal_pos_weight = 10.0;
   // Fraction of transitions held out for early stopping and the report. Range [0, 0.5].
   double holdout_fraction = 0.1;
   // Stop after this many epochs without a holdout improvement. Range 1..10000.
@@ -80,6 +93,12 @@ struct TrainingReport {
   double holdout_nll = 0;
   // Mean squared error of the ensemble mean on the holdout, normalised units.
   double holdout_mse = 0;
+  // Termination head (0 without one): terminal rows among all rows, the weight w_pos of a
+  // terminal row, and the weighted BCE (nats per row) of the kept weights on the holdout,
+  // averaged over members. Early stopping watches holdout_nll + termination_weight * this.
+  int terminal_rows = 0;
+  double terminal_pos_weight = 0;
+  double holdout_termination_bce = 0;
   // Per output dimension (state deltas, then reward): fraction of holdout targets inside the
   // ensemble's predicted 1-sigma and 2-sigma intervals (moment-matched mixture Gaussian).
   std::vector<double> within_1sigma;
@@ -111,7 +130,10 @@ class EnsembleTrainer {
 
  private:
   EnsembleTrainer(Ensemble start, const TrainingOptions& options);
-  double HoldoutNll(const Ensemble& model, const ParallelFor& parallel) const;
+  // The holdout loss early stopping watches: NLL + termination_weight * BCE; *nll and *bce
+  // (may be null) get the parts.
+  double HoldoutLoss(const Ensemble& model, const ParallelFor& parallel, double* nll,
+                     double* bce) const;
   void AdamStep();
 
   const TrainingOptions options_;
@@ -126,7 +148,10 @@ class EnsembleTrainer {
   // The evaluation rows (the holdout, or the training rows when there is none), row-major for
   // the inference kernels.
   InferenceEnsemble::RowMatrix holdout_x_;
-  InferenceEnsemble::RowMatrix holdout_y_;
+  InferenceEnsemble::RowMatrix holdout_y_;     // (rows, output_dim)
+  Eigen::VectorXf holdout_terminal_;           // (rows), empty without a termination head
+  double pos_weight_ = 1.0;                    // w_pos of a terminal row
+  int terminal_rows_ = 0;
   // AdamW state: gradients and moments of params (num_member_params, B) and of the bounds.
   Eigen::MatrixXf grad_, m_, v_;
   Eigen::VectorXf grad_max_, m_max_, v_max_, grad_min_, m_min_, v_min_;
@@ -137,13 +162,16 @@ class EnsembleTrainer {
     Ensemble::GradientWorkspace workspace;
     Eigen::VectorXf grad_max, grad_min;
     double nll = 0;
+    float bce = 0;
   };
   std::vector<MemberStep> member_steps_;
   int64_t step_ = 0;
   int epoch_ = 0;
   int best_epoch_ = 0;
   int epochs_since_best_ = 0;
+  double best_holdout_loss_ = 0;
   double best_holdout_nll_ = 0;
+  double best_holdout_bce_ = 0;
   double last_train_nll_ = 0;
   bool done_ = false;
   Rng rng_;

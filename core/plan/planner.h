@@ -51,6 +51,9 @@ struct PlanResult {
   RowMatrixXf state_std;          // (horizon, state_dim)
   Eigen::VectorXf expected_reward;   // (horizon), reward units
   Eigen::VectorXf information_gain;  // (horizon), nats
+  // (horizon): probability that the episode has not ended by the end of each step (mean over
+  // the report's particles); all 1 when the model cannot predict an end.
+  Eigen::VectorXf survival;
   // From the final rollout: J and its discounted parts sum_t gamma^t E[r_t], sum_t gamma^t I_t.
   double objective = 0.0;
   double expected_return = 0.0;

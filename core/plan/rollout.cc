@@ -36,7 +36,7 @@ EnsembleRolloutModel::EnsembleRolloutModel(const model::Ensemble& ensemble)
     flops_per_member_row_ += 2.0 * fan_in * w;
     fan_in = w;
   }
-  flops_per_member_row_ += 2.0 * fan_in * 2 * ensemble.output_dim();
+  flops_per_member_row_ += 2.0 * fan_in * ensemble.layer_fan_out(ensemble.num_layers() - 1);
 }
 
 void EnsembleRolloutModel::Evaluate(const float* states, const float* actions, int rows,
@@ -49,6 +49,7 @@ void EnsembleRolloutModel::Evaluate(const float* states, const float* actions, i
   out->output_dim = od;
   out->mean.resize(static_cast<size_t>(nb) * rows * od);
   out->log_var.resize(out->mean.size());
+  out->term_logit.resize(fast_.has_termination_head() ? static_cast<size_t>(nb) * rows : 0);
   out->input.resize(static_cast<size_t>(rows) * in_dim);
   out->scale = output_std_;
   out->offset = output_mean_;
@@ -66,7 +67,9 @@ void EnsembleRolloutModel::Evaluate(const float* states, const float* actions, i
   for (int b = 0; b < nb; ++b) {
     const std::ptrdiff_t at = static_cast<std::ptrdiff_t>(b) * rows * od;
     fast_.ForwardMember(b, x, rows, out->mean.data() + at, out->log_var.data() + at,
-                        &out->forward);
+                        &out->forward,
+                        out->term_logit.empty() ? nullptr
+                                                : out->term_logit.data() + static_cast<size_t>(b) * rows);
   }
 }
 
@@ -84,6 +87,7 @@ void LinearRolloutModel::Evaluate(const float* states, const float* actions, int
   out->output_dim = od;
   out->mean.assign(static_cast<size_t>(rows) * od, 0.0f);
   out->log_var.assign(out->mean.size(), kDeterministicLogVar);
+  out->term_logit.clear();
   out->scale = Eigen::VectorXf::Ones(od);
   out->offset = Eigen::VectorXf::Zero(od);
   using RowMajor = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
@@ -140,12 +144,17 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
   ws->actions.resize(static_cast<size_t>(rows) * ad);
   ws->reward.resize(rows);
   ws->information.assign(rows, 0.0f);
+  ws->survival.assign(rows, 1.0f);
+  ws->ends.assign(rows, 0.0f);
+  const bool known_termination = objective.known_termination.given();
+  const double v_term = objective.terminal_value;
   std::vector<double> total(candidates, 0.0);
   if (trace != nullptr) {
     trace->state_mean.setZero(horizon, sd);
     trace->state_std.setZero(horizon, sd);
     trace->expected_reward.setZero(horizon);
     trace->information_gain.setZero(horizon);
+    trace->survival.setOnes(horizon);
   }
 
   MemberPredictions& pred = ws->predictions;
@@ -205,16 +214,34 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
         s[k] += (mu[k] + std::exp(0.5f * lv[k]) * eps[k]) * pred.scale[k] + pred.offset[k];
       }
       if (learned_reward) ws->reward[r] = mu[sd] * pred.scale[sd] + pred.offset[sd];
+      if (!known_termination && !pred.term_logit.empty()) {
+        const float z = pred.term_logit[static_cast<size_t>(m) * evaluated + source];
+        ws->ends[r] = 1.0f / (1.0f + std::exp(-z));
+      }
     }
     if (!learned_reward) {
       objective.known_reward.Evaluate(ws->states.data(), sd, ws->actions.data(), ad, rows, sd,
                                       ad, ws->reward.data());
     }
+    if (known_termination) {
+      objective.known_termination.Evaluate(ws->states.data(), sd, rows, ws->ends.data());
+    }
+    // Without a way to end (no head, no region) every survival stays 1 and the sum is the
+    // plain one.
+    const bool can_end = known_termination || !pred.term_logit.empty();
     for (int n = 0; n < candidates; ++n) {
       double step = 0.0;
       for (int p = 0; p < particles; ++p) {
         const int r = n * particles + p;
-        step += w_r * ws->reward[r] + (w_i != 0.0 ? w_i * ws->information[r] : 0.0);
+        const double value = w_r * ws->reward[r] + (w_i != 0.0 ? w_i * ws->information[r] : 0.0);
+        if (can_end) {
+          const double alive = ws->survival[r];
+          const double ended = alive * ws->ends[r];
+          step += alive * value + ended * v_term;
+          ws->survival[r] = static_cast<float>(alive - ended);
+        } else {
+          step += value;
+        }
       }
       total[n] += discount * step / particles;
     }
@@ -238,6 +265,9 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
       }
       trace->expected_reward[t] = static_cast<float>(reward / particles);
       trace->information_gain[t] = static_cast<float>(information / particles);
+      double alive = 0.0;
+      for (int p = 0; p < particles; ++p) alive += ws->survival[p];
+      trace->survival[t] = static_cast<float>(alive / particles);
     }
     discount *= objective.discount;
   }

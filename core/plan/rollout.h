@@ -4,11 +4,17 @@
 // batched call (at the first step, where a candidate's particles share the initial state and
 // the action, once per candidate); the particle's next state is sampled from its own member
 // (TS-inf: member p mod B for the whole horizon; TS1: a fresh uniform draw per step), and the
-// information gain of the step is computed from all B members at the particle's state. A
-// candidate scores
-//   J = (1/P) sum_p sum_t gamma^t ( w_r r_{p,t} + w_i I_{p,t} ),
+// information gain of the step is computed from all B members at the particle's state. Each
+// particle carries its survival, the probability that its episode has not ended:
+//   s_{p,0} = 1,  s_{p,t+1} = s_{p,t} (1 - q_{p,t}),
+// with q_{p,t} the termination probability of step t under the particle's own member
+// (sigmoid of its termination head), or 0/1 from the objective's known termination region at
+// the sampled next state, or 0 when there is neither. A candidate scores
+//   J = (1/P) sum_p sum_t gamma^t [ s_{p,t} ( w_r r_{p,t} + w_i I_{p,t} )
+//                                   + (s_{p,t} - s_{p,t+1}) V_term ],
 // with r_{p,t} the expected reward under the particle's member (or the known reward at the
-// sampled next state).
+// sampled next state) and V_term the objective's terminal_value: an ended episode earns no
+// further reward and no further information, and pays V_term once.
 //
 // Models are const and safe from several threads; a RolloutWorkspace belongs to one thread.
 #ifndef FORAY_CORE_PLAN_ROLLOUT_H_
@@ -41,6 +47,9 @@ struct MemberPredictions {
   // (members, rows, output_dim) each, index (b * rows + r) * output_dim + k.
   std::vector<float> mean;
   std::vector<float> log_var;
+  // (members, rows), index b * rows + r: the termination head's logit; empty when the model
+  // has no termination head.
+  std::vector<float> term_logit;
   Eigen::VectorXf scale;   // (output_dim)
   Eigen::VectorXf offset;  // (output_dim)
   // Scratch a model may use between calls.
@@ -130,9 +139,11 @@ struct RolloutOptions {
 // Per-step detail of a rollout, for the plan result: (horizon, state_dim) means and standard
 // deviations of the particles' states after each step, and per-step particle means of the
 // expected reward and information gain (undiscounted).
+// survival: (horizon) the particles' mean probability that the episode has not ended by the
+// end of each step (all 1 when nothing can end it).
 struct RolloutTrace {
   Eigen::MatrixXf state_mean, state_std;
-  Eigen::VectorXf expected_reward, information_gain;
+  Eigen::VectorXf expected_reward, information_gain, survival;
 };
 
 // Time spent by a Score call, for the speed report.
@@ -145,7 +156,7 @@ struct RolloutStats {
 // Reused buffers of one thread's rollouts.
 struct RolloutWorkspace {
   MemberPredictions predictions;
-  std::vector<float> states, actions, first_actions, reward, information, noise;
+  std::vector<float> states, actions, first_actions, reward, information, noise, survival, ends;
   std::vector<int> member_of;
 };
 

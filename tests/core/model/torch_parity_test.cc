@@ -1,6 +1,7 @@
 // The ensemble against PyTorch (Debian's python3-torch): the same weights give the same outputs,
-// the same NLL gradients (torch.autograd on torch.nn.functional.gaussian_nll_loss), and the
-// trainer's steps equal torch.optim.AdamW's. The reference script is torch_reference.py beside
+// the same NLL gradients (torch.autograd on torch.nn.functional.gaussian_nll_loss), the same
+// termination-head logits, BCE and gradients (binary_cross_entropy_with_logits with
+// pos_weight), and the trainer's steps equal torch.optim.AdamW's. The reference script is torch_reference.py beside
 // this file; it computes in float64 from float32-representable values, so the figures below
 // are the float32 error of the C++ code.
 //
@@ -33,6 +34,7 @@ Ensemble FromReference(const Arrays& a) {
   const Eigen::MatrixXd& meta = a.at("meta");
   EnsembleOptions options;
   options.ensemble_size = static_cast<int>(meta(2));
+  options.termination_head = a.count("head") == 0 || a.at("head")(0) != 0;
   options.activation = static_cast<Activation>(static_cast<int>(meta(3)));
   options.hidden_widths.clear();
   for (int i = 4; i < meta.rows(); ++i) options.hidden_widths.push_back(static_cast<int>(meta(i)));
@@ -61,22 +63,42 @@ Ensemble FromReference(const Arrays& a) {
   return *std::move(e);
 }
 
+// "tanh" runs without a termination head (the layout of models saved before it).
 class TorchForwardTest : public ::testing::TestWithParam<std::string> {};
 
 TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
-  const Arrays a = RunReference("--case forward --activation " + GetParam(), "fwd-" + GetParam());
+  const bool head = GetParam() != "tanh";
+  const Arrays a = RunReference("--case forward --activation " + GetParam() + (head ? "" : " --no_head"),
+                                "fwd-" + GetParam());
   ASSERT_FALSE(a.empty());
   const Ensemble e = FromReference(a);
+  ASSERT_EQ(e.has_termination_head(), head);
   const Eigen::MatrixXf x = a.at("x_norm").cast<float>();
-  const Eigen::MatrixXf y = a.at("target").cast<float>();
+  Eigen::MatrixXf y = a.at("target").cast<float>();
+  if (head) {
+    y.conservativeResize(Eigen::NoChange, y.cols() + 1);
+    y.col(y.cols() - 1) = a.at("terminal").cast<float>();
+  }
+  Ensemble::TerminationLoss termination;
+  termination.pos_weight = a.at("pos_weight")(0);
+  Eigen::MatrixXf probability;
+  ASSERT_TRUE(e.PredictTermination(a.at("states").cast<float>(), a.at("actions").cast<float>(),
+                                   &probability).ok());
   std::vector<Eigen::MatrixXf> raw_means, raw_vars;
   ASSERT_TRUE(e.Predict(a.at("states").cast<float>(), a.at("actions").cast<float>(), &raw_means,
                         &raw_vars)
                   .ok());
   for (int b = 0; b < e.size(); ++b) {
     const std::string s = std::to_string(b);
-    Eigen::MatrixXf mean, log_var;
-    e.MemberForward(b, x, &mean, &log_var);
+    Eigen::MatrixXf mean, log_var, logit;
+    e.MemberForward(b, x, &mean, &log_var, &logit);
+    if (head) {
+      EXPECT_LT(RelativeError(logit.cast<double>(), a.at("logit_" + s)), 1e-5) << "member " << b;
+      EXPECT_LT(RelativeError(probability.col(b).cast<double>(), a.at("probability_" + s)), 1e-5);
+    } else {
+      EXPECT_EQ(logit.cols(), 0);
+      EXPECT_EQ(probability.col(b).cwiseAbs().maxCoeff(), 0.0f);
+    }
     // Issue target: same outputs within 1e-5 relative.
     EXPECT_LT(RelativeError(mean.cast<double>(), a.at("mean_" + s)), 1e-5) << "member " << b;
     EXPECT_LT(RelativeError(log_var.cast<double>(), a.at("log_var_" + s)), 1e-5) << "member " << b;
@@ -86,8 +108,11 @@ TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
     Eigen::VectorXf grad(e.num_member_params());
     Eigen::VectorXf grad_max = Eigen::VectorXf::Zero(e.output_dim());
     Eigen::VectorXf grad_min = Eigen::VectorXf::Zero(e.output_dim());
-    const float loss = e.MemberLossAndGradient(b, x, y, grad.data(), &grad_max, &grad_min);
+    float bce = -1;
+    const float loss = e.MemberLossAndGradient(b, x, y, grad.data(), &grad_max, &grad_min,
+                                               nullptr, termination, &bce);
     EXPECT_NEAR(loss, a.at("loss_" + s)(0), 1e-5 * std::abs(a.at("loss_" + s)(0)));
+    if (head) EXPECT_NEAR(bce, a.at("bce_" + s)(0), 1e-5 * std::abs(a.at("bce_" + s)(0)));
     // Issue target: gradients within 1e-4 relative, per parameter block.
     for (int l = 0; l < e.num_layers(); ++l) {
       const std::string sl = s + "_" + std::to_string(l);
@@ -126,6 +151,7 @@ TEST(TorchAdamWTest, TrainerStepsMatchTorchAdamW) {
   data.actions = x.rightCols(start.action_dim());
   data.next_states = data.states + y.leftCols(s);
   data.rewards = y.col(s);
+  data.terminals = a.at("terminal").cast<float>();
 
   TrainingOptions options;
   options.max_epochs = static_cast<int>(settings(0));

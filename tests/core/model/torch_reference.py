@@ -7,6 +7,7 @@ bytes). Weights are written as (fan_in, fan_out), i.e. torch.nn.Linear.weight tr
 
 The reference math is PyTorch's own: torch.nn.Linear-style affine layers, torch.nn.functional
 silu / relu / tanh / softplus, torch.nn.functional.gaussian_nll_loss (full=True) for the loss,
+torch.nn.functional.binary_cross_entropy_with_logits (with pos_weight) for the termination head,
 torch.autograd for the gradients and torch.optim.AdamW for the optimiser steps.
 
     /usr/bin/python3 torch_reference.py --case forward --activation silu --out DIR
@@ -54,8 +55,8 @@ def f32(rng, *shape, scale=1.0):
     return torch.tensor((rng.standard_normal(shape) * scale).astype(np.float32), dtype=torch.float64)
 
 
-def make_ensemble(rng, state_dim, action_dim, members, widths):
-    sizes = [state_dim + action_dim] + widths + [2 * (state_dim + 1)]
+def make_ensemble(rng, state_dim, action_dim, members, widths, head=True):
+    sizes = [state_dim + action_dim] + widths + [2 * (state_dim + 1) + (1 if head else 0)]
     layers = []
     for _ in range(members):
         member = []
@@ -71,17 +72,23 @@ def make_ensemble(rng, state_dim, action_dim, members, widths):
 
 
 def member_forward(member, x, max_lv, min_lv, activation):
-    """Returns (mean, bounded log-variance) in normalised units."""
+    """Returns (mean, bounded log-variance, termination logit or None) in normalised units."""
     h = x
     for i, (w, b) in enumerate(member):
         h = h @ w + b
         if i + 1 < len(member):
             h = ACTIVATIONS[activation](h)
-    d = h.shape[1] // 2
-    mean, raw = h[:, :d], h[:, d:]
+    d = max_lv.shape[0]
+    mean, raw = h[:, :d], h[:, d:2 * d]
+    logit = h[:, 2 * d] if h.shape[1] > 2 * d else None
     lv = max_lv - torch.nn.functional.softplus(max_lv - raw)
     lv = min_lv + torch.nn.functional.softplus(lv - min_lv)
-    return mean, lv
+    return mean, lv, logit
+
+
+def bce(logit, terminal, pos_weight):
+    return torch.nn.functional.binary_cross_entropy_with_logits(
+        logit, terminal, pos_weight=torch.tensor(pos_weight, dtype=torch.float64), reduction="mean")
 
 
 def nll(mean, log_var, target):
@@ -98,9 +105,10 @@ def write_weights(w, layers, max_lv, min_lv, prefix=""):
     w.put(f"{prefix}min_lv", min_lv)
 
 
-def write_ensemble(w, layers, max_lv, min_lv, meta):
+def write_ensemble(w, layers, max_lv, min_lv, meta, head=True):
     state_dim, action_dim, members, widths, activation = meta
     w.put("meta", [state_dim, action_dim, members, ACTIVATION_CODE[activation]] + widths)
+    w.put("head", [1 if head else 0])
     write_weights(w, layers, max_lv, min_lv)
 
 
@@ -108,15 +116,20 @@ def case_forward(args):
     rng = np.random.default_rng(args.seed)
     state_dim, action_dim, members, widths = 4, 2, 3, [32, 24]
     rows = 50
-    layers, max_lv, min_lv = make_ensemble(rng, state_dim, action_dim, members, widths)
+    head = not args.no_head
+    pos_weight = 3.5
+    layers, max_lv, min_lv = make_ensemble(rng, state_dim, action_dim, members, widths, head)
     in_mean, in_std = f32(rng, state_dim + action_dim), f32(rng, state_dim + action_dim).abs() + 0.5
     out_mean, out_std = f32(rng, state_dim + 1), f32(rng, state_dim + 1).abs() + 0.5
     states = f32(rng, rows, state_dim, scale=2.0)
     actions = f32(rng, rows, action_dim, scale=2.0)
     target = f32(rng, rows, state_dim + 1)
+    terminal = torch.tensor((rng.random(rows) < 0.2).astype(np.float64))
 
     w = Writer(args.out)
-    write_ensemble(w, layers, max_lv, min_lv, (state_dim, action_dim, members, widths, args.activation))
+    write_ensemble(w, layers, max_lv, min_lv, (state_dim, action_dim, members, widths, args.activation), head)
+    w.put("terminal", terminal)
+    w.put("pos_weight", [pos_weight])
     for name, value in [("in_mean", in_mean), ("in_std", in_std), ("out_mean", out_mean),
                         ("out_std", out_std), ("states", states), ("actions", actions),
                         ("target", target)]:
@@ -124,14 +137,21 @@ def case_forward(args):
     x = (torch.cat([states, actions], dim=1) - in_mean) / in_std
     w.put("x_norm", x)
     for b, member in enumerate(layers):
-        mean, lv = member_forward(member, x, max_lv, min_lv, args.activation)
+        mean, lv, logit = member_forward(member, x, max_lv, min_lv, args.activation)
         w.put(f"mean_{b}", mean)
         w.put(f"log_var_{b}", lv)
         w.put(f"raw_mean_{b}", mean * out_std + out_mean)
         w.put(f"raw_var_{b}", torch.exp(lv) * out_std ** 2)
         loss = nll(mean, lv, target)
+        total = loss
+        if head:
+            termination = bce(logit, terminal, pos_weight)
+            total = loss + termination  # termination weight 1
+            w.put(f"logit_{b}", logit)
+            w.put(f"probability_{b}", torch.sigmoid(logit))
+            w.put(f"bce_{b}", termination)
         params = [p for pair in member for p in pair] + [max_lv, min_lv]
-        grads = torch.autograd.grad(loss, params)
+        grads = torch.autograd.grad(total, params)
         w.put(f"loss_{b}", loss)
         for l in range(len(member)):
             w.put(f"grad_w_{b}_{l}", grads[2 * l])
@@ -142,17 +162,22 @@ def case_forward(args):
 
 
 def case_adamw(args):
-    """Full-batch AdamW steps on the summed member NLL plus the bound penalty."""
+    """Full-batch AdamW steps on the summed member NLL plus the bound penalty plus the
+    termination head's BCE (weight 1, pos_weight = non-terminal rows / terminal rows: 56 / 8)."""
     rng = np.random.default_rng(args.seed)
     state_dim, action_dim, members, widths = 3, 1, 2, [16, 16]
     rows, steps, lr, wd, penalty = 64, 3, 1e-2, 1e-2, 0.01
     layers, max_lv, min_lv = make_ensemble(rng, state_dim, action_dim, members, widths)
     x = f32(rng, rows, state_dim + action_dim)
     y = f32(rng, rows, state_dim + 1)
+    terminal = torch.zeros(rows, dtype=torch.float64)
+    terminal[rng.choice(rows, 8, replace=False)] = 1.0
+    pos_weight = (rows - 8) / 8
     w = Writer(args.out)
     write_ensemble(w, layers, max_lv, min_lv, (state_dim, action_dim, members, widths, "silu"))
     w.put("x_norm", x)
     w.put("target", y)
+    w.put("terminal", terminal)
     w.put("settings", [steps, lr, wd, penalty])
     member_params = [p for member in layers for pair in member for p in pair]
     opt = torch.optim.AdamW(
@@ -161,7 +186,10 @@ def case_adamw(args):
         lr=lr, betas=(0.9, 0.999), eps=1e-8)
     for _ in range(steps):
         opt.zero_grad()
-        loss = sum(nll(*member_forward(m, x, max_lv, min_lv, "silu"), y) for m in layers)
+        loss = 0
+        for m in layers:
+            mean, lv, logit = member_forward(m, x, max_lv, min_lv, "silu")
+            loss = loss + nll(mean, lv, y) + bce(logit, terminal, pos_weight)
         loss = loss + penalty * (max_lv.sum() - min_lv.sum())
         loss.backward()
         opt.step()
@@ -174,6 +202,7 @@ def main():
     parser.add_argument("--case", choices=["forward", "adamw"], required=True)
     parser.add_argument("--activation", choices=sorted(ACTIVATIONS), default="silu")
     parser.add_argument("--seed", type=int, default=2026)
+    parser.add_argument("--no_head", action="store_true", help="an ensemble without a termination head")
     parser.add_argument("--out", required=True)
     args = parser.parse_args()
     torch.manual_seed(args.seed)

@@ -280,18 +280,25 @@ TEST_P(RolloutSimulationTest, MatchesEachParticleSimulatedAlone) {
   // there, the information gain is the estimator over those members, the next state is drawn
   // from member m(t, p) with noise eps(t, p), the reward is that member's mean. The draws are
   // taken from Rng(seed) in the documented order (per step, per particle: the member for TS1,
-  // then state_dim normals). The batched rollout evaluates the first step once per candidate;
-  // this checks that sharing against the particle-by-particle definition.
+  // then state_dim normals). The particle's survival falls by its member's termination
+  // probability each step; the step's value is weighted by the survival before it, and
+  // terminal_value is paid on the probability of ending there. The batched rollout evaluates
+  // the first step once per candidate; this checks that sharing against the
+  // particle-by-particle definition.
   model::EnsembleOptions eo;
   eo.hidden_widths = {24, 24};
   auto ensemble = model::Ensemble::Create(3, 2, eo, 31);
   ASSERT_TRUE(ensemble.ok());
+  // Termination probabilities around one half, so that survival weighs in.
+  const int head_bias = ensemble->bias_offset(ensemble->num_layers() - 1) + 2 * ensemble->output_dim();
+  ensemble->mutable_params().row(head_bias).setConstant(0.3f);
   const EnsembleRolloutModel model(*ensemble);
   const RowCountingModel counting(model);
   explore::ObjectiveOptions objective;  // learned reward and pairwise-KL information
   objective.reward_weight = 0.7;
   objective.information_weight = 1.3;
   objective.discount = 0.9;
+  objective.terminal_value = -2.5;
   RolloutOptions options;
   options.horizon = 4;
   options.particles = 4;
@@ -327,7 +334,7 @@ TEST_P(RolloutSimulationTest, MatchesEachParticleSimulatedAlone) {
     double score = 0.0;
     for (int p = 0; p < options.particles; ++p) {
       std::vector<float> s(initial, initial + sd);
-      double discount = 1.0;
+      double discount = 1.0, survival = 1.0;
       for (int t = 0; t < options.horizon; ++t) {
         const float* a = &sequences[(n * options.horizon + t) * ad];
         model.Evaluate(s.data(), a, 1, &pred);
@@ -342,8 +349,11 @@ TEST_P(RolloutSimulationTest, MatchesEachParticleSimulatedAlone) {
                   pred.scale[k] + pred.offset[k]);
         }
         const double reward = mu[sd] * pred.scale[sd] + pred.offset[sd];
-        score += discount * (objective.reward_weight * reward +
-                             objective.information_weight * information);
+        const double ends = 1.0 / (1.0 + std::exp(-pred.term_logit[m]));
+        score += discount * (survival * (objective.reward_weight * reward +
+                                         objective.information_weight * information) +
+                             survival * ends * objective.terminal_value);
+        survival *= 1.0 - ends;
         discount *= objective.discount;
       }
     }
