@@ -114,6 +114,7 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
   result.expected_reward = trace.expected_reward;
   result.information_gain = trace.information_gain;
   result.survival = trace.survival;
+  result.min_survival = trace.min_survival;
   result.objective = objective_value;
   double discount = 1.0;
   for (int t = 0; t < options.horizon; ++t) {

@@ -54,6 +54,7 @@ struct PlanResult {
   // (horizon): probability that the episode has not ended by the end of each step (mean over
   // the report's particles); all 1 when the model cannot predict an end.
   Eigen::VectorXf survival;
+  Eigen::VectorXf min_survival;  // (horizon): the lowest particle's survival
   // From the final rollout: J and its discounted parts sum_t gamma^t E[r_t], sum_t gamma^t I_t.
   double objective = 0.0;
   double expected_return = 0.0;

@@ -155,6 +155,7 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
     trace->expected_reward.setZero(horizon);
     trace->information_gain.setZero(horizon);
     trace->survival.setOnes(horizon);
+    trace->min_survival.setOnes(horizon);
   }
 
   MemberPredictions& pred = ws->predictions;
@@ -266,8 +267,13 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
       trace->expected_reward[t] = static_cast<float>(reward / particles);
       trace->information_gain[t] = static_cast<float>(information / particles);
       double alive = 0.0;
-      for (int p = 0; p < particles; ++p) alive += ws->survival[p];
+      float lowest = 1.0f;
+      for (int p = 0; p < particles; ++p) {
+        alive += ws->survival[p];
+        lowest = std::min(lowest, ws->survival[p]);
+      }
       trace->survival[t] = static_cast<float>(alive / particles);
+      trace->min_survival[t] = lowest;
     }
     discount *= objective.discount;
   }

@@ -140,10 +140,10 @@ struct RolloutOptions {
 // deviations of the particles' states after each step, and per-step particle means of the
 // expected reward and information gain (undiscounted).
 // survival: (horizon) the particles' mean probability that the episode has not ended by the
-// end of each step (all 1 when nothing can end it).
+// end of each step (all 1 when nothing can end it); min_survival: the lowest particle's.
 struct RolloutTrace {
   Eigen::MatrixXf state_mean, state_std;
-  Eigen::VectorXf expected_reward, information_gain, survival;
+  Eigen::VectorXf expected_reward, information_gain, survival, min_survival;
 };
 
 // Time spent by a Score call, for the speed report.
