@@ -27,6 +27,7 @@
 #include <deque>
 #include <map>
 #include <memory>
+#include <optional>
 #include <string>
 #include <thread>
 #include <vector>
@@ -96,7 +97,10 @@ struct SessionOptions {
   absl::Status Validate() const;
 };
 
-// One observed step, in the robot's units (sizes as in its spec).
+// One observed step, in the robot's units (sizes as in its spec). Set `terminal` only when the
+// step ended the episode in an irrecoverable state (the object was lost, the robot left its
+// workspace or fell): the model learns to predict it. An episode cut by a time limit is not
+// terminal: leave it false and record the next episode under a new episode id.
 struct StepRecord {
   uint64_t episode = 0;
   uint32_t step = 0;
@@ -105,6 +109,18 @@ struct StepRecord {
   std::vector<double> next_state;  // state_dim values one control period later
   double reward = 0.0;
   bool terminal = false;
+};
+
+// Per-request choices of a plan.
+struct PlanChoices {
+  // Reward only (no information term) on the current model; the episode (`episode`, or else
+  // the episode of the next recorded transition) is recorded as an evaluation episode. The
+  // server refuses it (FailedPrecondition) before the robot's first model.
+  bool evaluate = false;
+  uint64_t episode = 0;
+  // Overrides of the robot's objective for this plan only (weights, discount, terminal_value,
+  // known reward or termination); absent: the robot's settings.
+  std::optional<foray::v1::ObjectiveSettings> objective;
 };
 
 // What the control loop applies this period.
@@ -170,13 +186,14 @@ class RobotSession {
   // this call waits at most `wait` for the reply. Unavailable while disconnected.
   absl::StatusOr<foray::v1::Plan> RequestPlan(const std::vector<double>& state,
                                               const std::vector<double>& previous_action,
-                                              absl::Duration compute, absl::Duration wait);
+                                              absl::Duration compute, absl::Duration wait,
+                                              const PlanChoices& choices = {});
 
   // The watchdog: the first action of a plan that arrives within `wait` and is still valid,
   // else the safe action (returned within `wait` plus scheduling noise, also when the server
   // is down). `previous_action` has action_dim values.
   Decision Act(const std::vector<double>& state, const std::vector<double>& previous_action,
-               absl::Duration compute, absl::Duration wait);
+               absl::Duration compute, absl::Duration wait, const PlanChoices& choices = {});
 
   SessionStats Stats() const;
 

@@ -52,6 +52,9 @@ ABSL_FLAG(bool, train_each_episode, false,
 ABSL_FLAG(std::string, report, "", "Append one JSON line per episode to this file.");
 ABSL_FLAG(int, min_transitions, 200, "Transitions before the first model (at registration).");
 ABSL_FLAG(int, train_every, 500, "Retrain after this many new transitions (at registration).");
+ABSL_FLAG(int, evaluate_every, 0,
+          "After every N exploration episodes, one evaluation episode: reward-only plans on the "
+          "current model, reported separately (0: none; needs a model, so it waits for the first).");
 
 namespace {
 
@@ -164,7 +167,19 @@ bool RunRobot(const std::string& kind, int index) {
   auto models = v1::Models::NewStub(
       grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials()));
 
+  const int evaluate_every = absl::GetFlag(FLAGS_evaluate_every);
+  int explored_since_evaluation = 0;
+  uint64_t known_model = 0;  // the newest model version a plan came from
   for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
+    // An evaluation episode once every evaluate_every exploration episodes, from the first
+    // model on (the server refuses to evaluate before it).
+    const bool evaluation = !noise_baseline && evaluate_every > 0 &&
+                            explored_since_evaluation >= evaluate_every && known_model > 0;
+    explored_since_evaluation = evaluation ? 0 : explored_since_evaluation + 1;
+    foray::client::PlanChoices choices;
+    choices.evaluate = evaluation;
+    choices.episode = episode_id;
+    bool lost = false;
     Eigen::VectorXd state = sim.Reset();
     std::vector<double> previous(action_dim, 0.0);
     double episode_return = 0.0, plan_ms = 0.0, gain = 0.0;
@@ -187,7 +202,7 @@ bool RunRobot(const std::string& kind, int index) {
           action[j] = std::clamp(action[j], r.min, r.max);
         }
       } else {
-        foray::client::Decision decision = session.Act(now, previous, compute, wait);
+        foray::client::Decision decision = session.Act(now, previous, compute, wait, choices);
         ++plans;
         action = std::move(decision.action);
         if (decision.planned) {
@@ -195,6 +210,7 @@ bool RunRobot(const std::string& kind, int index) {
           gain += decision.plan.steps(0).information_gain();
           from_prior += decision.plan.from_prior() ? 1 : 0;
           model_version = decision.plan.model_version();
+          known_model = std::max(known_model, model_version);
         } else if (held++ == 0) {
           Say(absl::StrFormat("%s: no plan (%s); holding the last action", name, decision.why.message()));
         }
@@ -210,7 +226,10 @@ bool RunRobot(const std::string& kind, int index) {
       record.action = action;
       record.next_state.assign(next.data(), next.data() + next.size());
       record.reward = reward;
-      record.terminal = t + 1 == steps;
+      // Only an irrecoverable state is terminal; the time limit is not (the next episode id
+      // says where the episode was cut).
+      lost = sim.Terminal(next);
+      record.terminal = lost;
       if (absl::Status s = session.Record(record); !s.ok()) {
         Say(absl::StrFormat("%s: recording a transition failed: %s", name, s.message()));
         return false;
@@ -221,7 +240,9 @@ bool RunRobot(const std::string& kind, int index) {
       if (realtime) {
         std::this_thread::sleep_until(step_start + std::chrono::duration<double>(sim.control_period_s()));
       }
+      if (lost) break;
     }
+    const char* outcome = lost ? "lost" : first_reward >= 0 ? "goal reached" : "time up";
     const double episode_s =
         std::chrono::duration<double>(std::chrono::steady_clock::now() - episode_start).count();
     if (!absl::GetFlag(FLAGS_report).empty()) {
@@ -229,9 +250,11 @@ bool RunRobot(const std::string& kind, int index) {
       std::ofstream report(absl::GetFlag(FLAGS_report), std::ios::app);
       report << absl::StrFormat(
           "{\"robot\": \"%s\", \"robot_id\": \"%s\", \"scenario\": \"%s\", \"strategy\": \"%s\", "
-          "\"episode\": %d, \"return\": %g, \"first_reward_step\": %d, \"model_version\": %d, "
+          "\"episode\": %d, \"evaluation\": %s, \"outcome\": \"%s\", \"return\": %g, "
+          "\"first_reward_step\": %d, \"model_version\": %d, "
           "\"plans\": %d, \"plan_ms\": %g, \"information_gain\": %g, \"seconds\": %g}\n",
-          name, id->robot_id, kind, absl::GetFlag(FLAGS_strategy), episode_id, episode_return,
+          name, id->robot_id, kind, absl::GetFlag(FLAGS_strategy), episode_id,
+          evaluation ? "true" : "false", outcome, episode_return,
           first_reward, model_version, plans, plans > 0 ? plan_ms / plans : 0.0,
           plans > 0 ? gain / plans : 0.0, episode_s);
     }
@@ -252,9 +275,9 @@ bool RunRobot(const std::string& kind, int index) {
       if (!status.ok()) Say(absl::StrFormat("%s: training failed: %s", name, status.error_message()));
     }
     Say(absl::StrFormat(
-        "%s episode %d: return %.0f (%s), %d transitions recorded, model v%d, plan %.1f ms, "
+        "%s %s episode %d: %s, return %.0f (%s), %d transitions recorded, model v%d, plan %.1f ms, "
         "information gain %.3f nats/step%s%s",
-        name, episode_id, episode_return,
+        name, evaluation ? "evaluation" : "exploration", episode_id, outcome, episode_return,
         first_reward >= 0 ? absl::StrFormat("zone reached at step %d", first_reward) : "zone not reached",
         seq, model_version, plan_ms / steps, gain / steps,
         from_prior > 0 ? absl::StrFormat(", %d random steps (no model yet)", from_prior) : "",

@@ -49,6 +49,9 @@ class Scenario {
   virtual Eigen::VectorXd Nominal(const Eigen::VectorXd& state) const = 0;
   // 1 inside the hidden zone, else 0.
   virtual double Reward(const Eigen::VectorXd& state) const = 0;
+  // Whether `state` is irrecoverable (the episode ends there: an object lost, a fall). The
+  // gantry and the arm have no such states.
+  virtual bool Terminal(const Eigen::VectorXd& state) const { return false; }
   // A description of the zone, for the terminal.
   virtual std::string ZoneDescription() const = 0;
 };

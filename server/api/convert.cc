@@ -134,6 +134,19 @@ absl::Status ApplyObjectiveSettings(const v1::ObjectiveSettings& s, int state_di
     }
     o->known_reward = std::move(known);
   }
+  if (s.has_terminal_value()) o->terminal_value = s.terminal_value();
+  if (s.has_known_termination()) {
+    const v1::KnownTermination& k = s.known_termination();
+    explore::KnownTermination known;
+    for (uint32_t i : k.indices()) known.indices.push_back(static_cast<int>(std::min<uint32_t>(i, 1u << 30)));
+    known.lower.assign(k.lower().begin(), k.lower().end());
+    known.upper.assign(k.upper().begin(), k.upper().end());
+    known.outside = k.outside();
+    if (known.indices.empty()) {
+      return Invalid("objective.known_termination has no indices; give the state indices of its box");
+    }
+    o->known_termination = std::move(known);
+  }
   if (absl::Status st = o->Validate(state_dim, action_dim); !st.ok()) {
     return Invalid(absl::StrCat("objective: ", st.message()));
   }
@@ -271,6 +284,12 @@ absl::StatusOr<robot::RobotConfig> ConfigFromSpec(const v1::RobotSpec& spec) {
     c.coverage_lower.assign(spec.coverage_lower().begin(), spec.coverage_lower().end());
     c.coverage_upper.assign(spec.coverage_upper().begin(), spec.coverage_upper().end());
   }
+  if (spec.has_success_return()) {
+    if (!std::isfinite(spec.success_return())) {
+      return Invalid(absl::StrFormat("spec.success_return is %g, must be finite", spec.success_return()));
+    }
+    c.success_return = spec.success_return();
+  }
   if (spec.coverage_cells() != 0) c.coverage_cells = static_cast<int>(spec.coverage_cells());
   if (c.coverage_cells < 1 || c.coverage_cells > 200) {
     return Invalid(absl::StrFormat("spec.coverage_cells is %d, must be in 1..200", c.coverage_cells));
@@ -384,6 +403,7 @@ v1::EnsembleModel EnsembleToWire(const model::Ensemble& e) {
   w.set_output_std(FloatBytes(e.output_normalizer().std().data(), e.output_dim()));
   w.set_max_log_var(FloatBytes(e.max_log_var().data(), e.output_dim()));
   w.set_min_log_var(FloatBytes(e.min_log_var().data(), e.output_dim()));
+  w.set_termination_head(e.has_termination_head());
   return w;
 }
 
@@ -399,6 +419,7 @@ absl::StatusOr<model::Ensemble> EnsembleFromWire(const v1::EnsembleModel& w) {
   }
   model::EnsembleOptions options;
   options.ensemble_size = w.members_size();
+  options.termination_head = w.termination_head();
   options.hidden_widths.clear();
   for (int l = 0; l + 1 < first.layers_size(); ++l) {
     options.hidden_widths.push_back(static_cast<int>(first.layers(l).cols()));
@@ -538,6 +559,8 @@ absl::StatusOr<robot::PlanInput> PlanInputFromWire(const v1::PlanRequest& reques
       return absl::InvalidArgumentError(absl::StrCat("request.", s.message()));
     }
   }
+  in.evaluate = request.evaluate();
+  in.episode = request.episode();
   return in;
 }
 

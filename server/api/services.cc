@@ -28,6 +28,7 @@ void PlanToWire(const robot::PlanOutcome& outcome, const robot::RobotConfig& con
       }
       step->set_expected_reward(r.expected_reward[t]);
       step->set_information_gain(r.information_gain[t]);
+      step->set_survival(r.survival.size() > t ? r.survival[t] : 1.0);
     }
   }
   plan->set_objective(r.objective);
@@ -41,6 +42,7 @@ void PlanToWire(const robot::PlanOutcome& outcome, const robot::RobotConfig& con
   *plan->mutable_valid_until() =
       ToTimestamp(absl::Now() + absl::Seconds(config.control_period_s * horizon));
   plan->set_request_id(request_id);
+  plan->set_evaluation(outcome.evaluation);
 }
 
 // Stores validated transitions (durable on return) and fills the ack.
@@ -399,6 +401,8 @@ absl::Status PredictRows(const RobotEntry& entry, const v1::PredictRequest& requ
       v1::GaussianPrediction* reward = row->add_reward();
       reward->add_mean(pred.mean[at + sd] * pred.scale[sd] + pred.offset[sd]);
       reward->add_variance(std::exp(pred.log_var[at + sd]) * pred.scale[sd] * pred.scale[sd]);
+      const double logit = pred.term_logit.empty() ? -INFINITY : pred.term_logit[static_cast<size_t>(b) * n + r];
+      row->add_termination_probability(1.0 / (1.0 + std::exp(-logit)));
     }
     row->set_information_gain(gain[r]);
   }
@@ -532,6 +536,18 @@ v1::RobotProgress ProgressToWire(const RobotEntry& entry) {
     e->set_return_(p.last_episode->episode_return);
     e->set_information_gain(p.last_episode->information_gain);
     *e->mutable_ended_at() = ToTimestamp(p.last_episode->ended_at);
+    e->set_evaluation(p.last_episode->evaluation);
+    e->set_success(p.last_episode->success);
+    e->set_terminal(p.last_episode->terminal);
+  }
+  for (auto [tally, wire] : {std::pair{&p.exploration, out.mutable_exploration()},
+                             std::pair{&p.evaluation, out.mutable_evaluation()}}) {
+    wire->set_episodes(tally->episodes);
+    wire->set_successes(tally->successes);
+    wire->set_terminals(tally->terminals);
+    wire->set_last_return(tally->last_return);
+    wire->set_recent_mean_return(tally->RecentMeanReturn());
+    wire->set_recent_success_rate(tally->RecentSuccessRate());
   }
   v1::Coverage* c = out.mutable_coverage();
   for (int i : p.coverage_indices) c->add_indices(static_cast<uint32_t>(i));

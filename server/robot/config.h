@@ -40,6 +40,8 @@ struct RobotConfig {
   std::vector<int> coverage_indices = {0, 1};
   std::vector<double> coverage_lower, coverage_upper;
   int coverage_cells = 20;
+  // An episode succeeds when its return is greater than this (reward units).
+  double success_return = 0.0;
 };
 
 }  // namespace foray::robot

@@ -24,6 +24,9 @@ v1::TrainingReport ReportToWire(const PublishedModel& m) {
   r.set_holdout_mse(m.report.holdout_mse);
   for (double v : m.report.within_1sigma) r.add_within_1sigma(v);
   for (double v : m.report.within_2sigma) r.add_within_2sigma(v);
+  r.set_terminal_transitions(static_cast<uint64_t>(m.report.terminal_rows));
+  r.set_terminal_weight(m.report.terminal_pos_weight);
+  r.set_holdout_termination_bce(m.report.holdout_termination_bce);
   r.set_duration_s(m.training_seconds);
   r.mutable_finished_at()->set_seconds(absl::ToUnixSeconds(m.finished_at));
   return r;
@@ -38,6 +41,9 @@ model::TrainingReport ReportFromWire(const v1::TrainingReport& r, double* second
   out.holdout_mse = r.holdout_mse();
   out.within_1sigma.assign(r.within_1sigma().begin(), r.within_1sigma().end());
   out.within_2sigma.assign(r.within_2sigma().begin(), r.within_2sigma().end());
+  out.terminal_rows = static_cast<int>(r.terminal_transitions());
+  out.terminal_pos_weight = r.terminal_weight();
+  out.holdout_termination_bce = r.holdout_termination_bce();
   if (seconds != nullptr) *seconds = r.duration_s();
   return out;
 }
@@ -105,6 +111,8 @@ ProgressView RobotRuntime::Progress() const {
   v.deadline_misses = deadline_misses_;
   v.plans_waiting = plans_waiting_.load(std::memory_order_relaxed);
   v.training_due = WantsTrainingLocked();
+  v.exploration = exploration_;
+  v.evaluation = evaluation_;
   if (!latencies_ms_.empty()) {
     std::vector<double> sorted = latencies_ms_;
     std::sort(sorted.begin(), sorted.end());
@@ -157,7 +165,35 @@ std::shared_ptr<const PublishedModel> RobotRuntime::published() const {
   return published_;
 }
 
-void RobotRuntime::CloseEpisode() {
+void EpisodeTally::Add(const EpisodeRecord& e) {
+  ++episodes;
+  successes += e.success ? 1 : 0;
+  terminals += e.terminal ? 1 : 0;
+  last_return = e.episode_return;
+  recent.emplace_back(e.episode_return, e.success);
+  if (recent.size() > kRecent) recent.pop_front();
+}
+
+double EpisodeTally::RecentMeanReturn() const {
+  if (recent.empty()) return 0.0;
+  double sum = 0.0;
+  for (const auto& [r, ok] : recent) sum += r;
+  return sum / recent.size();
+}
+
+double EpisodeTally::RecentSuccessRate() const {
+  if (recent.empty()) return 0.0;
+  int ok = 0;
+  for (const auto& [r, success] : recent) ok += success ? 1 : 0;
+  return static_cast<double>(ok) / recent.size();
+}
+
+void RobotRuntime::MarkEvaluation(uint64_t episode) {
+  evaluation_episodes_.insert(episode);
+  while (evaluation_episodes_.size() > kMarked) evaluation_episodes_.erase(evaluation_episodes_.begin());
+}
+
+void RobotRuntime::CloseEpisode(bool terminal) {
   if (current_steps_ == 0) return;
   EpisodeRecord e;
   e.episode = current_episode_;
@@ -165,6 +201,10 @@ void RobotRuntime::CloseEpisode() {
   e.episode_return = current_return_;
   e.information_gain = plan_gain_count_ > 0 ? plan_gain_sum_ / plan_gain_count_ : 0.0;
   e.ended_at = absl::Now();
+  e.evaluation = evaluation_episodes_.count(current_episode_) > 0;
+  e.success = current_return_ > config_.success_return;
+  e.terminal = terminal;
+  (e.evaluation ? evaluation_ : exploration_).Add(e);
   ++episodes_;
   last_episode_record_ = e;
   if (!replaying_) unrecorded_.push_back(e);
@@ -187,6 +227,9 @@ void RobotRuntime::RecordProgress() {
     summary.set_return_(e.episode_return);
     summary.set_information_gain(e.information_gain);
     summary.mutable_ended_at()->set_seconds(absl::ToUnixSeconds(e.ended_at));
+    summary.set_evaluation(e.evaluation);
+    summary.set_success(e.success);
+    summary.set_terminal(e.terminal);
     store::ProgressRecord record;
     record.robot_id = robot_id_;
     record.at = e.ended_at;
@@ -198,15 +241,20 @@ void RobotRuntime::RecordProgress() {
 }
 
 void RobotRuntime::AddToDataset(const store::TransitionRecord& t) {
-  if (current_steps_ > 0 && t.episode != current_episode_) CloseEpisode();
+  if (current_steps_ > 0 && t.episode != current_episode_) CloseEpisode(/*terminal=*/false);
+  if (evaluate_next_ && !replaying_) {
+    MarkEvaluation(t.episode);
+    evaluate_next_ = false;
+  }
   current_episode_ = t.episode;
   ++current_steps_;
   current_return_ += t.reward;
-  if (t.terminal) CloseEpisode();
+  if (t.terminal) CloseEpisode(/*terminal=*/true);
   for (double v : t.state) states_.push_back(static_cast<float>(v));
   for (double v : t.action) actions_.push_back(static_cast<float>(v));
   for (double v : t.next_state) next_states_.push_back(static_cast<float>(v));
   rewards_.push_back(static_cast<float>(t.reward));
+  terminals_.push_back(t.terminal ? 1.0f : 0.0f);
   if (t.seq > last_seq_) last_seq_ = t.seq;
   // An episode ends at a terminal transition, or (when the client sends none) where the
   // episode id changes; either counts once.
@@ -246,7 +294,23 @@ absl::Status RobotRuntime::Load() {
                               seconds, checkpoint->created_at);
     break;
   }
+  // Which stored episodes were evaluation episodes: their progress records say so.
+  std::vector<uint64_t> evaluated;
+  for (int64_t after = 0;;) {
+    absl::StatusOr<std::vector<store::ProgressRecord>> records =
+        store_->ReadProgress(after, absl::InfinitePast(), robot_id_, 10000);
+    if (!records.ok()) return records.status();
+    for (const store::ProgressRecord& r : *records) {
+      v1::EpisodeSummary summary;
+      if (r.kind == "episode" && summary.ParseFromString(r.payload) && summary.evaluation()) {
+        evaluated.push_back(summary.episode());
+      }
+      after = r.row;
+    }
+    if (records->size() < 10000) break;
+  }
   absl::MutexLock lock(&mu_);
+  for (uint64_t episode : evaluated) MarkEvaluation(episode);
   replaying_ = true;
   for (const store::TransitionRecord& t : *transitions) AddToDataset(t);
   replaying_ = false;
@@ -293,6 +357,7 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
   actions_.clear();
   next_states_.clear();
   rewards_.clear();
+  terminals_.clear();
   last_seq_ = 0;
   last_episode_ = 0;
   last_terminal_ = false;
@@ -337,6 +402,7 @@ model::TransitionData RobotRuntime::Snapshot() const {
   d.actions = Eigen::Map<const RowMajor>(actions_.data(), n, ad);
   d.next_states = Eigen::Map<const RowMajor>(next_states_.data(), n, sd);
   d.rewards = Eigen::Map<const Eigen::VectorXf>(rewards_.data(), n);
+  d.terminals = Eigen::Map<const Eigen::VectorXf>(terminals_.data(), n);
   return d;
 }
 
@@ -370,7 +436,9 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce(
   };
   model::Ensemble initial;
   if (start) {
-    initial = start->ensemble;  // warm start
+    // Warm start; a model saved before termination heads existed gets one (untrained).
+    initial = config.ensemble.termination_head ? start->ensemble.WithTerminationHead()
+                                               : start->ensemble;
   } else {
     absl::StatusOr<model::Ensemble> fresh =
         model::Ensemble::Create(config.state_dim, config.action_dim, config.ensemble, version);
@@ -476,6 +544,22 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
   input.planner.seed = input.planner.seed * 0x9e3779b97f4a7c15ULL + count;
 
   PlanOutcome outcome;
+  if (input.evaluate) {
+    if (model == nullptr) {
+      return absl::FailedPreconditionError(absl::StrFormat(
+          "evaluate: robot \"%s\" has no model yet to evaluate (it trains once it has %d "
+          "transitions); nothing was planned",
+          config.name, config.policy.min_transitions));
+    }
+    input.objective.information_weight = 0.0;
+    outcome.evaluation = true;
+    absl::MutexLock lock(&mu_);
+    if (input.episode != 0) {
+      MarkEvaluation(input.episode);
+    } else {
+      evaluate_next_ = true;
+    }
+  }
   if (model == nullptr) {
     // No model: one draw of the optimiser's initial distribution (coloured noise around the
     // middle of the bounds), information gain off.

@@ -14,7 +14,9 @@
 #include <cstdint>
 #include <functional>
 #include <memory>
+#include <deque>
 #include <optional>
+#include <set>
 #include <string>
 #include <vector>
 
@@ -57,12 +59,18 @@ struct PlanInput {
   plan::PlannerOptions planner;     // the robot's settings with the request's overrides
   explore::ObjectiveOptions objective;
   plan::PlanContext context;        // threads; deadline and clock are set by Plan
+  // An evaluation plan: reward only (the information weight is set to 0 here), and the
+  // episode is recorded as an evaluation episode: `episode` when not 0, else the episode of
+  // the next transition recorded. Needs a published model.
+  bool evaluate = false;
+  uint64_t episode = 0;
 };
 
 struct PlanOutcome {
   plan::PlanResult result;
   uint64_t model_version = 0;  // 0 with from_prior
   bool from_prior = false;     // no model yet: one sample of the optimiser's initial distribution
+  bool evaluation = false;     // planned for an evaluation episode
   double compute_ms = 0.0;
 };
 
@@ -82,6 +90,22 @@ struct EpisodeRecord {
   double episode_return = 0.0;
   double information_gain = 0.0;  // nats per executed step
   absl::Time ended_at;
+  bool evaluation = false;  // its plans were evaluation plans
+  bool success = false;     // return > the robot's success_return
+  bool terminal = false;    // ended by a terminal transition (not a time limit)
+};
+
+// Episodes of one kind (exploration or evaluation) so far; `recent` holds the last kRecent.
+struct EpisodeTally {
+  static constexpr int kRecent = 10;
+  uint64_t episodes = 0;
+  uint64_t successes = 0;
+  uint64_t terminals = 0;
+  double last_return = 0.0;
+  std::deque<std::pair<double, bool>> recent;  // (return, success), oldest first
+  void Add(const EpisodeRecord& e);
+  double RecentMeanReturn() const;
+  double RecentSuccessRate() const;
 };
 
 // How a robot's learning goes, for monitoring.
@@ -104,6 +128,7 @@ struct ProgressView {
   // started (the trainer is busy with another robot or paused for plans).
   int plans_waiting = 0;
   bool training_due = false;
+  EpisodeTally exploration, evaluation;
 };
 
 class RobotRuntime {
@@ -176,7 +201,11 @@ class RobotRuntime {
   mutable absl::Mutex mu_;
   RobotConfig config_ ABSL_GUARDED_BY(mu_);
   // The dataset, a row per transition, robot units.
-  std::vector<float> states_, actions_, next_states_, rewards_ ABSL_GUARDED_BY(mu_);
+  std::vector<float> states_ ABSL_GUARDED_BY(mu_);
+  std::vector<float> actions_ ABSL_GUARDED_BY(mu_);
+  std::vector<float> next_states_ ABSL_GUARDED_BY(mu_);
+  std::vector<float> rewards_ ABSL_GUARDED_BY(mu_);
+  std::vector<float> terminals_ ABSL_GUARDED_BY(mu_);  // 1 where the client's terminal flag was set
   uint64_t last_seq_ ABSL_GUARDED_BY(mu_) = 0;
   uint64_t last_episode_ ABSL_GUARDED_BY(mu_) = 0;
   bool last_terminal_ ABSL_GUARDED_BY(mu_) = false;
@@ -201,10 +230,19 @@ class RobotRuntime {
   uint64_t episodes_ ABSL_GUARDED_BY(mu_) = 0;
   std::optional<EpisodeRecord> last_episode_record_ ABSL_GUARDED_BY(mu_);
   std::vector<EpisodeRecord> unrecorded_ ABSL_GUARDED_BY(mu_);  // to write to the store
+  // Evaluation episodes: ids marked by evaluation plans (the newest kMarked kept), and whether
+  // the next transition's episode is one (an evaluation plan that named no episode).
+  static constexpr size_t kMarked = 4096;
+  std::set<uint64_t> evaluation_episodes_ ABSL_GUARDED_BY(mu_);
+  bool evaluate_next_ ABSL_GUARDED_BY(mu_) = false;
+  EpisodeTally exploration_ ABSL_GUARDED_BY(mu_);
+  EpisodeTally evaluation_ ABSL_GUARDED_BY(mu_);
   std::vector<double> latencies_ms_ ABSL_GUARDED_BY(mu_);       // ring of the last 1,000
   uint64_t deadline_misses_ ABSL_GUARDED_BY(mu_) = 0;
 
-  void CloseEpisode() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  // `terminal`: the episode ended by a terminal transition.
+  void CloseEpisode(bool terminal) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  void MarkEvaluation(uint64_t episode) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
   void RecordProgress();  // writes unrecorded_ episodes to the store
 };
 

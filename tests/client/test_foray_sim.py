@@ -6,6 +6,8 @@ import sqlite3
 import subprocess
 import sys
 
+import grpc
+
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "server"))
 from conftest import forayd  # noqa: F401,E402  (the fixture)
 
@@ -32,7 +34,7 @@ def test_sim_streams_its_episodes_and_resumes(forayd):  # noqa: F811
     assert first.returncode == 0, first.stdout + first.stderr
     assert "not a safety system" in first.stderr
     lines = [l for l in first.stdout.splitlines() if " episode " in l]
-    assert len(lines) == 3 and lines[-1].startswith("sim-gantry-1 episode 3:")
+    assert len(lines) == 3 and lines[-1].startswith("sim-gantry-1 exploration episode 3: time up")
     assert "registered as r-" in first.stdout
     ((robot_id, count, distinct, top),) = stored(forayd)
     assert (count, distinct, top) == (90, 90, 90)
@@ -42,6 +44,31 @@ def test_sim_streams_its_episodes_and_resumes(forayd):  # noqa: F811
     assert "registered" not in second.stdout  # the kept token was used
     assert "episode 4:" in second.stdout and "episode 5:" in second.stdout
     assert stored(forayd) == [(robot_id, 150, 150, 150)]
+
+
+def test_sim_runs_evaluation_episodes_once_a_model_exists(forayd):  # noqa: F811
+    from foray.v1 import monitoring_pb2, monitoring_pb2_grpc
+
+    # Training after each episode: from the second episode on there is a model; every second
+    # exploration episode is followed by an evaluation episode.
+    result = run_sim(forayd, "--robots=gantry", "--episodes=6", "--steps=25", "--min_transitions=20",
+                     "--train_each_episode", "--evaluate_every=2", "--deadline_ms=20")
+    assert result.returncode == 0, result.stdout + result.stderr
+    kinds = [l.split(" episode ")[0].split()[-1] for l in result.stdout.splitlines() if " episode " in l]
+    assert kinds == ["exploration", "exploration", "evaluation", "exploration", "exploration", "evaluation"]
+    # The time limit is not a terminal: nothing the sim recorded is marked terminal.
+    db = sqlite3.connect(os.path.join(forayd.data_dir, "foray.db"))
+    try:
+        assert db.execute("SELECT COUNT(*) FROM transitions WHERE terminal != 0").fetchone()[0] == 0
+    finally:
+        db.close()
+    # The server counts the evaluation episodes apart (the last one closes when its successor
+    # starts, so 1 of the 2 is closed by now).
+    with grpc.insecure_channel(forayd.address) as channel:
+        progress = monitoring_pb2_grpc.MonitoringStub(channel).GetProgress(
+            monitoring_pb2.GetProgressRequest(), metadata=(("authorization", f"Bearer {forayd.admin_token}"),),
+            timeout=10).robots[0]
+    assert progress.evaluation.episodes == 1 and progress.exploration.episodes == 4
 
 
 def test_sim_refuses_an_unknown_robot(forayd):  # noqa: F811

@@ -337,8 +337,9 @@ def test_session_stream_acks_plans_and_survives_a_bad_message(forayd):
 def numpy_forward(model, states, actions):
     """The EnsembleModel format written out in numpy (proto/foray/v1/models.proto): per member
     y = x W + b per layer, SiLU between layers, then mean and log-variance with the soft bounds
-    lv = max - softplus(max - raw), lv = min + softplus(lv - min). Returns next-state means and
-    variances (members, rows, state_dim) in robot units."""
+    lv = max - softplus(max - raw), lv = min + softplus(lv - min), and with a termination head
+    the last output column's logistic sigmoid. Returns next-state means and variances
+    (members, rows, state_dim) in robot units and termination probabilities (members, rows)."""
     import numpy as np
 
     def floats(b):
@@ -350,7 +351,7 @@ def numpy_forward(model, states, actions):
     out_mean, out_std = floats(model.output_mean), floats(model.output_std)
     max_lv, min_lv = floats(model.max_log_var), floats(model.min_log_var)
     d = model.state_dim + 1
-    means, variances = [], []
+    means, variances, ends = [], [], []
     for member in model.members:
         h = x
         for i, layer in enumerate(member.layers):
@@ -358,13 +359,14 @@ def numpy_forward(model, states, actions):
             h = h @ w + floats(layer.bias)
             if i + 1 < len(member.layers):
                 h = h / (1.0 + np.exp(-h))
-        mu, raw = h[:, :d], h[:, d:]
+        mu, raw = h[:, :d], h[:, d:2 * d]
+        ends.append(1.0 / (1.0 + np.exp(-h[:, 2 * d])) if model.termination_head else np.zeros(len(h)))
         lv = max_lv - softplus(max_lv - raw)
         lv = min_lv + softplus(lv - min_lv)
         sd = model.state_dim
         means.append(states + mu[:, :sd] * out_std[:sd] + out_mean[:sd])
         variances.append(np.exp(lv[:, :sd]) * out_std[:sd] ** 2)
-    return np.array(means), np.array(variances)
+    return np.array(means), np.array(variances), np.array(ends)
 
 
 def test_models_predict_matches_the_exported_weights_and_checkpoints_restore(forayd):
@@ -388,7 +390,10 @@ def test_models_predict_matches_the_exported_weights_and_checkpoints_restore(for
     assert predicted.model_version == 1 and exported.model_version == 1
     states = np.array([list(r.state) for r in rows])
     actions = np.array([list(r.action) for r in rows])
-    ref_mean, ref_var = numpy_forward(exported, states, actions)
+    ref_mean, ref_var, ref_end = numpy_forward(exported, states, actions)
+    assert exported.termination_head
+    got_end = np.array([list(row.termination_probability) for row in predicted.rows]).T
+    np.testing.assert_allclose(got_end, ref_end, rtol=1e-4, atol=1e-6)
     got_mean = np.array([[list(m.mean) for m in row.next_state] for row in predicted.rows]).transpose(1, 0, 2)
     got_var = np.array([[list(m.variance) for m in row.next_state] for row in predicted.rows]).transpose(1, 0, 2)
     assert got_mean.shape == (5, 8, 3)

@@ -71,6 +71,7 @@ class Plan:
     state_std: np.ndarray          # (H, state_dim)
     expected_reward: np.ndarray    # (H,)
     information_gain: np.ndarray   # (H,) nats
+    survival: np.ndarray           # (H,) probability the episode has not ended by each step
     objective: float
     expected_return: float
     total_information_gain: float
@@ -79,6 +80,7 @@ class Plan:
     iterations: int
     compute_ms: float
     valid_until: float             # Unix seconds; do not execute after this
+    evaluation: bool = False       # planned for evaluation (reward only)
 
     @staticmethod
     def from_message(p):
@@ -91,10 +93,12 @@ class Plan:
             state_std=np.array([list(s.predicted_state_std) for s in p.steps], dtype=np.float64).reshape(h, sd),
             expected_reward=np.array([s.expected_reward for s in p.steps], dtype=np.float64),
             information_gain=np.array([s.information_gain for s in p.steps], dtype=np.float64),
+            survival=np.array([s.survival if not p.from_prior else 1.0 for s in p.steps], dtype=np.float64),
             objective=p.objective, expected_return=p.expected_return,
             total_information_gain=p.information_gain, model_version=p.model_version,
             from_prior=p.from_prior, iterations=p.iterations, compute_ms=p.compute_ms,
-            valid_until=p.valid_until.seconds + p.valid_until.nanos * 1e-9 if p.HasField("valid_until") else math.inf)
+            valid_until=p.valid_until.seconds + p.valid_until.nanos * 1e-9 if p.HasField("valid_until") else math.inf,
+            evaluation=p.evaluation)
 
 
 @dataclasses.dataclass
@@ -113,6 +117,23 @@ def _vector(name, values, expected=None):
         bad = int(np.flatnonzero(~np.isfinite(v))[0])
         raise ValueError(f"{name}[{bad}] is {v[bad]}; values must be finite")
     return v
+
+
+_OBJECTIVE_KEYS = ("reward_weight", "information_weight", "discount", "terminal_value")
+
+
+def _objective(objective):
+    """ObjectiveSettings from a message, a dict of reward_weight, information_weight, discount,
+    terminal_value (any subset), or None."""
+    if objective is None or isinstance(objective, types_pb2.ObjectiveSettings):
+        return objective
+    unknown = sorted(set(objective) - set(_OBJECTIVE_KEYS))
+    if unknown:
+        raise ValueError(f"objective has unknown keys {unknown}; use {list(_OBJECTIVE_KEYS)}")
+    for key, value in objective.items():
+        if not (isinstance(value, (int, float)) and math.isfinite(value)):
+            raise ValueError(f"objective[{key!r}] is {value!r}; it must be a finite number")
+    return types_pb2.ObjectiveSettings(**{k: float(v) for k, v in objective.items()})
 
 
 def _channel(address, credentials, initial_backoff, max_backoff):
@@ -232,7 +253,12 @@ class RobotSession:
                                  + (f": {self._last_error}" if self._last_error else ""))
 
     def record(self, episode, step, state, action, next_state, reward, terminal=False):
-        """Buffers one transition and returns at once; the background thread sends it."""
+        """Buffers one transition and returns at once; the background thread sends it.
+
+        terminal=True only when this step ended the episode in an irrecoverable state (the
+        object was lost, the robot left its workspace or fell): the model learns to predict
+        and avoid it. An episode cut by a time limit is not terminal: leave terminal False and
+        record the next episode under a new episode id."""
         with self._cv:
             s = _vector("state", state, self._state_dim)
             a = _vector("action", action, self._action_dim)
@@ -276,8 +302,16 @@ class RobotSession:
                                  f"({'connected' if self._connected else 'not connected'})"
                                  + (f"; last error: {self._last_error}" if self._last_error else ""))
 
-    def plan(self, state, previous_action=None, compute=0.1, wait=1.0):
-        """A Plan from `state`; the server plans for at most `compute` s, this waits at most `wait` s."""
+    def plan(self, state, previous_action=None, compute=0.1, wait=1.0, *, evaluate=False, episode=0,
+             objective=None):
+        """A Plan from `state`; the server plans for at most `compute` s, this waits at most `wait` s.
+
+        evaluate=True plans reward only (no information term) on the current model and records
+        the episode (`episode`, or else the episode of the next recorded transition) as an
+        evaluation episode; the server refuses it (FAILED_PRECONDITION) before the first model.
+        objective overrides the robot's objective for this plan only: a dict with any of
+        reward_weight, information_weight, discount, terminal_value, or an ObjectiveSettings."""
+        settings = _objective(objective)
         with self._cv:
             s = _vector("state", state, self._state_dim)
             prev = [] if previous_action is None else _vector("previous_action", previous_action,
@@ -287,8 +321,12 @@ class RobotSession:
                                  + (f" ({self._last_error})" if self._last_error else ""))
             rid = self._next_request_id
             self._next_request_id += 1
-            self._plan_requests.append(types_pb2.PlanRequest(
-                request_id=rid, state=s.tolist(), previous_action=prev, deadline_ms=max(1.0, compute * 1000)))
+            request = types_pb2.PlanRequest(
+                request_id=rid, state=s.tolist(), previous_action=prev, deadline_ms=max(1.0, compute * 1000),
+                evaluate=bool(evaluate), episode=int(episode))
+            if settings is not None:
+                request.objective.CopyFrom(settings)
+            self._plan_requests.append(request)
             waiter = self._waiters[rid] = [False, None]
             self._cv.notify_all()
             self._cv.wait_for(lambda: waiter[0] or self._stopping, wait)
@@ -299,12 +337,13 @@ class RobotSession:
                 raise waiter[1]
             return Plan.from_message(waiter[1])
 
-    def act(self, state, previous_action, compute, wait):
+    def act(self, state, previous_action, compute, wait, *, evaluate=False, episode=0, objective=None):
         """The watchdog: the first action of a plan that comes within `wait` s and is still valid,
-        else the safe action."""
+        else the safe action. evaluate, episode and objective as for plan()."""
         previous = _vector("previous_action", previous_action)
         try:
-            plan = self.plan(state, previous, compute, wait)
+            plan = self.plan(state, previous, compute, wait, evaluate=evaluate, episode=episode,
+                             objective=objective)
             if plan.actions.shape[0] == 0 or plan.actions.shape[1] != previous.size:
                 why = f"the plan's first step has {plan.actions.shape[1] if plan.actions.size else 0} actions"
             elif plan.valid_until < time.time():
