@@ -147,17 +147,29 @@ std::string Bar(double fraction, int width) {
 }
 
 std::string Row(const v1::RobotProgress& p) {
-  return absl::StrFormat("%-22s %-12s %9d %8d %5s %10s %8s %7.1f%% %8.1f",
+  const v1::EpisodeTally& ev = p.evaluation();
+  return absl::StrFormat("%-22s %-12s %9d %8d %5s %10s %8s %9s %7.1f%% %8.1f",
                          p.name(), p.robot_id(), p.transitions(), p.episodes(),
                          absl::StrCat("v", p.model_version()),
                          p.has_last_training() ? absl::StrFormat("%.4f", p.last_training().holdout_mse()) : "-",
-                         p.has_last_episode() ? absl::StrFormat("%g", p.last_episode().return_()) : "-",
+                         p.exploration().episodes() > 0 ? absl::StrFormat("%g", p.exploration().last_return()) : "-",
+                         ev.episodes() > 0 ? absl::StrFormat("%.0f%%", 100.0 * ev.recent_success_rate()) : "-",
                          100.0 * Coverage(p.coverage()), p.plan_latency().p50_ms());
 }
 
 std::string Header() {
-  return absl::StrFormat("%-22s %-12s %9s %8s %5s %10s %8s %8s %8s", "robot", "id", "transit.",
-                         "episodes", "model", "hold. MSE", "return", "coverage", "plan ms");
+  return absl::StrFormat("%-22s %-12s %9s %8s %5s %10s %8s %9s %8s %8s", "robot", "id", "transit.",
+                         "episodes", "model", "hold. MSE", "return", "eval. ok", "coverage", "plan ms");
+}
+
+// "12 episodes, last return 3, recent mean 2.5, success 60% (last 10), 1 ended terminal"
+std::string Tally(const v1::EpisodeTally& t) {
+  if (t.episodes() == 0) return "none yet";
+  return absl::StrFormat("%d episodes, last return %g, mean %.3g and success %.0f%% over the last %d, "
+                         "%d successes and %d ended in a terminal state in all",
+                         t.episodes(), t.last_return(), t.recent_mean_return(),
+                         100.0 * t.recent_success_rate(), std::min<uint64_t>(t.episodes(), 10),
+                         t.successes(), t.terminals());
 }
 
 int Robots(v1::Monitoring::Stub& monitoring, const std::string& token) {
@@ -190,10 +202,14 @@ int Status(v1::Monitoring::Stub& monitoring, const std::string& token, const std
                 p.last_training().holdout_nll(), p.last_training().holdout_mse());
   }
   if (p.has_last_episode()) {
-    absl::PrintF("  last episode %d: %d steps, return %g, information gain %.3f nats/step\n",
-                p.last_episode().episode(), p.last_episode().steps(), p.last_episode().return_(),
+    absl::PrintF("  last episode %d (%s%s): %d steps, return %g, information gain %.3f nats/step\n",
+                p.last_episode().episode(), p.last_episode().evaluation() ? "evaluation" : "exploration",
+                p.last_episode().terminal() ? ", ended in a terminal state" : "",
+                p.last_episode().steps(), p.last_episode().return_(),
                 p.last_episode().information_gain());
   }
+  absl::PrintF("  exploration: %s\n", Tally(p.exploration()).c_str());
+  absl::PrintF("  evaluation:  %s\n", Tally(p.evaluation()).c_str());
   absl::PrintF("  coverage %.1f%% of a %dx%d grid; plans %d, p50 %.1f ms, p99 %.1f ms, deadline misses %d\n",
               100.0 * Coverage(p.coverage()), p.coverage().cells(), p.coverage().cells(),
               p.plan_latency().plans(), p.plan_latency().p50_ms(), p.plan_latency().p99_ms(),
@@ -224,8 +240,11 @@ int Watch(v1::Monitoring::Stub& monitoring, const std::string& token, const std:
       *p.mutable_last_episode() = event.episode();
       p.set_episodes(std::max<uint64_t>(p.episodes(), event.episode().episode()));
       if (plain) {
-        absl::PrintF("%s episode %d: return %g, information gain %.3f nats/step\n",
-                    event.robot_id().c_str(), event.episode().episode(), event.episode().return_(),
+        absl::PrintF("%s %s episode %d: return %g%s%s, information gain %.3f nats/step\n",
+                    event.robot_id().c_str(), event.episode().evaluation() ? "evaluation" : "exploration",
+                    event.episode().episode(), event.episode().return_(),
+                    event.episode().success() ? " (success)" : "",
+                    event.episode().terminal() ? " (ended in a terminal state)" : "",
                     event.episode().information_gain());
       }
     } else if (event.has_training()) {

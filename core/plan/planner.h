@@ -55,7 +55,8 @@ struct PlanResult {
   // the report's particles); all 1 when the model cannot predict an end.
   Eigen::VectorXf survival;
   Eigen::VectorXf min_survival;  // (horizon): the lowest particle's survival
-  // From the final rollout: J and its discounted parts sum_t gamma^t E[r_t], sum_t gamma^t I_t.
+  // From the final rollout: J and its discounted parts sum_t gamma^t E[s_t r_t] and
+  // sum_t gamma^t E[s_t I_t] (s_t: survival before step t; 1 without terminations).
   double objective = 0.0;
   double expected_return = 0.0;
   double total_information_gain = 0.0;

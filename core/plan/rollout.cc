@@ -145,6 +145,7 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
   ws->reward.resize(rows);
   ws->information.assign(rows, 0.0f);
   ws->survival.assign(rows, 1.0f);
+  if (trace != nullptr) ws->alive_before.assign(particles, 1.0f);
   ws->ends.assign(rows, 0.0f);
   const bool known_termination = objective.known_termination.given();
   const double v_term = objective.terminal_value;
@@ -237,6 +238,7 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
         const double value = w_r * ws->reward[r] + (w_i != 0.0 ? w_i * ws->information[r] : 0.0);
         if (can_end) {
           const double alive = ws->survival[r];
+          if (trace != nullptr && n == 0) ws->alive_before[p] = static_cast<float>(alive);
           const double ended = alive * ws->ends[r];
           step += alive * value + ended * v_term;
           ws->survival[r] = static_cast<float>(alive - ended);
@@ -259,10 +261,11 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
         trace->state_std(t, k) =
             static_cast<float>(std::sqrt(std::max(0.0, sum_sq / particles - mean * mean)));
       }
+      // Unconditional expectations: an ended episode earns no reward and no information.
       double reward = 0.0, information = 0.0;
       for (int p = 0; p < particles; ++p) {
-        reward += ws->reward[p];
-        information += ws->information[p];
+        reward += ws->alive_before[p] * ws->reward[p];
+        information += ws->alive_before[p] * ws->information[p];
       }
       trace->expected_reward[t] = static_cast<float>(reward / particles);
       trace->information_gain[t] = static_cast<float>(information / particles);

@@ -138,7 +138,8 @@ struct RolloutOptions {
 
 // Per-step detail of a rollout, for the plan result: (horizon, state_dim) means and standard
 // deviations of the particles' states after each step, and per-step particle means of the
-// expected reward and information gain (undiscounted).
+// expected reward and information gain (undiscounted; each weighted by the particle's survival
+// before the step, so that an ended episode counts as earning nothing).
 // survival: (horizon) the particles' mean probability that the episode has not ended by the
 // end of each step (all 1 when nothing can end it); min_survival: the lowest particle's.
 struct RolloutTrace {
@@ -157,6 +158,7 @@ struct RolloutStats {
 struct RolloutWorkspace {
   MemberPredictions predictions;
   std::vector<float> states, actions, first_actions, reward, information, noise, survival, ends;
+  std::vector<float> alive_before;  // the trace's particles' survival before the step
   std::vector<int> member_of;
 };
 

@@ -99,6 +99,25 @@ std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanG
       add("foray_robot_holdout_mse", "gauge",
           "Holdout MSE of the published model, normalised units.", robot, p.model->report.holdout_mse);
     }
+    for (const auto& [kind, tally] : {std::pair{"exploration", &p.exploration},
+                                      std::pair{"evaluation", &p.evaluation}}) {
+      const std::string labels = absl::StrCat(robot, ",kind=\"", kind, "\"");
+      add("foray_robot_episodes_by_kind_total", "counter",
+          "Episodes finished by the robot, by kind (exploration or evaluation plans).", labels,
+          static_cast<double>(tally->episodes));
+      add("foray_robot_episode_successes_total", "counter",
+          "Episodes whose return passed the robot's success_return, by kind.", labels,
+          static_cast<double>(tally->successes));
+      add("foray_robot_episode_terminals_total", "counter",
+          "Episodes that ended in a terminal (irrecoverable) state, by kind.", labels,
+          static_cast<double>(tally->terminals));
+      add("foray_robot_recent_success_ratio", "gauge",
+          "Success rate over the robot's last 10 episodes of the kind.", labels,
+          tally->RecentSuccessRate());
+      add("foray_robot_recent_mean_return", "gauge",
+          "Mean return over the robot's last 10 episodes of the kind.", labels,
+          tally->RecentMeanReturn());
+    }
     if (p.last_episode) {
       add("foray_robot_last_episode_return", "gauge", "Return of the robot's last episode.", robot,
           p.last_episode->episode_return);
@@ -151,7 +170,17 @@ std::string RobotsJson(const api::RobotDirectory& directory) {
     if (p.last_episode) {
       absl::StrAppend(&out, ", \"last_episode\": {\"episode\": ", p.last_episode->episode,
                       ", \"return\": ", Number(p.last_episode->episode_return),
-                      ", \"information_gain\": ", Number(p.last_episode->information_gain), "}");
+                      ", \"information_gain\": ", Number(p.last_episode->information_gain),
+                      ", \"evaluation\": ", p.last_episode->evaluation ? "true" : "false",
+                      ", \"terminal\": ", p.last_episode->terminal ? "true" : "false", "}");
+    }
+    for (const auto& [kind, tally] : {std::pair{"exploration", &p.exploration},
+                                      std::pair{"evaluation", &p.evaluation}}) {
+      absl::StrAppend(&out, ", \"", kind, "\": {\"episodes\": ", tally->episodes,
+                      ", \"successes\": ", tally->successes, ", \"terminals\": ", tally->terminals,
+                      ", \"last_return\": ", Number(tally->last_return),
+                      ", \"recent_mean_return\": ", Number(tally->RecentMeanReturn()),
+                      ", \"recent_success_rate\": ", Number(tally->RecentSuccessRate()), "}");
     }
     absl::StrAppend(&out, ", \"coverage\": {\"cells\": ", p.coverage_cells, ", \"counts\": [");
     for (size_t i = 0; i < p.coverage_counts.size(); ++i) {
@@ -172,7 +201,10 @@ std::string HistoryJson(const store::Store& store, const std::string& robot_id) 
         if (!e.ParseFromString(r.payload)) continue;
         absl::StrAppend(&episodes, episodes.empty() ? "" : ", ", "{\"episode\": ", e.episode(),
                         ", \"steps\": ", e.steps(), ", \"return\": ", Number(e.return_()),
-                        ", \"information_gain\": ", Number(e.information_gain()), "}");
+                        ", \"information_gain\": ", Number(e.information_gain()),
+                        ", \"evaluation\": ", e.evaluation() ? "true" : "false",
+                        ", \"success\": ", e.success() ? "true" : "false",
+                        ", \"terminal\": ", e.terminal() ? "true" : "false", "}");
       } else if (r.kind == "training") {
         v1::TrainingReport t;
         if (!t.ParseFromString(r.payload)) continue;
