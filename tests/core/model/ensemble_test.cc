@@ -158,6 +158,58 @@ TEST(SerializeTest, RoundTripIsBitExact) {
             0);
 }
 
+// Checkpoints written before termination heads (format 1: no head flag) still load, without a
+// head; format 2 keeps the head bit for bit.
+TEST(SerializeTest, FormatOneLoadsWithoutAHeadAndFormatTwoKeepsIt) {
+  EnsembleOptions old_layout;
+  old_layout.hidden_widths = {8};
+  old_layout.termination_head = false;
+  auto e = Ensemble::Create(2, 1, old_layout, 6);
+  std::string bytes = SerializeEnsemble(*e);
+  // Format 1 is format 2 without the flag word after the hidden widths: header "FORAYENS",
+  // format, state_dim, action_dim, members, activation, layer count, 1 width, then the flag.
+  const size_t flag_at = 8 + 4 * 7;
+  std::string format_one = bytes.substr(0, flag_at) + bytes.substr(flag_at + 4);
+  const uint32_t one = 1;
+  std::memcpy(&format_one[8], &one, 4);
+  auto back = DeserializeEnsemble(format_one);
+  ASSERT_TRUE(back.ok()) << back.status();
+  EXPECT_FALSE(back->has_termination_head());
+  EXPECT_EQ(back->params(), e->params());
+
+  auto headed = Ensemble::Create(2, 1, EnsembleOptions{}, 6);
+  auto again = DeserializeEnsemble(SerializeEnsemble(*headed));
+  ASSERT_TRUE(again.ok());
+  EXPECT_TRUE(again->has_termination_head());
+  EXPECT_EQ(again->params(), headed->params());
+}
+
+// A head added to a model without one leaves its Gaussians as they were and predicts the
+// initial probability everywhere.
+TEST(EnsembleTest, AddedTerminationHeadKeepsTheGaussians) {
+  EnsembleOptions options;
+  options.termination_head = false;
+  options.hidden_widths = {12, 7};
+  auto e = Ensemble::Create(3, 2, options, 9);
+  ASSERT_TRUE(e.ok());
+  const Ensemble headed = e->WithTerminationHead(0.02);
+  ASSERT_TRUE(headed.has_termination_head());
+  const Eigen::MatrixXf states = RandomMatrix<float>(20, 3, 1), actions = RandomMatrix<float>(20, 2, 2);
+  std::vector<Eigen::MatrixXf> m0, v0, m1, v1;
+  ASSERT_TRUE(e->Predict(states, actions, &m0, &v0).ok());
+  ASSERT_TRUE(headed.Predict(states, actions, &m1, &v1).ok());
+  for (int b = 0; b < e->size(); ++b) {
+    EXPECT_EQ(m0[b], m1[b]);
+    EXPECT_EQ(v0[b], v1[b]);
+  }
+  Eigen::MatrixXf p;
+  ASSERT_TRUE(headed.PredictTermination(states, actions, &p).ok());
+  EXPECT_NEAR(p.minCoeff(), 0.02, 1e-6);
+  EXPECT_NEAR(p.maxCoeff(), 0.02, 1e-6);
+  ASSERT_TRUE(e->PredictTermination(states, actions, &p).ok());
+  EXPECT_EQ(p.cwiseAbs().maxCoeff(), 0.0f);  // no head: nothing ends
+}
+
 TEST(SerializeTest, TruncatedBytesAreDataLoss) {
   auto e = Ensemble::Create(3, 2, EnsembleOptions{}, 4);
   const std::string bytes = SerializeEnsemble(*e);

@@ -24,10 +24,18 @@ void ExpectMatchesReference(const Ensemble& e, const Eigen::MatrixXf& x, double 
   InferenceEnsemble fast(e);
   InferenceEnsemble::Workspace ws;
   for (int b = 0; b < e.size(); ++b) {
-    Eigen::MatrixXf mean, log_var;
-    e.MemberForward(b, x, &mean, &log_var);
+    Eigen::MatrixXf mean, log_var, logit;
+    e.MemberForward(b, x, &mean, &log_var, &logit);
     InferenceEnsemble::RowMatrix fast_mean(rows, e.output_dim()), fast_lv(rows, e.output_dim());
-    fast.ForwardMember(b, x_rows.data(), rows, fast_mean.data(), fast_lv.data(), &ws);
+    Eigen::VectorXf fast_logit = Eigen::VectorXf::Constant(rows, 123.0f);
+    fast.ForwardMember(b, x_rows.data(), rows, fast_mean.data(), fast_lv.data(), &ws,
+                       fast_logit.data());
+    if (e.has_termination_head()) {
+      const double logit_scale = std::max(1.0f, logit.cwiseAbs().maxCoeff());
+      EXPECT_LT((fast_logit - logit.col(0)).cwiseAbs().maxCoeff() / logit_scale, 1e-5) << "member " << b;
+    } else {
+      EXPECT_EQ(fast_logit, Eigen::VectorXf::Constant(rows, 123.0f));  // left alone
+    }
     if (require_finite) {
       ASSERT_TRUE(fast_mean.allFinite());
       ASSERT_TRUE(fast_lv.allFinite());
@@ -46,6 +54,7 @@ TEST_P(InferenceTest, MatchesReferenceForward) {
   options.ensemble_size = 3;
   options.hidden_widths = widths;
   options.activation = activation;
+  options.termination_head = state_dim % 2 == 0;  // both layouts
   auto e = Ensemble::Create(state_dim, 2, options, 8);
   ASSERT_TRUE(e.ok());
   e->mutable_params() *= 2.0f;  // reach both log-variance bounds

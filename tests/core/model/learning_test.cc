@@ -168,6 +168,21 @@ TEST(TrainerTest, RejectsNonFiniteValues) {
       << result.status();
 }
 
+TEST(TrainerTest, RejectsTerminalFlagsThatAreNotZeroOrOne) {
+  auto start = Ensemble::Create(1, 1, EnsembleOptions{}, 1);
+  TransitionData data = Heteroscedastic(100, 3);
+  data.terminals = Eigen::VectorXf::Zero(100);
+  data.terminals(3) = 2.0f;
+  auto result = TrainEnsemble(*start, data, TrainingOptions{});
+  EXPECT_EQ(result.status().code(), absl::StatusCode::kInvalidArgument);
+  EXPECT_NE(result.status().message().find("terminals[3] is 2, expected 0 or 1"), std::string::npos)
+      << result.status();
+  data.terminals = Eigen::VectorXf::Zero(99);
+  result = TrainEnsemble(*start, data, TrainingOptions{});
+  EXPECT_NE(result.status().message().find("terminals is (99, 1), expected (100, 1)"), std::string::npos)
+      << result.status();
+}
+
 TEST(TrainerTest, NeedsTwoTransitions) {
   auto start = Ensemble::Create(1, 1, EnsembleOptions{}, 1);
   auto result = TrainEnsemble(*start, Heteroscedastic(1, 3), TrainingOptions{});
