@@ -205,7 +205,7 @@ absl::StatusOr<v1::RobotSpec> ParseSpecJson(std::string_view text) {
     return absl::InvalidArgumentError(absl::StrCat("not valid JSON: ", e.what()));
   }
   if (absl::Status s = OnlyKeys(doc, "", {"name", "control_period_s", "state", "action", "model", "training",
-                                          "planner", "objective", "coverage"});
+                                          "planner", "objective", "coverage", "success_return"});
       !s.ok()) {
     return s;
   }
@@ -233,6 +233,11 @@ absl::StatusOr<v1::RobotSpec> ParseSpecJson(std::string_view text) {
   }
   if (doc.contains("objective")) {
     if (absl::Status s = FillSettings(doc["objective"], "objective", spec.mutable_objective()); !s.ok()) return s;
+  }
+  if (doc.contains("success_return")) {
+    absl::StatusOr<double> threshold = Number(doc["success_return"], "success_return");
+    if (!threshold.ok()) return threshold.status();
+    spec.set_success_return(*threshold);
   }
   if (doc.contains("coverage")) {
     const json& c = doc["coverage"];

@@ -8,7 +8,8 @@ from google.protobuf import json_format
 
 from ._stubs import types_pb2
 
-_TOP = ("name", "control_period_s", "state", "action", "model", "training", "planner", "objective", "coverage")
+_TOP = ("name", "control_period_s", "state", "action", "model", "training", "planner", "objective", "coverage",
+        "success_return")
 
 
 def _choice_names(enum_type):
@@ -46,6 +47,7 @@ def spec_from_dict(d):
         if key not in d:
             raise ValueError(f"{key}: required key is missing")
     out = {"name": d["name"], "control_period_s": d["control_period_s"],
+           **({"success_return": d["success_return"]} if "success_return" in d else {}),
            "state": [{k: v for k, v in s.items()} for s in d["state"]],
            "action": [], "action_limits": []}
     for i, a in enumerate(d["action"]):

@@ -19,7 +19,10 @@ constexpr char kFull[] = R"({
   "training": {"min_transitions": 300, "no_train_at_episode_end": true, "learning_rate": 0.002},
   "planner": {"horizon": 30, "propagation": "ts1", "white_noise": true},
   "objective": {"information_weight": 0, "estimator": "jensen_renyi_2",
-                "known_reward": {"quadratic": {"target": [0.5, 0], "weight": [1, 0]}}},
+                "known_reward": {"quadratic": {"target": [0.5, 0], "weight": [1, 0]}},
+                "terminal_value": -40,
+                "known_termination": {"indices": [0], "lower": [-1.5], "upper": [1.5], "outside": true}},
+  "success_return": 3,
   "coverage": {"indices": [0, 1], "lower": [0, -0.5], "upper": [1, 0.5], "cells": 16}
 })";
 
@@ -44,6 +47,11 @@ TEST(SpecFileTest, EveryPartReachesTheSpec) {
   EXPECT_FALSE(spec->objective().has_reward_weight());
   EXPECT_EQ(spec->objective().estimator(), v1::INFORMATION_ESTIMATOR_JENSEN_RENYI_2);
   EXPECT_EQ(spec->objective().known_reward().quadratic().target(0), 0.5);
+  EXPECT_EQ(spec->objective().terminal_value(), -40.0);
+  EXPECT_TRUE(spec->objective().known_termination().outside());
+  EXPECT_EQ(spec->objective().known_termination().upper(0), 1.5);
+  EXPECT_TRUE(spec->has_success_return());
+  EXPECT_EQ(spec->success_return(), 3.0);
   EXPECT_EQ(spec->coverage_cells(), 16u);
   EXPECT_EQ(spec->coverage_upper(1), 0.5);
 }
