@@ -14,6 +14,7 @@ PACKAGES=(
   libprotobuf-dev        # Protocol Buffers C++ runtime
   libabsl-dev            # Abseil: status, flags, strings, synchronisation
   libeigen3-dev          # Eigen: the linear algebra of the models and planner
+  libmujoco-dev          # MuJoCo 2.2: the physics of the simulated contact robots (client/sim)
   libsqlite3-dev         # SQLite: the embedded store
   libssl-dev             # OpenSSL: SHA-256 of tokens
   openssl                # certificates for the TLS tests

@@ -152,7 +152,14 @@ bool RunRobot(const std::string& kind, int index) {
   uint64_t seq = session.Stats().next_seq - 1;
   const int steps = absl::GetFlag(FLAGS_steps) > 0 ? absl::GetFlag(FLAGS_steps) : sim.episode_steps();
   const int episodes = absl::GetFlag(FLAGS_episodes);
+  // Episodes that end early (a lost object) make seq / steps undercount them: the next episode
+  // id is kept beside the token as well, and the larger of the two is used.
+  const std::filesystem::path episode_file = state_dir / (name + ".episode");
   uint64_t episode_id = seq / steps + 1;
+  if (std::ifstream in(episode_file); in) {
+    uint64_t kept = 0;
+    if (in >> kept) episode_id = std::max(episode_id, kept);
+  }
   const int action_dim = static_cast<int>(sim.action_dims().size());
   const std::vector<foray::sim::ActionRange> ranges = sim.action_ranges();
   const bool noise_baseline = absl::GetFlag(FLAGS_strategy) == "noise";
@@ -245,6 +252,7 @@ bool RunRobot(const std::string& kind, int index) {
     const char* outcome = lost ? "lost" : first_reward >= 0 ? "goal reached" : "time up";
     const double episode_s =
         std::chrono::duration<double>(std::chrono::steady_clock::now() - episode_start).count();
+    if (std::ofstream out(episode_file, std::ios::trunc); out) out << episode_id + 1 << "\n";
     if (!absl::GetFlag(FLAGS_report).empty()) {
       std::lock_guard<std::mutex> lock(g_print_mu);
       std::ofstream report(absl::GetFlag(FLAGS_report), std::ios::app);
@@ -294,7 +302,8 @@ bool RunRobot(const std::string& kind, int index) {
 
 int main(int argc, char** argv) {
   absl::SetProgramUsageMessage(absl::StrCat(
-      "Simulated robots (an overhead gantry, a two-link arm) that learn through forayd.\n\n",
+      "Simulated robots (an overhead gantry, a two-link arm, a paddle pushing a puck along a bench on\n"
+      "MuJoCo) that learn through forayd.\n\n",
       kCaution, "\n\nUsage: foray-sim [flags]"));
   absl::ParseCommandLine(argc, argv);
   std::signal(SIGINT, OnSignal);
@@ -303,7 +312,7 @@ int main(int argc, char** argv) {
 
   const std::vector<std::string> kinds = absl::StrSplit(absl::GetFlag(FLAGS_robots), ',', absl::SkipEmpty());
   if (kinds.empty()) {
-    std::fprintf(stderr, "foray-sim: --robots is empty; name gantry and/or arm\n");
+    std::fprintf(stderr, "foray-sim: --robots is empty; name gantry, arm and/or bench\n");
     return 2;
   }
   const std::string strategy = absl::GetFlag(FLAGS_strategy);
@@ -313,8 +322,16 @@ int main(int argc, char** argv) {
     return 2;
   }
   for (const std::string& kind : kinds) {
-    if (!foray::sim::MakeScenario(kind, 0).ok()) {
-      std::fprintf(stderr, "foray-sim: unknown robot \"%s\" in --robots; use gantry or arm\n", kind.c_str());
+    absl::StatusOr<std::unique_ptr<Scenario>> scenario = foray::sim::MakeScenario(kind, 0);
+    if (!scenario.ok()) {
+      if (scenario.status().code() == absl::StatusCode::kInvalidArgument &&
+          kind != "bench") {
+        std::fprintf(stderr, "foray-sim: unknown robot \"%s\" in --robots; use gantry, arm or bench\n",
+                     kind.c_str());
+      } else {
+        std::fprintf(stderr, "foray-sim: robot \"%s\": %s\n", kind.c_str(),
+                     std::string(scenario.status().message()).c_str());
+      }
       return 2;
     }
   }

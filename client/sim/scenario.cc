@@ -134,8 +134,9 @@ class ArmScenario final : public Scenario {
 absl::StatusOr<std::unique_ptr<Scenario>> MakeScenario(const std::string& kind, uint64_t seed) {
   if (kind == "gantry") return std::unique_ptr<Scenario>(new GantryScenario(seed));
   if (kind == "arm") return std::unique_ptr<Scenario>(new ArmScenario(seed));
-  return absl::InvalidArgumentError(
-      absl::StrFormat("unknown scenario \"%s\"; the simulated robots are \"gantry\" and \"arm\"", kind));
+  if (kind == "bench") return MakeBenchScenario(seed);
+  return absl::InvalidArgumentError(absl::StrFormat(
+      "unknown scenario \"%s\"; the simulated robots are \"gantry\", \"arm\" and \"bench\"", kind));
 }
 
 }  // namespace foray::sim

@@ -56,8 +56,11 @@ class Scenario {
   virtual std::string ZoneDescription() const = 0;
 };
 
-// "gantry" or "arm"; InvalidArgument for another name.
+// "gantry", "arm" (our own RK4 physics) or "bench" (MuJoCo: a paddle pushes a puck, which can be
+// lost off the open end of the bench); InvalidArgument for another name, NotFound or
+// InvalidArgument naming the file when bench's MJCF model is missing or malformed.
 absl::StatusOr<std::unique_ptr<Scenario>> MakeScenario(const std::string& kind, uint64_t seed);
+absl::StatusOr<std::unique_ptr<Scenario>> MakeBenchScenario(uint64_t seed);
 
 }  // namespace foray::sim
 

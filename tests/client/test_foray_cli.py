@@ -45,7 +45,7 @@ def test_robots_status_and_watch(forayd):  # noqa: F811
     feeder.join()
     assert watched.returncode == 0, watched.stderr
     assert f"{rid} snapshot:" in watched.stdout
-    assert f"{rid} episode 3: return" in watched.stdout
+    assert f"{rid} exploration episode 3: return" in watched.stdout
 
     table = foray(forayd, "watch", rid, "--seconds=1.5")  # the redrawing table, with a coverage bar
     assert table.returncode == 0, table.stderr

@@ -1,0 +1,190 @@
+// The MuJoCo world of the simulated robots against textbook mechanics, and its error handling.
+// MuJoCo's contacts are soft (a spring-damper constraint whose normal force settles within a
+// few milliseconds, solref 0.02 s by default), so the checks allow a few percent where contact
+// forces decide the motion; momentum exchange between two bodies is exact up to rounding.
+#include <cmath>
+#include <cstdio>
+#include <string>
+#include <vector>
+
+#include "client/sim/mujoco_world.h"
+#include "client/sim/scenario.h"
+#include "gtest/gtest.h"
+
+namespace foray::sim {
+namespace {
+
+constexpr double kG = 9.81;
+
+std::unique_ptr<MujocoWorld> Must(absl::StatusOr<std::unique_ptr<MujocoWorld>> world) {
+  EXPECT_TRUE(world.ok()) << world.status();
+  return world.ok() ? *std::move(world) : nullptr;
+}
+
+// A block sliding on a level plane with Coulomb friction mu decelerates at mu g and stops after
+// v0^2 / (2 mu g) (textbook kinematics of kinetic friction). Elliptic friction cone: the
+// friction force is mu N in any sliding direction.
+TEST(MujocoPhysicsTest, SlidingBlockDeceleratesAtMuGAndStopsWhereKinematicsSays) {
+  const double mu = 0.3, v0 = 1.0;
+  auto world = Must(MujocoWorld::FromText(R"(
+    <mujoco><option timestep="0.001" cone="elliptic"/>
+      <worldbody>
+        <geom type="plane" size="5 5 0.1" friction="0.3 0 0"/>
+        <body pos="0 0 0.05"><freejoint/><geom type="box" size="0.05 0.05 0.05" mass="1" friction="0.3 0 0"/></body>
+      </worldbody></mujoco>)", "sliding.xml"));
+  ASSERT_NE(world, nullptr);
+  ASSERT_TRUE(world->Step(200).ok());  // settle on the plane (0.2 s)
+  mjData* d = world->data();
+  d->qvel[0] = v0;
+  const double x0 = d->qpos[0];
+  ASSERT_TRUE(world->Step(100).ok());  // 0.1 s of sliding
+  const double decel = (v0 - d->qvel[0]) / 0.1;
+  EXPECT_NEAR(decel / (mu * kG), 1.0, 0.03) << "deceleration " << decel << " m/s^2";
+  while (d->qvel[0] > 1e-4 && d->time < 5.0) ASSERT_TRUE(world->Step(1).ok());
+  const double distance = d->qpos[0] - x0;
+  const double expected = v0 * v0 / (2 * mu * kG);
+  EXPECT_NEAR(distance / expected, 1.0, 0.03) << "stopped after " << distance << " m, expected " << expected;
+  std::printf("sliding block: deceleration %.4f m/s^2 (mu g = %.4f), stop distance %.4f m (%.4f)\n",
+              decel, mu * kG, distance, expected);
+}
+
+// Rolling without slipping down an incline of angle theta: a solid cylinder accelerates at
+// (2/3) g sin(theta), a solid sphere at (5/7) g sin(theta) (I = m r^2 / 2 and 2 m r^2 / 5). The
+// incline is a level plane under gravity tilted by theta; friction 1 keeps them from slipping.
+double RollingAcceleration(const std::string& geom) {
+  const double theta = 0.2;
+  char mjcf[1024];
+  std::snprintf(mjcf, sizeof(mjcf), R"(
+    <mujoco><option timestep="0.0005" gravity="%.17g 0 %.17g"/>
+      <worldbody>
+        <geom type="plane" size="50 5 0.1" friction="1 0 0"/>
+        <body pos="0 0 0.1"><freejoint/>%s</body>
+      </worldbody></mujoco>)",
+                kG * std::sin(theta), -kG * std::cos(theta), geom.c_str());
+  auto world = Must(MujocoWorld::FromText(mjcf, "incline.xml"));
+  if (world == nullptr) return NAN;
+  mjData* d = world->data();
+  // Start at rest on the surface: a short settle with the body held, then measure 0.5 s.
+  for (int i = 0; i < 400; ++i) {
+    EXPECT_TRUE(world->Step(1).ok());
+    for (int k = 0; k < 6; ++k) d->qvel[k] = 0.0;
+  }
+  const double x0 = d->qpos[0];
+  EXPECT_TRUE(world->Step(1000).ok());
+  return 2.0 * (d->qpos[0] - x0) / (0.5 * 0.5) / (kG * std::sin(theta));  // a / (g sin theta)
+}
+
+TEST(MujocoPhysicsTest, SolidCylinderRollsDownAnInclineAtTwoThirdsGSinTheta) {
+  const double ratio = RollingAcceleration(
+      R"(<geom type="cylinder" size="0.1 0.05" euler="1.5707963267948966 0 0" mass="1" friction="1 0 0"/>)");
+  EXPECT_NEAR(ratio, 2.0 / 3.0, 0.02 * 2.0 / 3.0);
+  std::printf("cylinder: a / (g sin theta) = %.4f (2/3 = %.4f)\n", ratio, 2.0 / 3.0);
+}
+
+TEST(MujocoPhysicsTest, SolidSphereRollsDownAnInclineAtFiveSeventhsGSinTheta) {
+  const double ratio = RollingAcceleration(R"(<geom type="sphere" size="0.1" mass="1" friction="1 0 0"/>)");
+  EXPECT_NEAR(ratio, 5.0 / 7.0, 0.02 * 5.0 / 7.0);
+  std::printf("sphere: a / (g sin theta) = %.4f (5/7 = %.4f)\n", ratio, 5.0 / 7.0);
+}
+
+// Two bodies colliding along a line with no gravity and no friction: the contact forces are
+// equal and opposite, so the total momentum is conserved (Newton's third law), whatever energy
+// the soft contact absorbs.
+TEST(MujocoPhysicsTest, ImpactConservesMomentum) {
+  auto world = Must(MujocoWorld::FromText(R"(
+    <mujoco><option timestep="0.001" gravity="0 0 0"/>
+      <worldbody>
+        <body pos="0 0 0"><joint name="a" type="slide" axis="1 0 0"/><geom type="box" size="0.05 0.05 0.05" mass="2"/></body>
+        <body pos="0.3 0 0"><joint name="b" type="slide" axis="1 0 0"/><geom type="box" size="0.05 0.05 0.05" mass="0.5"/></body>
+      </worldbody></mujoco>)", "impact.xml"));
+  ASSERT_NE(world, nullptr);
+  mjData* d = world->data();
+  const int a = world->QvelOf("a"), b = world->QvelOf("b");
+  d->qvel[a] = 1.5;
+  const double before = 2.0 * 1.5;
+  ASSERT_TRUE(world->Step(500).ok());
+  ASSERT_GT(d->qvel[b], 1.0) << "the light body was struck";
+  EXPECT_NEAR(2.0 * d->qvel[a] + 0.5 * d->qvel[b], before, 1e-9 * before);
+}
+
+// The same seed and actions give the same trajectory bit for bit.
+TEST(MujocoSceneTest, BenchIsDeterministicForASeed) {
+  auto run = [] {
+    auto scenario = MakeScenario("bench", 7);
+    EXPECT_TRUE(scenario.ok()) << scenario.status();
+    std::vector<double> trace;
+    Eigen::VectorXd s = (*scenario)->Reset();
+    for (int t = 0; t < 80; ++t) {
+      s = (*scenario)->Step(Eigen::VectorXd::Constant(1, 0.9 * std::sin(0.2 * t) + 0.3));
+      trace.insert(trace.end(), s.data(), s.data() + s.size());
+    }
+    return trace;
+  };
+  const std::vector<double> first = run(), second = run();
+  ASSERT_EQ(first.size(), second.size());
+  EXPECT_EQ(0, std::memcmp(first.data(), second.data(), first.size() * sizeof(double)));
+}
+
+// Striking the puck hard from close by sends it off the open end (lost, terminal); holding the
+// carriage still leaves it where it was, earning nothing.
+TEST(MujocoSceneTest, BenchPuckIsLostOffTheOpenEndAndRestsWhenLeftAlone) {
+  auto scenario = MakeScenario("bench", 3);
+  ASSERT_TRUE(scenario.ok()) << scenario.status();
+  Scenario& bench = **scenario;
+  Eigen::VectorXd s = bench.Reset();
+  const double start = s[2];
+  for (int t = 0; t < 20; ++t) s = bench.Step(Eigen::VectorXd::Zero(1));
+  EXPECT_NEAR(s[2], start, 1e-3);
+  EXPECT_FALSE(bench.Terminal(s));
+  EXPECT_EQ(bench.Reward(s), 0.0);
+  bool lost = false;
+  for (int t = 0; t < 120 && !lost; ++t) {
+    s = bench.Step(Eigen::VectorXd::Constant(1, 1.2));
+    lost = bench.Terminal(s);
+  }
+  EXPECT_TRUE(lost) << "puck at " << s[2] << " m";
+}
+
+TEST(MujocoErrorTest, MissingAndMalformedModelsAreNamed) {
+  auto missing = MujocoWorld::Load("/nonexistent/bench.xml");
+  EXPECT_EQ(missing.status().code(), absl::StatusCode::kNotFound);
+  EXPECT_NE(missing.status().message().find("/nonexistent/bench.xml"), std::string::npos);
+  auto malformed = MujocoWorld::FromText("<mujoco>\n<worldbody>\n<body><geom type=\"box\"/></body>\n"
+                                         "<bogus/>\n</worldbody></mujoco>", "broken.xml");
+  EXPECT_EQ(malformed.status().code(), absl::StatusCode::kInvalidArgument);
+  EXPECT_NE(malformed.status().message().find("broken.xml"), std::string::npos) << malformed.status();
+  EXPECT_NE(malformed.status().message().find("line"), std::string::npos) << malformed.status();
+}
+
+// MuJoCo answers diverging accelerations by resetting the state and a warning; the world says
+// so instead of going on from a silently reset state.
+TEST(MujocoErrorTest, DivergenceIsReported) {
+  auto world = Must(MujocoWorld::FromText(R"(
+    <mujoco><worldbody><body><joint name="j" type="hinge"/><geom type="capsule" size="0.02 0.2" mass="1"/></body>
+    </worldbody></mujoco>)", "diverging.xml"));
+  ASSERT_NE(world, nullptr);
+  world->data()->qvel[0] = 1e300;
+  world->data()->qfrc_applied[0] = 1e308;
+  const absl::Status s = world->Step(5);
+  EXPECT_EQ(s.code(), absl::StatusCode::kFailedPrecondition) << s;
+  EXPECT_NE(s.message().find("diverged"), std::string::npos) << s;
+  world->Reset();
+  EXPECT_TRUE(world->Step(5).ok());
+}
+
+// An error inside MuJoCo (here its stack runs out) ends the step with a Status; the process
+// goes on.
+TEST(MujocoErrorTest, EngineErrorBecomesAStatus) {
+  auto world = Must(MujocoWorld::FromText(R"(
+    <mujoco><size nstack="10"/><worldbody>
+      <geom type="plane" size="1 1 0.1"/>
+      <body pos="0 0 0.1"><freejoint/><geom type="box" size="0.05 0.05 0.05"/></body>
+    </worldbody></mujoco>)", "tiny-stack.xml"));
+  ASSERT_NE(world, nullptr);
+  const absl::Status s = world->Step(10);
+  EXPECT_EQ(s.code(), absl::StatusCode::kInternal) << s;
+  EXPECT_NE(s.message().find("MuJoCo error"), std::string::npos) << s;
+}
+
+}  // namespace
+}  // namespace foray::sim
