@@ -15,6 +15,7 @@ PACKAGES=(
   libabsl-dev            # Abseil: status, flags, strings, synchronisation
   libeigen3-dev          # Eigen: the linear algebra of the models and planner
   libmujoco-dev          # MuJoCo 2.2: the physics of the simulated contact robots (client/sim)
+  libqhull-dev           # headers MuJoCo's CMake package names (/usr/include/libqhull_r)
   libsqlite3-dev         # SQLite: the embedded store
   libssl-dev             # OpenSSL: SHA-256 of tokens
   openssl                # certificates for the TLS tests

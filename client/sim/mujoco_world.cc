@@ -133,15 +133,18 @@ void MujocoWorld::Reset() { mj_resetData(model_, data_); }
 absl::Status MujocoWorld::Step(int steps) {
   std::string warnings;
   t_warnings = &warnings;
-  const int before = data_->warning[mjWARN_BADQACC].number;
+  const int before = data_->warning[mjWARN_BADQPOS].number + data_->warning[mjWARN_BADQVEL].number +
+                     data_->warning[mjWARN_BADQACC].number;
   absl::Status s = Guarded(name_, [&] {
     for (int i = 0; i < steps; ++i) mj_step(model_, data_);
   });
   t_warnings = nullptr;
   if (!s.ok()) return s;
-  if (data_->warning[mjWARN_BADQACC].number != before) {
+  if (data_->warning[mjWARN_BADQPOS].number + data_->warning[mjWARN_BADQVEL].number +
+          data_->warning[mjWARN_BADQACC].number != before) {
     return absl::FailedPreconditionError(absl::StrFormat(
-        "%s: the simulation diverged at t = %.4f s (bad accelerations; MuJoCo reset the state)%s",
+        "%s: the simulation diverged at t = %.4f s (bad positions, velocities or "
+        "accelerations; MuJoCo reset the state)%s",
         name_, data_->time, warnings.empty() ? "" : absl::StrCat(": ", warnings)));
   }
   for (int i = 0; i < model_->nq; ++i) {

@@ -2,8 +2,8 @@
 // robots on a real physics engine. MuJoCo's errors become absl::Status: a model that is missing
 // or malformed is reported with its file and MuJoCo's message (element and line), and an error
 // inside a step (MuJoCo 2.2 would otherwise print, wait for Enter and exit the process) ends
-// only that step. Diverging accelerations, which MuJoCo answers by silently resetting the
-// state, are reported too. Deterministic: the same model, start and controls give the same
+// only that step. A diverging simulation (bad positions, velocities or accelerations), which
+// MuJoCo answers by silently resetting the state, is reported too. Deterministic: the same model, start and controls give the same
 // trajectory bit for bit. A world is one robot: not thread-safe (several worlds may step on
 // several threads at once).
 //
