@@ -53,8 +53,10 @@ ABSL_FLAG(std::string, report, "", "Append one JSON line per episode to this fil
 ABSL_FLAG(int, min_transitions, 200, "Transitions before the first model (at registration).");
 ABSL_FLAG(int, train_every, 500, "Retrain after this many new transitions (at registration).");
 ABSL_FLAG(int, evaluate_every, 0,
-          "After every N exploration episodes, one evaluation episode: reward-only plans on the "
-          "current model, reported separately (0: none; needs a model, so it waits for the first).");
+          "After every N exploration episodes, --evaluation_episodes evaluation episodes: "
+          "reward-only plans on the current model, reported separately (0: none; needs a model, "
+          "so it waits for the first).");
+ABSL_FLAG(int, evaluation_episodes, 1, "Evaluation episodes in each evaluation round.");
 
 namespace {
 
@@ -175,14 +177,19 @@ bool RunRobot(const std::string& kind, int index) {
       grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials()));
 
   const int evaluate_every = absl::GetFlag(FLAGS_evaluate_every);
-  int explored_since_evaluation = 0;
+  const int round_size = std::max(1, absl::GetFlag(FLAGS_evaluation_episodes));
+  int explored_since_evaluation = 0, evaluated_in_round = 0;
   uint64_t known_model = 0;  // the newest model version a plan came from
   for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
     // An evaluation episode once every evaluate_every exploration episodes, from the first
     // model on (the server refuses to evaluate before it).
     const bool evaluation = !noise_baseline && evaluate_every > 0 &&
                             explored_since_evaluation >= evaluate_every && known_model > 0;
-    explored_since_evaluation = evaluation ? 0 : explored_since_evaluation + 1;
+    if (evaluation) {
+      if (++evaluated_in_round == round_size) explored_since_evaluation = evaluated_in_round = 0;
+    } else {
+      ++explored_since_evaluation;
+    }
     foray::client::PlanChoices choices;
     choices.evaluate = evaluation;
     choices.episode = episode_id;

@@ -7,12 +7,16 @@ loopback, under three strategies, for several seeds each:
            noise of 0.3 of each action's half range, clipped to the bounds and rate limits.
 
 Every run starts with an empty data directory and a fresh forayd; the model is retrained on
-everything sent after each episode (foray-sim --train_each_episode). Per run it records the
-episode of first reward (the hidden zone discovered), the state-space coverage after each
-episode (fraction of occupied cells of a 20x20 grid over the robot's two coverage dimensions,
-read from the SQLite store), the return per episode, the final model's holdout error, wall time
+everything sent after each episode (foray-sim --train_each_episode). After every K exploration
+episodes (--evaluate_every), E evaluation episodes (--evaluations) plan reward only on the
+current model: their success rate (return > 0) over the run is the learning curve of the task.
+The noise baseline has no model, so it has no evaluation. Per run it records the exploration
+episode of first reward (the hidden goal discovered), the state-space coverage after each
+exploration episode (fraction of occupied cells of a 20x20 grid over the robot's two coverage
+dimensions, read from the SQLite store), returns, objects lost (episodes that ended in a
+terminal state), the evaluation success per round, the final model's holdout error, wall time
 and plans. Writes exploration_bench.json, prints a summary table, and draws PNG plots with
-matplotlib.
+matplotlib (mean and min..max over seeds).
 
     /usr/bin/python3 tests/bench/exploration_bench.py --build build --out build/bench/exploration
 """
@@ -100,8 +104,9 @@ def run_one(args, scenario, strategy, seed):
                  f"--state_dir={os.path.join(data_dir, 'sim')}", f"--robots={scenario}",
                  f"--episodes={args.episodes}", f"--steps={args.steps}", f"--seed={seed}",
                  f"--strategy={strategy}", "--train_each_episode",
-                 f"--min_transitions={args.steps}", "--train_every=1000000",
+                 f"--min_transitions={args.steps or 100}", "--train_every=1000000",
                  f"--deadline_ms={args.deadline_ms}", f"--report={report_path}",
+                 f"--evaluate_every={args.evaluate_every}", f"--evaluation_episodes={args.evaluations}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
             if result.returncode != 0:
@@ -111,19 +116,36 @@ def run_one(args, scenario, strategy, seed):
         finally:
             stop(process)
         episodes = [json.loads(line) for line in open(report_path)]
+    explored = [e for e in episodes if not e.get("evaluation")]
     occupied, coverage = set(), []
     visit = np.zeros(GRID * GRID, dtype=int)
     for e in episodes:
         mine = cells(spec, states[episode_ids == e["episode"]])
         occupied.update(mine.tolist())
         np.add.at(visit, mine, 1)
-        coverage.append(len(occupied) / (GRID * GRID))
-    returns = [e["return"] for e in episodes]
+        if not e.get("evaluation"):
+            coverage.append(len(occupied) / (GRID * GRID))
+    returns = [e["return"] for e in explored]
     first = next((k + 1 for k, r in enumerate(returns) if r > 0), None)
+    # Evaluation rounds: after exploration episode k, the success rate of the round's episodes.
+    rounds, pending, done_explore = [], [], 0
+    for e in episodes:
+        if e.get("evaluation"):
+            pending.append(1.0 if e["return"] > 0 else 0.0)
+        else:
+            if pending:
+                rounds.append((done_explore, float(np.mean(pending))))
+                pending = []
+            done_explore += 1
+    if pending:
+        rounds.append((done_explore, float(np.mean(pending))))
     return {
         "scenario": scenario, "strategy": strategy, "seed": seed,
         "first_discovery_episode": first,
         "returns": returns, "coverage": coverage,
+        "lost": sum(1 for e in episodes if e.get("outcome") == "lost"),
+        "lost_exploring": sum(1 for e in explored if e.get("outcome") == "lost"),
+        "evaluation_rounds": rounds,
         "visits": visit.reshape(GRID, GRID).tolist(),
         "holdout_mse": training.holdout_mse if training else None,
         "holdout_nll": training.holdout_nll if training else None,
@@ -143,25 +165,31 @@ def summarise(runs):
                 continue
             found = [r["first_discovery_episode"] for r in mine if r["first_discovery_episode"]]
             late = [sum(1 for x in r["returns"][-5:] if x > 0) for r in mine if r["first_discovery_episode"]]
+            final = [r["evaluation_rounds"][-1][1] for r in mine if r["evaluation_rounds"]]
             rows.append({
                 "scenario": scenario, "strategy": strategy, "runs": len(mine),
                 "discovered": len(found),
                 "median_first_episode": float(np.median(found)) if found else None,
                 "final_coverage_mean": float(np.mean([r["coverage"][-1] for r in mine])),
                 "reached_in_4_of_last_5": sum(1 for n in late if n >= 4),
+                "final_evaluation_success": float(np.mean(final)) if final else None,
+                "lost_total": int(sum(r["lost"] for r in mine)),
                 "wall_s_mean": float(np.mean([r["wall_s"] for r in mine])),
             })
     return rows
 
 
 def print_table(rows, episodes, steps):
-    print(f"budget: {episodes} episodes of {steps} steps per run")
+    print(f"budget: {episodes} episodes (exploration and evaluation) of "
+          f"{steps or 'the scenario own number of'} steps per run")
     print(f"{'scenario':8} {'strategy':8} {'found':>7} {'median ep':>9} {'coverage':>9} "
-          f"{'4 of last 5':>11} {'wall s':>7}")
+          f"{'4 of last 5':>11} {'eval. success':>13} {'lost':>5} {'wall s':>7}")
     for r in rows:
         med = f"{r['median_first_episode']:.1f}" if r["median_first_episode"] else "-"
+        ev = f"{100 * r['final_evaluation_success']:.0f}%" if r["final_evaluation_success"] is not None else "-"
         print(f"{r['scenario']:8} {r['strategy']:8} {r['discovered']:>3}/{r['runs']:<3} {med:>9} "
-              f"{r['final_coverage_mean']:9.3f} {r['reached_in_4_of_last_5']:>11} {r['wall_s_mean']:7.1f}")
+              f"{r['final_coverage_mean']:9.3f} {r['reached_in_4_of_last_5']:>11} {ev:>13} "
+              f"{r['lost_total']:>5} {r['wall_s_mean']:7.1f}")
 
 
 def plot(runs, out_dir):
@@ -171,7 +199,7 @@ def plot(runs, out_dir):
 
     colours = {"explore": "tab:green", "reward": "tab:blue", "noise": "tab:grey"}
     for scenario in sorted({r["scenario"] for r in runs}):
-        fig, axes = plt.subplots(1, 2, figsize=(11, 4))
+        fig, axes = plt.subplots(1, 3, figsize=(16, 4))
         for strategy, colour in colours.items():
             mine = [r for r in runs if r["scenario"] == scenario and r["strategy"] == strategy]
             if not mine:
@@ -181,8 +209,22 @@ def plot(runs, out_dir):
                 x = np.arange(1, data.shape[1] + 1)
                 ax.plot(x, data.mean(0), color=colour, label=strategy)
                 ax.fill_between(x, data.min(0), data.max(0), color=colour, alpha=0.2)
-        axes[0].set(title=f"{scenario}: coverage (20x20 grid)", xlabel="episode", ylabel="fraction of cells")
-        axes[1].set(title=f"{scenario}: return (steps in the hidden zone)", xlabel="episode", ylabel="return")
+            # Evaluation success per round, by the exploration episodes done before it.
+            by_round = {}
+            for r in mine:
+                for k, (after, rate) in enumerate(r["evaluation_rounds"]):
+                    by_round.setdefault(after, []).append(rate)
+            if by_round:
+                x = sorted(by_round)
+                rates = [np.array(by_round[k]) for k in x]
+                axes[2].plot(x, [v.mean() for v in rates], color=colour, marker="o", label=strategy)
+                axes[2].fill_between(x, [v.min() for v in rates], [v.max() for v in rates], color=colour, alpha=0.2)
+        axes[0].set(title=f"{scenario}: coverage (20x20 grid)", xlabel="exploration episode",
+                    ylabel="fraction of cells")
+        axes[1].set(title=f"{scenario}: exploration return", xlabel="exploration episode",
+                    ylabel="return (steps at the goal)")
+        axes[2].set(title=f"{scenario}: evaluation success", xlabel="exploration episodes before the round",
+                    ylabel="success rate (return > 0)", ylim=(-0.05, 1.05))
         axes[0].legend()
         fig.tight_layout()
         fig.savefig(os.path.join(out_dir, f"{scenario}_coverage_return.png"), dpi=110)
@@ -208,8 +250,10 @@ def main(argv=None):
     parser.add_argument("--strategies", default="explore,reward,noise")
     parser.add_argument("--seeds", type=int, default=10)
     parser.add_argument("--episodes", type=int, default=15)
-    parser.add_argument("--steps", type=int, default=100)
+    parser.add_argument("--steps", type=int, default=0, help="steps per episode; 0: the scenario's own")
     parser.add_argument("--deadline_ms", type=float, default=100)
+    parser.add_argument("--evaluate_every", type=int, default=3, help="K: exploration episodes between rounds")
+    parser.add_argument("--evaluations", type=int, default=2, help="E: evaluation episodes per round")
     parser.add_argument("--no-plots", action="store_true")
     args = parser.parse_args(argv)
     os.makedirs(args.out, exist_ok=True)
@@ -219,9 +263,10 @@ def main(argv=None):
             for strategy in args.strategies.split(","):
                 run = run_one(args, scenario, strategy, seed)
                 runs.append(run)
+                last = run["evaluation_rounds"][-1][1] if run["evaluation_rounds"] else None
                 print(f"{scenario} {strategy} seed {seed}: first reward episode "
-                      f"{run['first_discovery_episode']}, coverage {run['coverage'][-1]:.3f}, "
-                      f"{run['wall_s']:.0f} s", flush=True)
+                      f"{run['first_discovery_episode']}, coverage {run['coverage'][-1]:.3f}, lost {run['lost']}, "
+                      f"last evaluation success {last}, {run['wall_s']:.0f} s", flush=True)
     rows = summarise(runs)
     with open(os.path.join(args.out, "exploration_bench.json"), "w") as f:
         json.dump({"settings": vars(args), "summary": rows, "runs": runs}, f, indent=1)

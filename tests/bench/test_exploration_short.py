@@ -1,7 +1,8 @@
 """The short version of the exploration benchmark, in the test suite: two seeds of the gantry,
-five episodes of 60 steps, the exploring planner against the noise baseline. The exploring
-planner's state-space coverage must beat the noise baseline's (the claim the full benchmark
-measures; see exploration_bench.py)."""
+six episodes of 60 steps (an evaluation round of one episode after every two exploration
+episodes), the exploring planner against the noise baseline. The exploring planner's state-space
+coverage must beat the noise baseline's, and it must discover the goal in at least as many seeds
+(the claims the full benchmark measures; see exploration_bench.py)."""
 
 import os
 import sys
@@ -15,8 +16,16 @@ def test_exploring_planner_covers_more_than_the_noise_baseline():
     with tempfile.TemporaryDirectory(prefix="foray-bench-short-") as out:
         runs, rows = exploration_bench.main([
             "--build", os.environ["FORAY_BUILD_DIR"], "--out", out, "--scenarios", "gantry",
-            "--strategies", "explore,noise", "--seeds", "2", "--episodes", "5", "--steps", "60",
-            "--no-plots"])
+            "--strategies", "explore,noise", "--seeds", "2", "--episodes", "6", "--steps", "60",
+            "--evaluate_every", "2", "--evaluations", "1", "--no-plots"])
     coverage = {r["strategy"]: r["final_coverage_mean"] for r in rows}
+    discovered = {r["strategy"]: r["discovered"] for r in rows}
     assert coverage["explore"] > coverage["noise"], coverage
-    assert len(runs) == 4 and all(len(r["coverage"]) == 5 for r in runs)
+    assert discovered["explore"] >= discovered["noise"], discovered
+    explore = [r for r in runs if r["strategy"] == "explore"]
+    noise = [r for r in runs if r["strategy"] == "noise"]
+    # With a model from the second episode on, the explorer evaluates after episodes 2 and 4;
+    # the noise baseline never does.
+    assert all([k for k, _ in r["evaluation_rounds"]] == [2, 4] for r in explore), explore
+    assert all(len(r["coverage"]) == 4 for r in explore) and all(len(r["coverage"]) == 6 for r in noise)
+    assert all(not r["evaluation_rounds"] for r in noise)
