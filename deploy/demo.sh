@@ -1,7 +1,8 @@
 #!/usr/bin/env bash
 # Starts a local Foray: installs what is missing, builds, runs forayd on the embedded default
-# (SQLite under ./foray-data) on 127.0.0.1:50151 and two simulated robots (foray-sim: an
-# overhead gantry and a two-link arm) that learn through it, until Ctrl-C (data is kept).
+# (SQLite under ./foray-data) on 127.0.0.1:50151 and three simulated robots (foray-sim: an
+# overhead gantry, a two-link arm, and a paddle that pushes a puck along a bench on MuJoCo) that
+# learn through it, until Ctrl-C (data is kept).
 #
 #   ./deploy/demo.sh               # until Ctrl-C
 #   ./deploy/demo.sh --minutes 5   # stop by itself after five minutes
@@ -54,11 +55,12 @@ echo
 echo "demo: forayd is serving gRPC on $ADDRESS with data in $DATA_DIR."
 echo "demo: the admin token (for registering robots) is in $DATA_DIR/admin-token."
 echo "demo: dashboard at http://127.0.0.1:$HTTP_PORT/ (metrics at /metrics)."
-echo "demo: two simulated robots now learn in real time; a line per episode shows the return"
-echo "      (steps inside the zone they are not told about), the model version and the"
-echo "      information gain of their plans. Press Ctrl-C to stop."
+echo "demo: three simulated robots now learn in real time; a line per episode shows whether it"
+echo "      explored or evaluated, its outcome (goal reached, lost, time up), the return (steps"
+echo "      at the goal they are not told about), the model version and the information gain of"
+echo "      their plans. Every fourth episode evaluates. Press Ctrl-C to stop."
 "$BUILD_DIR/client/foray-sim" --address="$ADDRESS" --admin_token_file="$DATA_DIR/admin-token" \
-  --state_dir="$DATA_DIR/sim" --robots=gantry,arm --episodes=0 --realtime &
+  --state_dir="$DATA_DIR/sim" --robots=gantry,arm,bench --episodes=0 --realtime --evaluate_every=3 &
 SIM_PID=$!
 if [ "$MINUTES" != "0" ]; then
   sleep "$(awk "BEGIN {print $MINUTES * 60}")" &

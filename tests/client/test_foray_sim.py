@@ -75,3 +75,32 @@ def test_sim_refuses_an_unknown_robot(forayd):  # noqa: F811
     result = run_sim(forayd, "--robots=crane")
     assert result.returncode == 2
     assert 'unknown robot "crane"' in result.stderr
+
+
+def test_sim_names_a_broken_model_file(forayd, tmp_path, monkeypatch):  # noqa: F811
+    broken = tmp_path / "bench.xml"
+    broken.write_text("<mujoco>\n  <worldbody>\n    <body><geom type='box' size='1'/></body>\n  <oops/>\n"
+                      "  </worldbody>\n</mujoco>\n")
+    monkeypatch.setenv("FORAY_SIM_MODELS", str(tmp_path))
+    result = run_sim(forayd, "--robots=bench")
+    assert result.returncode == 2
+    assert str(broken) in result.stderr and "line" in result.stderr, result.stderr
+    assert not (tmp_path / "MUJOCO_LOG.TXT").exists() and not os.path.exists("MUJOCO_LOG.TXT")
+
+
+def test_bench_robot_records_lost_pucks_as_terminal(forayd):  # noqa: F811
+    # The noise baseline never loses the puck; striking it is what loses it. Prior plans (no
+    # model: --min_transitions above the run) are coloured noise over the whole speed range.
+    result = run_sim(forayd, "--robots=bench", "--episodes=6", "--min_transitions=100000", "--steps=100")
+    assert result.returncode == 0, result.stdout + result.stderr
+    lines = [l for l in result.stdout.splitlines() if " episode " in l]
+    assert len(lines) == 6
+    lost = [l for l in lines if ": lost," in l]
+    db = sqlite3.connect(os.path.join(forayd.data_dir, "foray.db"))
+    try:
+        terminals = db.execute("SELECT COUNT(*) FROM transitions WHERE terminal != 0").fetchone()[0]
+        episodes = db.execute("SELECT COUNT(DISTINCT episode) FROM transitions").fetchone()[0]
+    finally:
+        db.close()
+    assert terminals == len(lost)  # one terminal transition per lost puck, none for a time limit
+    assert episodes == 6
