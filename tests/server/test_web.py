@@ -71,6 +71,12 @@ def test_metrics_and_json_match_the_store():
             assert samples[("foray_robot_plans_total", None)] == 1
             assert samples[("foray_robot_plan_latency_milliseconds", "0.5")] > 0
             assert 0 < samples[("foray_robot_coverage_ratio", None)] <= 1
+            by_kind = {(s.name, s.labels["kind"]): s.value for f in text_string_to_metric_families(text)
+                       for s in f.samples if "kind" in s.labels and s.labels["robot_id"] == robot.robot.robot_id}
+            # Both episodes explored and ended on a terminal transition (the test data's flag).
+            assert by_kind[("foray_robot_episodes_by_kind_total", "exploration")] == 2
+            assert by_kind[("foray_robot_episodes_by_kind_total", "evaluation")] == 0
+            assert by_kind[("foray_robot_episode_terminals_total", "exploration")] == 2
             families = {f.name: f for f in text_string_to_metric_families(text)}
             assert families["foray_planner_waiting_plans"].samples[0].value == 0  # queue depth
             assert families["foray_planner_cores"].samples[0].value >= 1
@@ -79,6 +85,8 @@ def test_metrics_and_json_match_the_store():
             robots = json.loads(body)["robots"]
             assert content_type == "application/json" and len(robots) == 1
             assert robots[0]["transitions"] == 100 and robots[0]["episodes"] == 2
+            assert robots[0]["exploration"]["episodes"] == 2 and robots[0]["evaluation"]["episodes"] == 0
+            assert robots[0]["last_episode"]["terminal"] is True
             assert sum(robots[0]["coverage"]["counts"]) == 100
 
             status, _, body = get(f"{base}/api/robots/{robot.robot.robot_id}/history",
@@ -86,6 +94,7 @@ def test_metrics_and_json_match_the_store():
             history = json.loads(body)
             assert [e["episode"] for e in history["episodes"]] == [1, 2]
             assert [e["steps"] for e in history["episodes"]] == [50, 50]
+            assert [e["evaluation"] for e in history["episodes"]] == [False, False]
             assert [t["model_version"] for t in history["trainings"]] == [1]
 
             # The viewer token also reads progress over gRPC, and nothing else.
