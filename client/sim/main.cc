@@ -42,6 +42,9 @@ ABSL_FLAG(bool, realtime, false, "Pace each step to the control period instead o
 ABSL_FLAG(double, deadline_ms, 100.0, "Planning time per step, milliseconds.");
 ABSL_FLAG(double, reward_weight, 1.0, "Objective weight of the expected reward (at registration).");
 ABSL_FLAG(double, information_weight, 1.0, "Objective weight of the information gain (at registration).");
+ABSL_FLAG(double, terminal_value, 0.0,
+          "Objective value of ending an episode in a terminal state, e.g. -5 for \"losing the object "
+          "costs five steps at the goal\" (at registration).");
 ABSL_FLAG(std::string, strategy, "explore",
           "explore: plans with reward + information gain; reward: information weight 0; "
           "noise: no model, the nominal controller's action plus Gaussian noise.");
@@ -110,6 +113,9 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
   spec.mutable_objective()->set_reward_weight(absl::GetFlag(FLAGS_reward_weight));
   spec.mutable_objective()->set_information_weight(
       absl::GetFlag(FLAGS_strategy) == "reward" ? 0.0 : absl::GetFlag(FLAGS_information_weight));
+  if (absl::GetFlag(FLAGS_terminal_value) != 0.0) {
+    spec.mutable_objective()->set_terminal_value(absl::GetFlag(FLAGS_terminal_value));
+  }
   for (int i : s.coverage_indices()) spec.add_coverage_indices(i);
   for (double v : s.coverage_lower()) spec.add_coverage_lower(v);
   for (double v : s.coverage_upper()) spec.add_coverage_upper(v);

@@ -107,6 +107,7 @@ def run_one(args, scenario, strategy, seed):
                  f"--min_transitions={args.steps or 100}", "--train_every=1000000",
                  f"--deadline_ms={args.deadline_ms}", f"--report={report_path}",
                  f"--evaluate_every={args.evaluate_every}", f"--evaluation_episodes={args.evaluations}",
+                 f"--terminal_value={args.terminal_value}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
             if result.returncode != 0:
@@ -254,6 +255,8 @@ def main(argv=None):
     parser.add_argument("--deadline_ms", type=float, default=100)
     parser.add_argument("--evaluate_every", type=int, default=3, help="K: exploration episodes between rounds")
     parser.add_argument("--evaluations", type=int, default=2, help="E: evaluation episodes per round")
+    parser.add_argument("--terminal_value", type=float, default=0.0,
+                        help="the robots' objective value of a terminal state (foray-sim --terminal_value)")
     parser.add_argument("--no-plots", action="store_true")
     args = parser.parse_args(argv)
     os.makedirs(args.out, exist_ok=True)
