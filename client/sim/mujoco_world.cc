@@ -159,22 +159,17 @@ absl::Status MujocoWorld::Forward() {
   return Guarded(name_, [&] { mj_forward(model_, data_); });
 }
 
-int MujocoWorld::QposOf(const char* joint) const {
+int MujocoWorld::JointId(const char* joint) const {
   const int id = mj_name2id(model_, mjOBJ_JOINT, joint);
   if (id < 0) {
     std::fprintf(stderr, "%s has no joint \"%s\"\n", name_.c_str(), joint);
     std::abort();
   }
-  return model_->jnt_qposadr[id];
+  return id;
 }
 
-int MujocoWorld::QvelOf(const char* joint) const {
-  const int id = mj_name2id(model_, mjOBJ_JOINT, joint);
-  if (id < 0) {
-    std::fprintf(stderr, "%s has no joint \"%s\"\n", name_.c_str(), joint);
-    std::abort();
-  }
-  return model_->jnt_dofadr[id];
-}
+int MujocoWorld::QposOf(const char* joint) const { return model_->jnt_qposadr[JointId(joint)]; }
+
+int MujocoWorld::QvelOf(const char* joint) const { return model_->jnt_dofadr[JointId(joint)]; }
 
 }  // namespace foray::sim

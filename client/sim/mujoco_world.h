@@ -60,6 +60,7 @@ class MujocoWorld {
 
  private:
   MujocoWorld(mjModel* model, std::string name);
+  int JointId(const char* joint) const;  // aborts when there is none
   const std::string name_;
   mjModel* const model_;
   mjData* const data_;

@@ -14,6 +14,38 @@ bool AllFinite(const std::vector<double>& v) {
   return true;
 }
 
+// A box over some state indices (a known reward's region, a known termination), named `field`
+// in messages: sizes that match, indices inside the state, lower <= upper.
+absl::Status ValidateBox(const char* field, const std::vector<int>& indices,
+                         const std::vector<double>& lower, const std::vector<double>& upper,
+                         int state_dim) {
+  if (lower.size() != indices.size() || upper.size() != indices.size()) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "%s has %d indices, %d lower and %d upper bounds; they must match", field, indices.size(),
+        lower.size(), upper.size()));
+  }
+  for (size_t i = 0; i < indices.size(); ++i) {
+    if (indices[i] < 0 || indices[i] >= state_dim) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "%s.indices[%d] is %d, the state has %d values", field, i, indices[i], state_dim));
+    }
+    if (std::isnan(lower[i]) || std::isnan(upper[i]) || !(lower[i] <= upper[i])) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "%s bound %d: lower %g is not <= upper %g", field, i, lower[i], upper[i]));
+    }
+  }
+  return absl::OkStatus();
+}
+
+// Whether the state s lies in the box.
+bool InBox(const float* s, const std::vector<int>& indices, const std::vector<double>& lower,
+           const std::vector<double>& upper) {
+  for (size_t i = 0; i < indices.size(); ++i) {
+    if (!(s[indices[i]] >= lower[i] && s[indices[i]] <= upper[i])) return false;
+  }
+  return true;
+}
+
 }  // namespace
 
 absl::Status KnownReward::Validate(int state_dim, int action_dim) const {
@@ -44,23 +76,7 @@ absl::Status KnownReward::Validate(int state_dim, int action_dim) const {
       if (indices.empty()) {
         return absl::InvalidArgumentError("known_reward.region.indices is empty");
       }
-      if (lower.size() != indices.size() || upper.size() != indices.size()) {
-        return absl::InvalidArgumentError(absl::StrFormat(
-            "known_reward.region has %d indices, %d lower and %d upper bounds; they must match",
-            indices.size(), lower.size(), upper.size()));
-      }
-      for (size_t i = 0; i < indices.size(); ++i) {
-        if (indices[i] < 0 || indices[i] >= state_dim) {
-          return absl::InvalidArgumentError(absl::StrFormat(
-              "known_reward.region.indices[%d] is %d, the state has %d values", i, indices[i],
-              state_dim));
-        }
-        if (!(lower[i] <= upper[i])) {
-          return absl::InvalidArgumentError(absl::StrFormat(
-              "known_reward.region bound %d: lower %g is not <= upper %g", i, lower[i], upper[i]));
-        }
-      }
-      return absl::OkStatus();
+      return ValidateBox("known_reward.region", indices, lower, upper, state_dim);
   }
   return absl::InvalidArgumentError("known_reward.kind is not a known kind");
 }
@@ -85,11 +101,7 @@ void KnownReward::Evaluate(const float* next_states, int state_stride, const flo
   } else {
     for (int r = 0; r < rows; ++r) {
       const float* s = next_states + static_cast<std::ptrdiff_t>(r) * state_stride;
-      bool inside = true;
-      for (size_t i = 0; i < indices.size() && inside; ++i) {
-        inside = s[indices[i]] >= lower[i] && s[indices[i]] <= upper[i];
-      }
-      out[r] = inside ? 1.0f : 0.0f;
+      out[r] = InBox(s, indices, lower, upper) ? 1.0f : 0.0f;
     }
   }
 }
@@ -103,34 +115,14 @@ absl::Status KnownTermination::Validate(int state_dim) const {
     }
     return absl::OkStatus();
   }
-  if (lower.size() != indices.size() || upper.size() != indices.size()) {
-    return absl::InvalidArgumentError(absl::StrFormat(
-        "known_termination has %d indices, %d lower and %d upper bounds; they must match",
-        indices.size(), lower.size(), upper.size()));
-  }
-  for (size_t i = 0; i < indices.size(); ++i) {
-    if (indices[i] < 0 || indices[i] >= state_dim) {
-      return absl::InvalidArgumentError(absl::StrFormat(
-          "known_termination.indices[%d] is %d, the state has %d values", i, indices[i],
-          state_dim));
-    }
-    if (std::isnan(lower[i]) || std::isnan(upper[i]) || !(lower[i] <= upper[i])) {
-      return absl::InvalidArgumentError(absl::StrFormat(
-          "known_termination bound %d: lower %g is not <= upper %g", i, lower[i], upper[i]));
-    }
-  }
-  return absl::OkStatus();
+  return ValidateBox("known_termination", indices, lower, upper, state_dim);
 }
 
 void KnownTermination::Evaluate(const float* next_states, int state_stride, int rows,
                                 float* out) const {
   for (int r = 0; r < rows; ++r) {
     const float* s = next_states + static_cast<std::ptrdiff_t>(r) * state_stride;
-    bool inside = true;
-    for (size_t i = 0; i < indices.size() && inside; ++i) {
-      inside = s[indices[i]] >= lower[i] && s[indices[i]] <= upper[i];
-    }
-    out[r] = inside != outside ? 1.0f : 0.0f;
+    out[r] = InBox(s, indices, lower, upper) != outside ? 1.0f : 0.0f;
   }
 }
 
