@@ -65,11 +65,11 @@ def test_head_learns_terminals_and_plans_report_survival(forayd):
     rid, auth = robot.robot.robot_id, [("authorization", f"Bearer {robot.token}")]
     batch = cliff(1, 40)
     terminals = sum(tr.terminal for tr in batch)
-    assert terminals >= 5
-    for i in range(0, len(batch), 500):
-        c.append(robot, batch[i:i + 500])
+    assert terminals >= 5 and len(batch) <= 10000
+    c.append(robot, batch)  # one batch: the first round trains on all of it
     c.wait_model(rid, 1)
     report = progress(c, rid).last_training
+    assert report.transitions == len(batch)
     assert report.terminal_transitions == terminals
     # w_pos = non-terminal / terminal training rows, capped at 10 (trainer.h)
     assert 1.0 < report.terminal_weight <= 10.0
