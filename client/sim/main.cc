@@ -337,14 +337,8 @@ int main(int argc, char** argv) {
   for (const std::string& kind : kinds) {
     absl::StatusOr<std::unique_ptr<Scenario>> scenario = foray::sim::MakeScenario(kind, 0);
     if (!scenario.ok()) {
-      if (scenario.status().code() == absl::StatusCode::kInvalidArgument &&
-          kind != "bench") {
-        std::fprintf(stderr, "foray-sim: unknown robot \"%s\" in --robots; use gantry, arm or bench\n",
-                     kind.c_str());
-      } else {
-        std::fprintf(stderr, "foray-sim: robot \"%s\": %s\n", kind.c_str(),
-                     std::string(scenario.status().message()).c_str());
-      }
+      // An unknown name, or a model file that is missing or malformed (named with its line).
+      std::fprintf(stderr, "foray-sim: --robots: %s\n", std::string(scenario.status().message()).c_str());
       return 2;
     }
   }

@@ -136,7 +136,7 @@ absl::StatusOr<std::unique_ptr<Scenario>> MakeScenario(const std::string& kind, 
   if (kind == "arm") return std::unique_ptr<Scenario>(new ArmScenario(seed));
   if (kind == "bench") return MakeBenchScenario(seed);
   return absl::InvalidArgumentError(absl::StrFormat(
-      "unknown scenario \"%s\"; the simulated robots are \"gantry\", \"arm\" and \"bench\"", kind));
+      "unknown robot \"%s\"; the simulated robots are \"gantry\", \"arm\" and \"bench\"", kind));
 }
 
 }  // namespace foray::sim
