@@ -47,6 +47,11 @@ class BenchScenario final : public Scenario {
   std::vector<ActionRange> action_ranges() const override { return {{-1.2, 1.2, 0.3}}; }
   double control_period_s() const override { return kPhysicsSteps * world_->model()->opt.timestep; }
   int episode_steps() const override { return 160; }
+  // 1.5 s: from the start, the carriage needs about 0.9 s to carry the puck to the end of its
+  // travel at the 0.8 m/s that parks it (0.13 s to accelerate at 6 m/s^2, then 0.6 m), and the
+  // puck slides about 0.4 s more before it rests (0.8 / (0.2 * 9.81)); 15 steps (0.75 s) would
+  // not see a strike's outcome from the start of an episode.
+  int plan_horizon() const override { return 30; }
   std::vector<int> coverage_indices() const override { return {2, 3}; }
   std::vector<double> coverage_lower() const override { return {0.0, -1.5}; }
   std::vector<double> coverage_upper() const override { return {1.0, 1.5}; }

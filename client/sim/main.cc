@@ -5,6 +5,7 @@
 
 #include <atomic>
 #include <chrono>
+#include <cmath>
 #include <csignal>
 #include <cstdio>
 #include <filesystem>
@@ -40,6 +41,9 @@ ABSL_FLAG(int, steps, 0, "Control steps per episode; 0: the scenario's own lengt
 ABSL_FLAG(uint64_t, seed, 1, "Seed of the robots' initial states.");
 ABSL_FLAG(bool, realtime, false, "Pace each step to the control period instead of running flat out.");
 ABSL_FLAG(double, deadline_ms, 100.0, "Planning time per step, milliseconds.");
+ABSL_FLAG(int, horizon, 0,
+          "Planning horizon in control steps (at registration); 0: the scenario's own (15 for "
+          "gantry and arm, 30 for bench, whose strike takes 1.5 s to play out).");
 ABSL_FLAG(double, reward_weight, 1.0, "Objective weight of the expected reward (at registration).");
 ABSL_FLAG(double, information_weight, 1.0, "Objective weight of the information gain (at registration).");
 ABSL_FLAG(double, terminal_value, 0.0,
@@ -47,7 +51,8 @@ ABSL_FLAG(double, terminal_value, 0.0,
           "costs five steps at the goal\" (at registration).");
 ABSL_FLAG(std::string, strategy, "explore",
           "explore: plans with reward + information gain; reward: information weight 0; "
-          "noise: no model, the nominal controller's action plus Gaussian noise.");
+          "noise: no model, the nominal controller's action plus Gaussian noise; random: no "
+          "model, random actions over the whole range, correlated over about 10 control periods.");
 ABSL_FLAG(double, noise_fraction, 0.3,
           "noise strategy: standard deviation of the noise, fraction of each action's half range.");
 ABSL_FLAG(bool, train_each_episode, false,
@@ -106,7 +111,8 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
   spec.mutable_training()->set_min_transitions(absl::GetFlag(FLAGS_min_transitions));
   spec.mutable_training()->set_every_n_transitions(absl::GetFlag(FLAGS_train_every));
   spec.mutable_training()->set_max_epochs(20);
-  spec.mutable_planner()->set_horizon(15);
+  spec.mutable_planner()->set_horizon(absl::GetFlag(FLAGS_horizon) > 0 ? absl::GetFlag(FLAGS_horizon)
+                                                                       : s.plan_horizon());
   spec.mutable_planner()->set_population(150);
   spec.mutable_planner()->set_elites(15);
   spec.mutable_planner()->set_iterations(3);
@@ -120,6 +126,33 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
   for (double v : s.coverage_lower()) spec.add_coverage_lower(v);
   for (double v : s.coverage_upper()) spec.add_coverage_upper(v);
   return spec;
+}
+
+// The action of a baseline without a model. noise: the nominal controller's action plus
+// Gaussian noise of --noise_fraction of each half range. random: an Ornstein-Uhlenbeck process
+// around the range's centre (correlation time 10 control periods, stationary standard
+// deviation half the half range), so the robot wanders over its whole range as random pushing
+// would. Both are then clipped to the rate limit and the bounds.
+std::vector<double> BaselineAction(const Scenario& sim, const std::vector<foray::sim::ActionRange>& ranges,
+                                   const Eigen::VectorXd& state, const std::vector<double>& previous,
+                                   bool random, std::mt19937_64& rng) {
+  static const double kCorrelation = std::exp(-1.0 / 10.0);
+  std::normal_distribution<double> normal(0.0, 1.0);
+  const Eigen::VectorXd nominal = sim.Nominal(state);
+  std::vector<double> action(ranges.size());
+  for (size_t j = 0; j < ranges.size(); ++j) {
+    const foray::sim::ActionRange& r = ranges[j];
+    const double half = 0.5 * (r.max - r.min), centre = 0.5 * (r.max + r.min);
+    if (random) {
+      action[j] = centre + kCorrelation * (previous[j] - centre) +
+                  std::sqrt(1.0 - kCorrelation * kCorrelation) * 0.5 * half * normal(rng);
+    } else {
+      action[j] = nominal[j] + absl::GetFlag(FLAGS_noise_fraction) * half * normal(rng);
+    }
+    if (r.max_step > 0) action[j] = std::clamp(action[j], previous[j] - r.max_step, previous[j] + r.max_step);
+    action[j] = std::clamp(action[j], r.min, r.max);
+  }
+  return action;
 }
 
 // Runs the episodes of one robot; returns false on an error that stops it.
@@ -170,7 +203,8 @@ bool RunRobot(const std::string& kind, int index) {
   }
   const int action_dim = static_cast<int>(sim.action_dims().size());
   const std::vector<foray::sim::ActionRange> ranges = sim.action_ranges();
-  const bool noise_baseline = absl::GetFlag(FLAGS_strategy) == "noise";
+  const bool random_baseline = absl::GetFlag(FLAGS_strategy) == "random";
+  const bool no_model = random_baseline || absl::GetFlag(FLAGS_strategy) == "noise";
   const bool realtime = absl::GetFlag(FLAGS_realtime);
   const absl::Duration compute = absl::Milliseconds(absl::GetFlag(FLAGS_deadline_ms));
   // In real time the watchdog holds the last action once a control period is over; flat out,
@@ -178,7 +212,6 @@ bool RunRobot(const std::string& kind, int index) {
   const absl::Duration wait =
       realtime ? std::max(compute, absl::Seconds(sim.control_period_s())) : compute + absl::Seconds(10);
   std::mt19937_64 rng(absl::GetFlag(FLAGS_seed) * 7919 + index);
-  std::normal_distribution<double> normal(0.0, 1.0);
   auto models = v1::Models::NewStub(
       grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials()));
 
@@ -189,7 +222,7 @@ bool RunRobot(const std::string& kind, int index) {
   for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
     // An evaluation episode once every evaluate_every exploration episodes, from the first
     // model on (the server refuses to evaluate before it).
-    const bool evaluation = !noise_baseline && evaluate_every > 0 &&
+    const bool evaluation = !no_model && evaluate_every > 0 &&
                             explored_since_evaluation >= evaluate_every && known_model > 0;
     if (evaluation) {
       if (++evaluated_in_round == round_size) explored_since_evaluation = evaluated_in_round = 0;
@@ -210,17 +243,8 @@ bool RunRobot(const std::string& kind, int index) {
       const auto step_start = std::chrono::steady_clock::now();
       const std::vector<double> now(state.data(), state.data() + state.size());
       std::vector<double> action;
-      if (noise_baseline) {
-        const Eigen::VectorXd nominal = sim.Nominal(state);
-        action.assign(nominal.data(), nominal.data() + nominal.size());
-        for (int j = 0; j < action_dim; ++j) {
-          const auto& r = ranges[j];
-          action[j] += absl::GetFlag(FLAGS_noise_fraction) * 0.5 * (r.max - r.min) * normal(rng);
-          if (r.max_step > 0) {
-            action[j] = std::clamp(action[j], previous[j] - r.max_step, previous[j] + r.max_step);
-          }
-          action[j] = std::clamp(action[j], r.min, r.max);
-        }
+      if (no_model) {
+        action = BaselineAction(sim, ranges, state, previous, random_baseline, rng);
       } else {
         foray::client::Decision decision = session.Act(now, previous, compute, wait, choices);
         ++plans;
@@ -279,7 +303,7 @@ bool RunRobot(const std::string& kind, int index) {
           first_reward, model_version, plans, plans > 0 ? plan_ms / plans : 0.0,
           plans > 0 ? gain / plans : 0.0, episode_s);
     }
-    if (absl::GetFlag(FLAGS_train_each_episode) && !noise_baseline && !g_stop) {
+    if (absl::GetFlag(FLAGS_train_each_episode) && !no_model && !g_stop) {
       if (absl::Status s = session.Flush(absl::Minutes(1)); !s.ok()) {
         Say(absl::StrFormat("%s: %s", name, s.message()));
         return false;
@@ -329,8 +353,8 @@ int main(int argc, char** argv) {
     return 2;
   }
   const std::string strategy = absl::GetFlag(FLAGS_strategy);
-  if (strategy != "explore" && strategy != "reward" && strategy != "noise") {
-    std::fprintf(stderr, "foray-sim: --strategy is \"%s\"; use explore, reward or noise\n",
+  if (strategy != "explore" && strategy != "reward" && strategy != "noise" && strategy != "random") {
+    std::fprintf(stderr, "foray-sim: --strategy is \"%s\"; use explore, reward, noise or random\n",
                  strategy.c_str());
     return 2;
   }

@@ -36,6 +36,9 @@ class Scenario {
   virtual std::vector<ActionRange> action_ranges() const = 0;
   virtual double control_period_s() const = 0;
   virtual int episode_steps() const = 0;
+  // Planning horizon in control steps: long enough to see an action's consequence on the
+  // reward (the robot's own time scale, derived from its physics, not from planner results).
+  virtual int plan_horizon() const { return 15; }
   // Two state indices for the coverage map, and their ranges.
   virtual std::vector<int> coverage_indices() const = 0;
   virtual std::vector<double> coverage_lower() const = 0;
@@ -45,7 +48,7 @@ class Scenario {
   // The state one control period later; the action is clipped to the ranges first.
   virtual Eigen::VectorXd Step(const Eigen::VectorXd& action) = 0;
   // The action of a fixed nominal controller (a PD hold of the start pose), the base of the
-  // no-model baseline that adds Gaussian noise to it.
+  // "noise" baseline that adds Gaussian noise to it.
   virtual Eigen::VectorXd Nominal(const Eigen::VectorXd& state) const = 0;
   // 1 inside the hidden zone, else 0.
   virtual double Reward(const Eigen::VectorXd& state) const = 0;

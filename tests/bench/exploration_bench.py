@@ -1,16 +1,19 @@
 """Does exploration pay? The simulated robots learn from scratch through a real forayd on
-loopback, under three strategies, for several seeds each:
+loopback, under four strategies, for several seeds each:
 
   explore  Foray's planner, expected reward + information gain (weights 1 and 1);
   reward   the same planner with the information weight 0;
   noise    no model: a fixed nominal controller (a PD hold of the start pose) plus Gaussian
-           noise of 0.3 of each action's half range, clipped to the bounds and rate limits.
+           noise of 0.3 of each action's half range, clipped to the bounds and rate limits;
+  random   no model: random actions over each action's whole range, correlated over about 10
+           control periods (an Ornstein-Uhlenbeck process), clipped to the bounds and rate
+           limits: random pushing, where noise around a hold mostly stays put.
 
 Every run starts with an empty data directory and a fresh forayd; the model is retrained on
 everything sent after each episode (foray-sim --train_each_episode). After every K exploration
 episodes (--evaluate_every), E evaluation episodes (--evaluations) plan reward only on the
 current model: their success rate (return > 0) over the run is the learning curve of the task.
-The noise baseline has no model, so it has no evaluation. Per run it records the exploration
+The baselines have no model, so they have no evaluation. Per run it records the exploration
 episode of first reward (the hidden goal discovered), the state-space coverage after each
 exploration episode (fraction of occupied cells of a 20x20 grid over the robot's two coverage
 dimensions, read from the SQLite store), returns, objects lost (episodes that ended in a
@@ -107,7 +110,7 @@ def run_one(args, scenario, strategy, seed):
                  f"--min_transitions={args.steps or 100}", "--train_every=1000000",
                  f"--deadline_ms={args.deadline_ms}", f"--report={report_path}",
                  f"--evaluate_every={args.evaluate_every}", f"--evaluation_episodes={args.evaluations}",
-                 f"--terminal_value={args.terminal_value}",
+                 f"--terminal_value={args.terminal_value}", f"--horizon={args.horizon}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
             if result.returncode != 0:
@@ -160,7 +163,7 @@ def run_one(args, scenario, strategy, seed):
 def summarise(runs):
     rows = []
     for scenario in sorted({r["scenario"] for r in runs}):
-        for strategy in ("explore", "reward", "noise"):
+        for strategy in ("explore", "reward", "noise", "random"):
             mine = [r for r in runs if r["scenario"] == scenario and r["strategy"] == strategy]
             if not mine:
                 continue
@@ -198,7 +201,7 @@ def plot(runs, out_dir):
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    colours = {"explore": "tab:green", "reward": "tab:blue", "noise": "tab:grey"}
+    colours = {"explore": "tab:green", "reward": "tab:blue", "noise": "tab:grey", "random": "tab:orange"}
     for scenario in sorted({r["scenario"] for r in runs}):
         fig, axes = plt.subplots(1, 3, figsize=(16, 4))
         for strategy, colour in colours.items():
@@ -248,11 +251,12 @@ def main(argv=None):
     parser.add_argument("--build", default="build")
     parser.add_argument("--out", default="build/bench/exploration")
     parser.add_argument("--scenarios", default="gantry,arm")
-    parser.add_argument("--strategies", default="explore,reward,noise")
+    parser.add_argument("--strategies", default="explore,reward,noise,random")
     parser.add_argument("--seeds", type=int, default=10)
     parser.add_argument("--episodes", type=int, default=15)
     parser.add_argument("--steps", type=int, default=0, help="steps per episode; 0: the scenario's own")
     parser.add_argument("--deadline_ms", type=float, default=100)
+    parser.add_argument("--horizon", type=int, default=0, help="plan horizon in steps; 0: the scenario's own")
     parser.add_argument("--evaluate_every", type=int, default=3, help="K: exploration episodes between rounds")
     parser.add_argument("--evaluations", type=int, default=2, help="E: evaluation episodes per round")
     parser.add_argument("--terminal_value", type=float, default=0.0,
