@@ -249,8 +249,8 @@ int main(int argc, char** argv) {
     return 2;
   }
   foray::api::WriteWatch write_watch(absl::Seconds(stalled_write_s));
-  foray::api::SessionService session(&directory, &gate, &helpers, {plans_per_s, transitions_per_s},
-                                     &write_watch);
+  foray::sched::PlanScheduler scheduler(&gate, &helpers, plans_per_s);
+  foray::api::SessionService session(&directory, &scheduler, transitions_per_s, &write_watch);
   foray::api::ModelsService models(&directory);
   foray::api::MonitoringService monitoring(&directory, absl::Milliseconds(200), &write_watch);
   grpc::ServerBuilder builder;

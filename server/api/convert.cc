@@ -493,7 +493,8 @@ absl::StatusOr<model::Ensemble> EnsembleFromWire(const v1::EnsembleModel& w) {
 }
 
 absl::StatusOr<robot::PlanInput> PlanInputFromWire(const v1::PlanRequest& request,
-                                                   const robot::RobotConfig& config) {
+                                                   const robot::RobotConfig& config,
+                                                   absl::Time arrived) {
   robot::PlanInput in;
   if (request.state_size() != config.state_dim) {
     return absl::InvalidArgumentError(absl::StrFormat(
@@ -544,7 +545,7 @@ absl::StatusOr<robot::PlanInput> PlanInputFromWire(const v1::PlanRequest& reques
     return absl::InvalidArgumentError(absl::StrFormat(
         "request.deadline_ms is %g, must be in 1..60000", request.deadline_ms()));
   }
-  in.budget = absl::Milliseconds(deadline_ms);
+  in.deadline = arrived + absl::Milliseconds(deadline_ms);
   in.planner = config.planner;
   in.objective = config.objective;
   if (request.has_planner()) {

@@ -49,9 +49,11 @@ absl::StatusOr<std::vector<store::TransitionRecord>> TransitionsFromWire(
 // Checks a plan request against the robot (sizes, finite values, the previous action within
 // the bounds, deadline_ms in 1..60000, per-request planner and objective settings) and converts
 // it: float state and previous action, the first step's rate limit shrunk by the float rounding
-// of the previous action, the robot's settings with the request's overrides.
+// of the previous action, the deadline deadline_ms after `arrived`, the robot's settings with
+// the request's overrides.
 absl::StatusOr<robot::PlanInput> PlanInputFromWire(const v1::PlanRequest& request,
-                                                   const robot::RobotConfig& config);
+                                                   const robot::RobotConfig& config,
+                                                   absl::Time arrived);
 
 // The wire form of an ensemble (format 1) and back. EnsembleFromWire checks the format, the
 // architecture against the layers' shapes, byte lengths and finite values, naming the field.

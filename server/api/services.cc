@@ -10,6 +10,7 @@
 #include "core/explore/information_gain.h"
 #include "core/model/serialize.h"
 #include "server/api/convert.h"
+#include "server/api/session_stream.h"
 
 namespace foray::api {
 namespace {
@@ -77,28 +78,10 @@ absl::Status SessionService::AdmitTransitions(const RobotEntry& entry, size_t co
 
 absl::Status SessionService::Plan(const RobotEntry& entry, const v1::PlanRequest& request,
                                   v1::Plan* response) {
-  const absl::Time arrived = absl::Now();
   const robot::RobotConfig config = entry.runtime->config();
-  absl::StatusOr<robot::PlanInput> input = PlanInputFromWire(request, config);
+  absl::StatusOr<robot::PlanInput> input = PlanInputFromWire(request, config, absl::Now());
   if (!input.ok()) return input.status();
-  if (!plan_limit_.Take(entry.robot_id, 1.0, arrived)) {
-    return absl::ResourceExhaustedError(absl::StrFormat(
-        "robot \"%s\" asks for more than %g plans per second (forayd --robot_plans_per_s)",
-        entry.spec.name(), plan_limit_.rate()));
-  }
-  // The deadline counts from arrival: time spent waiting for a core is the plan's own.
-  entry.runtime->AddPlansWaiting(1);
-  absl::StatusOr<sched::PlanGate::Ticket> ticket = gate_->Enter(arrived + input->budget);
-  entry.runtime->AddPlansWaiting(-1);
-  if (!ticket.ok()) return ticket.status();
-  input->budget -= absl::Now() - arrived;
-  // Idle cores join this plan: its rollouts are split over them.
-  const int threads = 1 + ticket->Borrow(gate_->slots() - 1);
-  if (threads > 1) {
-    input->context.tasks = threads;
-    input->context.parallel = helpers_->ParallelFor();
-  }
-  absl::StatusOr<robot::PlanOutcome> outcome = entry.runtime->Plan(*std::move(input));
+  absl::StatusOr<robot::PlanOutcome> outcome = scheduler_->Plan(*entry.runtime, *std::move(input));
   if (!outcome.ok()) return outcome.status();
   PlanToWire(*outcome, config, request.request_id(), response);
   return absl::OkStatus();
@@ -169,66 +152,6 @@ grpc::Status SessionService::PlanActions(grpc::ServerContext* context,
   return ToGrpc(Plan(**entry, request->request(), response));
 }
 
-namespace {
-
-// Messages read from a session stream by its reader thread, taken by the handler in groups. It
-// holds at most `capacity` messages: when the handler falls behind (slow disk, or a client that
-// does not read its acks, so replies cannot be written), the reader stops reading and gRPC's
-// flow control holds the client back, instead of memory growing without bound.
-class Inbox {
- public:
-  // `what` names the session in the server's log.
-  Inbox(size_t capacity, std::string what) : capacity_(capacity), what_(std::move(what)) {}
-  // Waits while the inbox is full; false when it was closed meanwhile. A wait of more than
-  // kSlowWait is logged once per wait: the session has stopped reading its client.
-  bool Push(v1::SessionClientMessage message) {
-    static constexpr absl::Duration kSlowWait = absl::Seconds(10);
-    absl::MutexLock lock(&mu_);
-    auto room = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return closed_ || queue_.size() < capacity_; };
-    if (!mu_.AwaitWithTimeout(absl::Condition(&room), kSlowWait)) {
-      std::fprintf(stderr,
-                   "forayd: the %s stopped reading its client for %s: %zu messages wait for the "
-                   "store or for the client to read its replies (flow control holds the client)\n",
-                   what_.c_str(), absl::FormatDuration(kSlowWait).c_str(), queue_.size());
-      mu_.Await(absl::Condition(&room));
-    }
-    if (closed_) return false;
-    queue_.push_back(std::move(message));
-    return true;
-  }
-  void Close() {
-    absl::MutexLock lock(&mu_);
-    closed_ = true;
-  }
-  // Everything queued, waiting until there is something; empty when closed and drained.
-  std::vector<v1::SessionClientMessage> TakeAll() {
-    absl::MutexLock lock(&mu_);
-    auto ready = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return closed_ || !queue_.empty(); };
-    mu_.Await(absl::Condition(&ready));
-    std::vector<v1::SessionClientMessage> out;
-    out.swap(queue_);
-    return out;
-  }
-
- private:
-  const size_t capacity_;
-  const std::string what_;
-  absl::Mutex mu_;
-  std::vector<v1::SessionClientMessage> queue_ ABSL_GUARDED_BY(mu_);
-  bool closed_ ABSL_GUARDED_BY(mu_) = false;
-};
-
-v1::SessionServerMessage ErrorReply(const absl::Status& s, uint64_t seq, uint64_t request_id) {
-  v1::SessionServerMessage out;
-  out.mutable_error()->set_code(static_cast<int>(s.code()));
-  out.mutable_error()->set_message(std::string(s.message()));
-  out.mutable_error()->set_seq(seq);
-  out.mutable_error()->set_request_id(request_id);
-  return out;
-}
-
-}  // namespace
-
 grpc::Status SessionService::Connect(
     grpc::ServerContext* context,
     grpc::ServerReaderWriter<v1::SessionServerMessage, v1::SessionClientMessage>* stream) {
@@ -263,78 +186,25 @@ grpc::Status SessionService::Connect(
     }
     inbox.Close();
   });
-  const robot::RobotConfig config = entry->runtime->config();
-  uint64_t last_seq_seen = 0;
+  SessionCommitter committer(
+      entry->runtime->config(),
+      {.store = [&](const std::vector<store::TransitionRecord>& group, v1::Ack* ack) {
+         absl::Status s = AdmitTransitions(*entry, group.size());
+         return s.ok() ? AppendRecords(*entry, group, ack) : s;
+       },
+       .plan = [&](const v1::PlanRequest& request, v1::Plan* plan) { return Plan(*entry, request, plan); }},
+      what);
   bool writing = true;
-  // Once a group could not be stored (storage error, rate limit), nothing later in this session
-  // may be: an ack reports the highest stored seq, and a later group's ack would tell the client
-  // that the failed group is durable. The session ends; the client reconnects and resends.
-  bool stopped = false;
+  auto client_reads = [&] { return writing && !context->IsCancelled(); };
   for (;;) {
     std::vector<v1::SessionClientMessage> messages = inbox.TakeAll();
     if (messages.empty()) break;
-    if (stopped) continue;  // drains what the reader still hands over until the call ends
-    std::vector<v1::SessionServerMessage> replies;
-    std::vector<store::TransitionRecord> group;  // validated, in arrival order
-    auto flush = [&] {
-      if (group.empty()) return;
-      v1::SessionServerMessage ack;
-      absl::Status s = AdmitTransitions(*entry, group.size());
-      if (s.ok()) s = AppendRecords(*entry, group, ack.mutable_ack());
-      if (!s.ok()) {
-        ack = ErrorReply(s, group.front().seq, 0);
-        stopped = true;
-        std::fprintf(stderr,
-                     "forayd: ended the %s: a group of %zu transitions from seq %llu was not "
-                     "stored (%s); the client reconnects and resends it\n",
-                     what.c_str(), group.size(), static_cast<unsigned long long>(group.front().seq),
-                     std::string(s.message()).c_str());
-      }
-      replies.push_back(std::move(ack));
-      group.clear();
-    };
-    for (v1::SessionClientMessage& in : messages) {
-      if (stopped) break;
-      if (in.has_transition()) {
-        const uint64_t seq = in.transition().seq();
-        google::protobuf::RepeatedPtrField<v1::Transition> one;
-        one.Add()->Swap(in.mutable_transition());
-        absl::StatusOr<std::vector<store::TransitionRecord>> record = TransitionsFromWire(one, config);
-        absl::Status valid = record.status();
-        if (valid.ok() && seq <= last_seq_seen) {
-          valid = absl::InvalidArgumentError(absl::StrFormat(
-              "transition seq %d comes after seq %d in this session; seq must increase", seq,
-              last_seq_seen));
-        }
-        if (!valid.ok()) {
-          flush();  // keep the replies in the order of the messages
-          replies.push_back(ErrorReply(valid, seq, 0));
-          continue;
-        }
-        last_seq_seen = seq;
-        group.push_back(std::move(record->front()));
-      } else if (in.has_plan_request()) {
-        flush();
-        // Nobody would read the plan of a client that has gone; its transitions are still stored.
-        if (!writing || context->IsCancelled()) continue;
-        v1::SessionServerMessage out;
-        if (absl::Status s = Plan(*entry, in.plan_request(), out.mutable_plan()); !s.ok()) {
-          out = ErrorReply(s, 0, in.plan_request().request_id());
-        }
-        replies.push_back(std::move(out));
-      } else {
-        flush();
-        replies.push_back(ErrorReply(
-            absl::InvalidArgumentError("expected a transition or a plan request after the hello"),
-            0, 0));
-      }
-    }
-    flush();
-    for (const v1::SessionServerMessage& reply : replies) {
+    if (committer.stopped()) continue;  // drains what the reader still hands over until the call ends
+    for (const v1::SessionServerMessage& reply : committer.Answer(std::move(messages), client_reads)) {
       if (writing && !watched.Write(stream, reply)) writing = false;
     }
     // The client is gone, or the session stopped storing: end the reader's Read too.
-    if (!writing || stopped) context->TryCancel();
+    if (!writing || committer.stopped()) context->TryCancel();
   }
   reader.join();
   return grpc::Status::OK;

@@ -10,8 +10,7 @@
 #include "foray/v1/session.grpc.pb.h"
 #include "server/api/directory.h"
 #include "server/api/write_watch.h"
-#include "server/sched/helper_pool.h"
-#include "server/sched/plan_gate.h"
+#include "server/sched/plan_scheduler.h"
 #include "server/sched/rate_limit.h"
 
 namespace foray::api {
@@ -36,26 +35,17 @@ class RegistryService final : public v1::RobotRegistry::Service {
   RobotDirectory* const directory_;
 };
 
-// Per-robot limits of the session service (0: none): plans per second and transitions per
-// second, each with two seconds' worth of burst.
-struct SessionLimits {
-  double plans_per_s = 0.0;
-  double transitions_per_s = 0.0;
-};
-
 class SessionService final : public v1::RobotSession::Service {
  public:
-  // `gate` admits plans to the cores; `helpers` runs the rollouts a plan splits over the idle
-  // cores the gate lends it; `write_watch` (may be null) ends sessions whose client stops
-  // reading. All must outlive the service.
-  SessionService(RobotDirectory* directory, sched::PlanGate* gate, sched::HelperPool* helpers,
-                 SessionLimits limits = {}, WriteWatch* write_watch = nullptr)
+  // `scheduler` runs plans on the cores; `write_watch` (may be null) ends sessions whose client
+  // stops reading. All must outlive the service. transitions_per_s: each robot's limit (0:
+  // none), with two seconds' worth of burst.
+  SessionService(RobotDirectory* directory, sched::PlanScheduler* scheduler,
+                 double transitions_per_s = 0.0, WriteWatch* write_watch = nullptr)
       : directory_(directory),
-        gate_(gate),
-        helpers_(helpers),
+        scheduler_(scheduler),
         write_watch_(write_watch),
-        plan_limit_(limits.plans_per_s, 2.0 * std::max(1.0, limits.plans_per_s)),
-        transition_limit_(limits.transitions_per_s, 2.0 * std::max(1.0, limits.transitions_per_s)) {}
+        transition_limit_(transitions_per_s, 2.0 * std::max(1.0, transitions_per_s)) {}
 
   grpc::Status Connect(
       grpc::ServerContext* context,
@@ -72,10 +62,8 @@ class SessionService final : public v1::RobotSession::Service {
   absl::Status AdmitTransitions(const RobotEntry& entry, size_t count);
 
   RobotDirectory* const directory_;
-  sched::PlanGate* const gate_;
-  sched::HelperPool* const helpers_;
+  sched::PlanScheduler* const scheduler_;
   WriteWatch* const write_watch_;
-  sched::RateLimit plan_limit_;
   sched::RateLimit transition_limit_;
 };
 

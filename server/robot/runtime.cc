@@ -573,7 +573,7 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     outcome.from_prior = true;
   } else {
     plan::PlanContext context = input.context;
-    context.deadline = start + input.budget;
+    context.deadline = input.deadline;
     const bool reuse = warm.has_value() && warm->mean.rows() == input.planner.horizon;
     absl::StatusOr<plan::PlanResult> result =
         plan::Plan(*model->rollout, input.objective, input.planner, limits, input.state,
@@ -592,7 +592,7 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     } else {
       latencies_ms_[plans_ % 1000] = outcome.compute_ms;
     }
-    if (outcome.compute_ms > absl::ToDoubleMilliseconds(input.budget)) ++deadline_misses_;
+    if (absl::Now() > input.deadline) ++deadline_misses_;
     if (!outcome.from_prior && outcome.result.information_gain.size() > 0) {
       plan_gain_sum_ += outcome.result.information_gain[0];
       ++plan_gain_count_;

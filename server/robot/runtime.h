@@ -55,10 +55,11 @@ struct PlanInput {
   Eigen::VectorXf state;            // (state_dim), robot units
   Eigen::VectorXf previous_action;  // (action_dim) or empty
   Eigen::VectorXf max_step;         // (action_dim) rate limits for this plan; empty: the config's
-  absl::Duration budget = absl::Milliseconds(100);
+  // When the plan is due, counted from the request's arrival: waiting for a core is part of it.
+  absl::Time deadline = absl::InfiniteFuture();
   plan::PlannerOptions planner;     // the robot's settings with the request's overrides
   explore::ObjectiveOptions objective;
-  plan::PlanContext context;        // threads; deadline and clock are set by Plan
+  plan::PlanContext context;        // threads; the deadline is set by Plan from `deadline`
   // An evaluation plan: reward only (the information weight is set to 0 here), and the
   // episode is recorded as an evaluation episode: `episode` when not 0, else the episode of
   // the next transition recorded. Needs a published model.
@@ -166,7 +167,7 @@ class RobotRuntime {
   void RequestTraining();
   // Whether the training policy (or a request) asks for a round now.
   bool WantsTraining() const;
-  // Counts this robot's plans waiting for a core (the services call it around the plan gate).
+  // Counts this robot's plans waiting for a core (the plan scheduler calls it around the gate).
   void AddPlansWaiting(int delta) { plans_waiting_.fetch_add(delta, std::memory_order_relaxed); }
   // Trains one round on the caller's thread (warm start from the published model), publishes
   // the new version and writes its checkpoint. `between_epochs` (may be empty) runs after every

@@ -64,7 +64,7 @@ extern "C" int LLVMFuzzerTestOneInput(const uint8_t* data, size_t size) {
     }
     case 1: {
       v1::PlanRequest request;
-      if (request.ParseFromArray(body, body_size)) (void)foray::api::PlanInputFromWire(request, *config);
+      if (request.ParseFromArray(body, body_size)) (void)foray::api::PlanInputFromWire(request, *config, absl::Now());
       break;
     }
     case 2: {

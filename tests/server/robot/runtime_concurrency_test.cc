@@ -1,10 +1,11 @@
 // The server's concurrency without the network: what the rpc threads and the trainer thread do
 // to one robot at the same time, in one process. A writer appends transitions (and resends some,
-// as a reconnecting client does), two planners plan through the plan gate with the helper pool's
-// threads, the background trainer retrains and publishes new versions, and a monitor reads the
-// status, the progress and the settings while they change. Built for the ThreadSanitizer run of
-// tests/run_sanitizers.sh, where every unordered access is a failure; in the plain build it
-// checks the end state: every transition stored once, plans valid throughout, versions rising.
+// as a reconnecting client does), two planners plan through the plan scheduler forayd uses (its
+// gate, helper pool and rate limit), the background trainer retrains and publishes new versions,
+// and a monitor reads the status, the progress and the settings while they change. Built for the
+// ThreadSanitizer run of tests/run_sanitizers.sh, where every unordered access is a failure; in
+// the plain build it checks the end state: every transition stored once, plans valid throughout,
+// versions rising.
 
 #include <atomic>
 #include <cmath>
@@ -22,6 +23,7 @@
 #include "server/robot/runtime.h"
 #include "server/sched/helper_pool.h"
 #include "server/sched/plan_gate.h"
+#include "server/sched/plan_scheduler.h"
 #include "server/sched/training_loop.h"
 #include "server/store/store.h"
 
@@ -92,6 +94,7 @@ TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
   ASSERT_TRUE(runtime->Load().ok());
   sched::PlanGate gate(/*slots=*/2, /*max_waiting=*/8);
   sched::HelperPool helpers(gate.slots() - 1);  // as forayd has it
+  sched::PlanScheduler scheduler(&gate, &helpers, /*plans_per_s=*/0);
   sched::TrainingLoop trainer([runtime] { return std::vector<std::shared_ptr<robot::RobotRuntime>>{runtime}; },
                               &gate, &helpers, absl::Milliseconds(5), absl::Milliseconds(50));
   trainer.Start();
@@ -117,23 +120,13 @@ TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
   auto planner = [&](int seed) {
     int n = 0;
     while (writing || n < 5) {
-      absl::StatusOr<sched::PlanGate::Ticket> ticket = gate.Enter(absl::Now() + absl::Seconds(5));
-      if (!ticket.ok()) {
-        ++plan_errors;
-        continue;
-      }
       robot::PlanInput input;
       input.state = Eigen::Vector2f(0.1f * static_cast<float>(seed), -0.2f);
-      input.budget = absl::Seconds(5);
+      input.deadline = absl::Now() + absl::Seconds(5);
       input.planner = runtime->config().planner;
       input.planner.seed = static_cast<uint64_t>(seed * 1000 + n);
       input.objective = runtime->config().objective;
-      const int threads = 1 + ticket->Borrow(gate.slots() - 1);
-      if (threads > 1) {
-        input.context.tasks = threads;
-        input.context.parallel = helpers.ParallelFor();
-      }
-      absl::StatusOr<robot::PlanOutcome> outcome = runtime->Plan(std::move(input));
+      absl::StatusOr<robot::PlanOutcome> outcome = scheduler.Plan(*runtime, std::move(input));
       if (!outcome.ok()) {
         ++plan_errors;
         ADD_FAILURE() << outcome.status();
