@@ -132,6 +132,10 @@ absl::Status ObjectiveOptions::Validate(int state_dim, int action_dim) const {
         "reward_weight %g and information_weight %g must be finite", reward_weight,
         information_weight));
   }
+  if (!(observation_noise >= 0.0 && observation_noise <= 1.0)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("observation_noise is %g, must be in [0, 1]", observation_noise));
+  }
   if (!(discount > 0.0 && discount <= 1.0)) {
     return absl::InvalidArgumentError(
         absl::StrFormat("discount is %g, must be in (0, 1]", discount));

@@ -68,6 +68,12 @@ struct ObjectiveOptions {
   double information_weight = 1.0;  // w_i, per nat
   double discount = 1.0;            // gamma, in (0, 1]
   Estimator estimator = Estimator::kPairwiseKl;
+  // The information gain is that of measured observations: each state dimension is measured
+  // with noise of this standard deviation, as a fraction of the dimension's per-step change in
+  // the data (its standard deviation), in [0, 1]; 0: exact observations. 0.05 by default: a
+  // sensor that resolves a twentieth of a typical step's change (a Foray default, not a
+  // published value; set it from the robot's sensors when known).
+  double observation_noise = 0.05;
   int monte_carlo_samples = 1000;   // per row, kMonteCarlo only
   KnownReward known_reward;
   // Paid once, in reward units, when a rollout ends the episode: V_term above, weighted by the

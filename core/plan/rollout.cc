@@ -195,7 +195,10 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
     }
     if (want_information) {
       start = Clock::now();
-      explore::Information(objective.estimator, pred.StateDeltaSet(), ws->information.data(),
+      explore::Information(objective.estimator,
+                           pred.ObservationSet(static_cast<float>(objective.observation_noise),
+                                               &ws->observed_log_var),
+                           ws->information.data(),
                            objective.monte_carlo_samples, seed + 7919u * (t + 1));
       // Spread row n to its particles; from the top down, so no source is overwritten first.
       if (shared) {

@@ -20,6 +20,8 @@
 #ifndef FORAY_CORE_PLAN_ROLLOUT_H_
 #define FORAY_CORE_PLAN_ROLLOUT_H_
 
+#include <algorithm>
+#include <cmath>
 #include <cstdint>
 #include <functional>
 #include <memory>
@@ -67,6 +69,22 @@ struct MemberPredictions {
     set.log_var = log_var.data();
     set.member_stride = static_cast<std::ptrdiff_t>(rows) * output_dim;
     set.row_stride = output_dim;
+    return set;
+  }
+  // The same Gaussians as seen by a sensor with noise of standard deviation `noise` in model
+  // units (a fraction of each dimension's per-step change in the data): every variance floored
+  // at noise^2, so that no predicted observation is more precise than it can be measured (a
+  // floor of max(var, noise^2), within a factor 2 of the sum var + noise^2). Without it, where
+  // the data are deterministic (a part at rest, a joint at its stop) the predicted variances
+  // collapse and sub-resolution disagreements between members look like nats of information.
+  // noise 0: StateDeltaSet(). The floored log-variances go to `scratch`, which the set borrows.
+  explore::GaussianSet<float> ObservationSet(float noise, std::vector<float>* scratch) const {
+    explore::GaussianSet<float> set = StateDeltaSet();
+    if (noise <= 0.0f) return set;
+    const float floor = 2.0f * std::log(noise);
+    scratch->resize(log_var.size());
+    for (size_t i = 0; i < log_var.size(); ++i) (*scratch)[i] = std::max(log_var[i], floor);
+    set.log_var = scratch->data();
     return set;
   }
 };
@@ -158,6 +176,7 @@ struct RolloutStats {
 struct RolloutWorkspace {
   MemberPredictions predictions;
   std::vector<float> states, actions, first_actions, reward, information, noise, survival, ends;
+  std::vector<float> observed_log_var;  // the members' log-variances with the sensor floor
   std::vector<float> alive_before;  // the trace's particles' survival before the step
   std::vector<int> member_of;
 };

@@ -135,6 +135,7 @@ absl::Status ApplyObjectiveSettings(const v1::ObjectiveSettings& s, int state_di
     o->known_reward = std::move(known);
   }
   if (s.has_terminal_value()) o->terminal_value = s.terminal_value();
+  if (s.has_observation_noise()) o->observation_noise = s.observation_noise();
   if (s.has_known_termination()) {
     const v1::KnownTermination& k = s.known_termination();
     explore::KnownTermination known;

@@ -119,7 +119,7 @@ def _vector(name, values, expected=None):
     return v
 
 
-_OBJECTIVE_KEYS = ("reward_weight", "information_weight", "discount", "terminal_value")
+_OBJECTIVE_KEYS = ("reward_weight", "information_weight", "discount", "terminal_value", "observation_noise")
 
 
 def _objective(objective):

@@ -210,6 +210,44 @@ TEST(RolloutTest, InformationTermIsThePairwiseKlBoundAtEveryStep) {
   for (int t = 0; t < 4; ++t) EXPECT_NEAR(trace.information_gain[t], per_step, 1e-6);
 }
 
+TEST(RolloutTest, ObservationNoiseFloorsTheVariancesOfTheInformationTerm) {
+  // Members that differ by 0.002 model units with a collapsed variance of 1e-8 (a deterministic
+  // region): with exact observations KL = 1/2 * 0.002^2 / 1e-8 = 200 both ways, so the pairwise
+  // bound is at its ceiling ln 2. Measured with noise 0.05 (variance floor 0.0025) the same
+  // members give KL = 1/2 * 0.002^2 / 0.0025 = 8e-4 both ways and I_KL = ln 2 - ln(1 + e^-8e-4)
+  // (Kolchinsky & Tracey 2017, KL between Gaussians of equal variance).
+  const OffsetMembersModel model(1, 1, {-0.001f, 0.001f}, 1e-8f);
+  explore::ObjectiveOptions objective;
+  objective.reward_weight = 0.0;
+  objective.information_weight = 1.0;
+  objective.estimator = explore::Estimator::kPairwiseKl;
+  RolloutOptions options;
+  options.horizon = 2;
+  options.particles = 4;
+  const float initial = 0.0f;
+  const std::vector<float> sequence(options.horizon, 0.0f);
+  RolloutWorkspace ws;
+  for (double noise : {0.0, 0.05}) {
+    objective.observation_noise = noise;
+    const double kl = noise == 0.0 ? 200.0 : 0.5 * 0.002 * 0.002 / (noise * noise);
+    const double per_step = std::log(2.0) - std::log(1.0 + std::exp(-kl));
+    float score = 0.0f;
+    RolloutTrace trace;
+    ScoreSequences(model, objective, options, &initial, sequence.data(), 1, 3, &score, &ws, &trace);
+    for (int t = 0; t < options.horizon; ++t) {
+      EXPECT_NEAR(trace.information_gain[t], per_step, 1e-4 * per_step + 1e-7) << "noise " << noise;
+    }
+  }
+  // A variance above the floor is left as it is: the unit-variance members of the test above.
+  const OffsetMembersModel wide(1, 1, {-1.0f, 1.0f}, 1.0f);
+  objective.observation_noise = 0.5;
+  float score = 0.0f;
+  ScoreSequences(wide, objective, options, &initial, sequence.data(), 1, 3, &score, &ws);
+  EXPECT_NEAR(score, 2 * (std::log(2.0) - std::log(1.0 + std::exp(-2.0))), 1e-5);
+  objective.observation_noise = 1.5;
+  EXPECT_FALSE(objective.Validate(1, 1).ok());
+}
+
 TEST(RolloutTest, EnsembleModelGivesPredictInRobotUnits) {
   // The rollout model's (mean * scale + offset, exp(log_var) * scale^2) must equal
   // Ensemble::Predict, the reference forward in robot units, for every member.
