@@ -3,12 +3,9 @@
 #include <algorithm>
 #include <cmath>
 #include <cstdio>
-#include <limits>
 #include <thread>
 
 #include "absl/strings/str_format.h"
-#include "core/explore/information_gain.h"
-#include "core/model/serialize.h"
 #include "server/api/convert.h"
 #include "server/api/session_stream.h"
 
@@ -224,8 +221,6 @@ absl::StatusOr<std::shared_ptr<const robot::PublishedModel>> PublishedOf(const R
 
 absl::Status PredictRows(const RobotEntry& entry, const v1::PredictRequest& request,
                          v1::PredictResponse* response) {
-  auto model = PublishedOf(entry);
-  if (!model.ok()) return model.status();
   const robot::RobotConfig config = entry.runtime->config();
   const int n = request.rows_size(), sd = config.state_dim, ad = config.action_dim;
   if (n < 1 || n > 10000) {
@@ -248,35 +243,30 @@ absl::Status PredictRows(const RobotEntry& entry, const v1::PredictRequest& requ
   for (float v : actions) {
     if (!std::isfinite(v)) return absl::InvalidArgumentError("rows: an action value is not finite");
   }
-  explore::ObjectiveOptions estimator;
+  explore::ObjectiveOptions objective = config.objective;  // the robot's observation noise
   v1::ObjectiveSettings settings;
   settings.set_estimator(request.estimator());
-  if (absl::Status s = ApplyObjectiveSettings(settings, sd, ad, &estimator); !s.ok()) return s;
+  if (absl::Status s = ApplyObjectiveSettings(settings, sd, ad, &objective); !s.ok()) return s;
 
-  plan::MemberPredictions pred;
-  (*model)->rollout->Evaluate(states.data(), actions.data(), n, &pred);
-  const int nb = pred.members, od = pred.output_dim;
-  std::vector<float> gain(n);
-  explore::Information(estimator.estimator, pred.StateDeltaSet(), gain.data(),
-                       estimator.monte_carlo_samples, 1);
+  absl::StatusOr<robot::RobotRuntime::Prediction> p = entry.runtime->Predict(states, actions, n, objective);
+  if (!p.ok()) return p.status();
   for (int r = 0; r < n; ++r) {
     v1::PredictResponse::Row* row = response->add_rows();
-    for (int b = 0; b < nb; ++b) {
-      const size_t at = (static_cast<size_t>(b) * n + r) * od;
+    for (int b = 0; b < p->members; ++b) {
+      const size_t at = static_cast<size_t>(b) * n + r;
       v1::GaussianPrediction* next = row->add_next_state();
       for (int k = 0; k < sd; ++k) {
-        next->add_mean(states[r * sd + k] + pred.mean[at + k] * pred.scale[k] + pred.offset[k]);
-        next->add_variance(std::exp(pred.log_var[at + k]) * pred.scale[k] * pred.scale[k]);
+        next->add_mean(p->next_state_mean[at * sd + k]);
+        next->add_variance(p->next_state_variance[at * sd + k]);
       }
       v1::GaussianPrediction* reward = row->add_reward();
-      reward->add_mean(pred.mean[at + sd] * pred.scale[sd] + pred.offset[sd]);
-      reward->add_variance(std::exp(pred.log_var[at + sd]) * pred.scale[sd] * pred.scale[sd]);
-      const double logit = pred.term_logit.empty() ? -INFINITY : pred.term_logit[static_cast<size_t>(b) * n + r];
-      row->add_termination_probability(1.0 / (1.0 + std::exp(-logit)));
+      reward->add_mean(p->reward_mean[at]);
+      reward->add_variance(p->reward_variance[at]);
+      row->add_termination_probability(p->termination_probability[at]);
     }
-    row->set_information_gain(gain[r]);
+    row->set_information_gain(p->information_gain[r]);
   }
-  response->set_model_version((*model)->version);
+  response->set_model_version(p->model_version);
   return absl::OkStatus();
 }
 
@@ -294,27 +284,20 @@ grpc::Status ModelsService::TrainNow(grpc::ServerContext* context,
                                      v1::TrainNowResponse* response) {
   auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
   if (!entry.ok()) return ToGrpc(entry.status());
-  const robot::RobotRuntime& runtime = *(*entry)->runtime;
-  if (runtime.Status().transitions < 2) {
-    return ToGrpc(absl::FailedPreconditionError(absl::StrFormat(
-        "robot \"%s\" has %d transitions; training needs at least 2", (*entry)->spec.name(),
-        runtime.Status().transitions)));
-  }
-  const uint64_t before = runtime.Status().model_version;
-  (*entry)->runtime->RequestTraining();
-  if (!request->wait()) return grpc::Status::OK;
-  // The trainer picks the request up; wait for the version it publishes (bounded by the call's
-  // deadline and by ten minutes).
-  const absl::Time give_up = absl::Now() + absl::Minutes(10);
-  while (runtime.Status().model_version == before) {
-    if (context->IsCancelled() || absl::Now() > give_up) {
-      return grpc::Status(grpc::StatusCode::DEADLINE_EXCEEDED,
-                          "the training round did not finish in time; it goes on in the background");
+  robot::RobotRuntime& runtime = *(*entry)->runtime;
+  if (!request->wait()) {
+    if (runtime.Status().transitions < 2) {
+      return ToGrpc(absl::FailedPreconditionError(absl::StrFormat(
+          "robot \"%s\" has %d transitions; training needs at least 2", (*entry)->spec.name(),
+          runtime.Status().transitions)));
     }
-    absl::SleepFor(absl::Milliseconds(20));
+    runtime.RequestTraining();
+    return grpc::Status::OK;
   }
-  auto model = runtime.published();
-  *response->mutable_report() = robot::ReportToWire(*model);
+  // Bounded by the call's deadline (cancellation) and by ten minutes.
+  auto model = runtime.TrainAndWait(absl::Now() + absl::Minutes(10), [context] { return context->IsCancelled(); });
+  if (!model.ok()) return ToGrpc(model.status());
+  *response->mutable_report() = robot::ReportToWire(**model);
   return grpc::Status::OK;
 }
 
@@ -343,14 +326,7 @@ grpc::Status ModelsService::RestoreCheckpoint(grpc::ServerContext* context,
   if (request->model_version() == 0) {
     return ToGrpc(absl::InvalidArgumentError("model_version is 0; name the version to restore"));
   }
-  auto checkpoint = directory_->store()->GetCheckpoint(request->robot_id(), request->model_version());
-  if (!checkpoint.ok()) return ToGrpc(checkpoint.status());
-  auto ensemble = model::DeserializeEnsemble(checkpoint->model);
-  if (!ensemble.ok()) return ToGrpc(ensemble.status());
-  v1::TrainingReport old_report;
-  old_report.ParseFromString(checkpoint->report);
-  auto published = (*entry)->runtime->PublishModel(*std::move(ensemble),
-                                                   robot::ReportFromWire(old_report, nullptr));
+  auto published = (*entry)->runtime->RestoreCheckpoint(request->model_version());
   if (!published.ok()) return ToGrpc(published.status());
   *response = robot::ReportToWire(**published);
   return grpc::Status::OK;
@@ -367,11 +343,9 @@ grpc::Status ModelsService::ExportModel(grpc::ServerContext* context,
     *response = EnsembleToWire((*model)->ensemble);
     return grpc::Status::OK;
   }
-  auto checkpoint = directory_->store()->GetCheckpoint(request->robot_id(), request->model_version());
+  auto checkpoint = (*entry)->runtime->ReadCheckpoint(request->model_version());
   if (!checkpoint.ok()) return ToGrpc(checkpoint.status());
-  auto ensemble = model::DeserializeEnsemble(checkpoint->model);
-  if (!ensemble.ok()) return ToGrpc(ensemble.status());
-  *response = EnsembleToWire(*ensemble);
+  *response = EnsembleToWire(checkpoint->ensemble);
   return grpc::Status::OK;
 }
 

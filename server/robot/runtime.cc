@@ -2,9 +2,11 @@
 
 #include <algorithm>
 #include <chrono>
+#include <cmath>
 #include <utility>
 
 #include "absl/strings/str_format.h"
+#include "core/explore/information_gain.h"
 #include "core/model/serialize.h"
 #include "foray/v1/monitoring.pb.h"
 #include "foray/v1/types.pb.h"
@@ -266,6 +268,20 @@ void RobotRuntime::AddToDataset(const store::TransitionRecord& t) {
   ++new_since_training_;
 }
 
+namespace {
+
+absl::StatusOr<RobotRuntime::Checkpoint> Decode(const store::CheckpointRecord& record) {
+  absl::StatusOr<model::Ensemble> ensemble = model::DeserializeEnsemble(record.model);
+  if (!ensemble.ok()) return ensemble.status();
+  RobotRuntime::Checkpoint out{.ensemble = *std::move(ensemble)};
+  v1::TrainingReport wire;
+  wire.ParseFromString(record.report);  // an unreadable report leaves zeros
+  out.report = ReportFromWire(wire, &out.training_seconds);
+  return out;
+}
+
+}  // namespace
+
 absl::Status RobotRuntime::Load() {
   absl::StatusOr<std::vector<store::TransitionRecord>> transitions =
       store_->LoadTransitions(robot_id_);
@@ -280,18 +296,15 @@ absl::Status RobotRuntime::Load() {
   for (const store::CheckpointRecord& entry : *listed) {
     absl::StatusOr<store::CheckpointRecord> checkpoint = store_->GetCheckpoint(robot_id_, entry.model_version);
     if (!checkpoint.ok()) return checkpoint.status();
-    absl::StatusOr<model::Ensemble> ensemble = model::DeserializeEnsemble(checkpoint->model);
-    if (!ensemble.ok()) {
+    absl::StatusOr<Checkpoint> decoded = Decode(*checkpoint);
+    if (!decoded.ok()) {
       problems.push_back(absl::StrFormat("checkpoint of model version %d is unreadable (%s); skipped",
-                                               checkpoint->model_version, ensemble.status().message()));
+                                         checkpoint->model_version, decoded.status().message()));
       continue;
     }
-    double seconds = 0.0;
-    v1::TrainingReport wire;
-    wire.ParseFromString(checkpoint->report);  // an unreadable report leaves zeros
-    model::TrainingReport report = ReportFromWire(wire, &seconds);
-    published = MakePublished(checkpoint->model_version, *std::move(ensemble), std::move(report),
-                              seconds, checkpoint->created_at);
+    published = MakePublished(checkpoint->model_version, std::move(decoded->ensemble),
+                              std::move(decoded->report), decoded->training_seconds,
+                              checkpoint->created_at);
     break;
   }
   // Which stored episodes were evaluation episodes: their progress records say so.
@@ -599,6 +612,101 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     }
   }
   return outcome;
+}
+
+
+absl::StatusOr<RobotRuntime::Checkpoint> RobotRuntime::ReadCheckpoint(uint64_t version) const {
+  absl::StatusOr<store::CheckpointRecord> record = store_->GetCheckpoint(robot_id_, version);
+  if (!record.ok()) return record.status();
+  return Decode(*record);
+}
+
+absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::RestoreCheckpoint(uint64_t version) {
+  absl::StatusOr<Checkpoint> checkpoint = ReadCheckpoint(version);
+  if (!checkpoint.ok()) return checkpoint.status();
+  return PublishModel(std::move(checkpoint->ensemble), std::move(checkpoint->report));
+}
+
+absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainAndWait(
+    absl::Time give_up, const std::function<bool()>& cancelled) {
+  uint64_t before;
+  {
+    absl::MutexLock lock(&mu_);
+    if (rewards_.size() < 2) {
+      return absl::FailedPreconditionError(absl::StrFormat(
+          "robot \"%s\" has %d transitions; training needs at least 2", config_.name, rewards_.size()));
+    }
+    before = published_ ? published_->version : 0;
+    training_requested_ = true;
+  }
+  absl::MutexLock lock(&mu_);
+  auto newer = [this, before]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) {
+    return published_ != nullptr && published_->version != before;
+  };
+  while (!mu_.AwaitWithTimeout(absl::Condition(&newer), absl::Milliseconds(20))) {
+    if ((cancelled && cancelled()) || absl::Now() > give_up) {
+      return absl::DeadlineExceededError(
+          "the training round did not finish in time; it goes on in the background");
+    }
+  }
+  return published_;
+}
+
+absl::StatusOr<RobotRuntime::Prediction> RobotRuntime::Predict(const std::vector<float>& states,
+                                                               const std::vector<float>& actions, int rows,
+                                                               const explore::ObjectiveOptions& objective) const {
+  std::shared_ptr<const PublishedModel> model;
+  RobotConfig config;
+  {
+    absl::MutexLock lock(&mu_);
+    model = published_;
+    config = config_;
+  }
+  if (model == nullptr) {
+    return absl::FailedPreconditionError(absl::StrFormat(
+        "robot \"%s\" has no model yet; it trains once it has %d transitions", config.name,
+        config.policy.min_transitions));
+  }
+  const int sd = config.state_dim;
+  if (rows < 1 || states.size() != static_cast<size_t>(rows) * sd ||
+      actions.size() != static_cast<size_t>(rows) * config.action_dim) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "Predict: %d rows need %d state and %d action values, got %d and %d", rows, rows * sd,
+        rows * config.action_dim, states.size(), actions.size()));
+  }
+  plan::MemberPredictions pred;
+  model->rollout->Evaluate(states.data(), actions.data(), rows, &pred);
+  Prediction out;
+  out.model_version = model->version;
+  out.members = pred.members;
+  out.rows = rows;
+  const int nb = pred.members, od = pred.output_dim;
+  out.next_state_mean.resize(static_cast<size_t>(nb) * rows * sd);
+  out.next_state_variance.resize(out.next_state_mean.size());
+  out.reward_mean.resize(static_cast<size_t>(nb) * rows);
+  out.reward_variance.resize(out.reward_mean.size());
+  out.termination_probability.assign(out.reward_mean.size(), 0.0);
+  for (int b = 0; b < nb; ++b) {
+    for (int r = 0; r < rows; ++r) {
+      // As a rollout steps: state + mean * scale + offset, variances by scale^2.
+      const size_t at = (static_cast<size_t>(b) * rows + r) * od, row = static_cast<size_t>(b) * rows + r;
+      for (int k = 0; k < sd; ++k) {
+        out.next_state_mean[row * sd + k] =
+            states[static_cast<size_t>(r) * sd + k] + pred.mean[at + k] * pred.scale[k] + pred.offset[k];
+        out.next_state_variance[row * sd + k] =
+            std::exp(static_cast<double>(pred.log_var[at + k])) * pred.scale[k] * pred.scale[k];
+      }
+      out.reward_mean[row] = pred.mean[at + sd] * pred.scale[sd] + pred.offset[sd];
+      out.reward_variance[row] = std::exp(static_cast<double>(pred.log_var[at + sd])) * pred.scale[sd] * pred.scale[sd];
+      if (!pred.term_logit.empty()) out.termination_probability[row] = 1.0 / (1.0 + std::exp(-pred.term_logit[row]));
+    }
+  }
+  out.information_gain.resize(rows);
+  std::vector<float> observed_log_var;
+  explore::Information(objective.estimator,
+                       pred.ObservationSet(static_cast<float>(objective.observation_noise), &observed_log_var),
+                       out.information_gain.data(), objective.monte_carlo_samples, 1);
+  return out;
 }
 
 }  // namespace foray::robot

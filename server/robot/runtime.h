@@ -177,6 +177,38 @@ class RobotRuntime {
   absl::StatusOr<std::shared_ptr<const PublishedModel>> TrainOnce(
       const std::function<void()>& between_epochs = {}, const ParallelFor& parallel = {});
 
+  // Stored checkpoint `version`, decoded: its ensemble, its training report and how long its
+  // training took (seconds). NotFound when there is none; the decoder's error when it does not
+  // decode.
+  struct Checkpoint {
+    model::Ensemble ensemble;
+    model::TrainingReport report;
+    double training_seconds = 0.0;
+  };
+  absl::StatusOr<Checkpoint> ReadCheckpoint(uint64_t version) const;
+  // Publishes stored checkpoint `version` again, as the next version.
+  absl::StatusOr<std::shared_ptr<const PublishedModel>> RestoreCheckpoint(uint64_t version);
+  // Asks for a training round (RequestTraining) and waits for the version it publishes: the
+  // first version newer than the one published now. DeadlineExceeded at `give_up` or once
+  // `cancelled` (asked every 20 ms; may be empty) says so; the round goes on in the background.
+  absl::StatusOr<std::shared_ptr<const PublishedModel>> TrainAndWait(
+      absl::Time give_up, const std::function<bool()>& cancelled = {});
+
+  // Every member's one-step prediction at `rows` (state, action) pairs in robot units, and the
+  // information gain of each row's predicted observation under `objective`'s estimator and
+  // observation noise: the same arithmetic as the planner's rollouts. states: rows x state_dim,
+  // actions: rows x action_dim, row-major, finite. FailedPrecondition without a model.
+  struct Prediction {
+    uint64_t model_version = 0;
+    int members = 0, rows = 0;
+    // (members, rows, state_dim) and (members, rows), member-major.
+    std::vector<double> next_state_mean, next_state_variance, reward_mean, reward_variance;
+    std::vector<double> termination_probability;  // (members, rows); 0 without a head
+    std::vector<float> information_gain;          // (rows), nats
+  };
+  absl::StatusOr<Prediction> Predict(const std::vector<float>& states, const std::vector<float>& actions,
+                                     int rows, const explore::ObjectiveOptions& objective) const;
+
   // Publishes a model from elsewhere (a restored checkpoint or an import) as the next version
   // and writes its checkpoint. InvalidArgument when its dimensions are not the robot's.
   absl::StatusOr<std::shared_ptr<const PublishedModel>> PublishModel(model::Ensemble ensemble,
