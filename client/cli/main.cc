@@ -9,6 +9,7 @@
 #include <csignal>
 #include <cstdio>
 #include <fstream>
+#include <memory>
 #include <map>
 #include <string>
 #include <vector>
@@ -58,59 +59,6 @@ namespace v1 = foray::v1;
 constexpr char kCaution[] =
     "Foray is not a safety system: keep emergency stops and safety-rated limits in place and\n"
     "follow your lab's risk assessment and local rules before any plan reaches a robot.";
-
-struct Command {
-  const char* name;
-  const char* args;
-  const char* help;
-};
-
-constexpr Command kCommands[] = {
-    {"register", "SPEC.json [--token_out=FILE] [--robot_id=ID]",
-     "Registers a robot from a spec file (admin token) and prints its id and token; with\n"
-     "--token_out the id and token go to FILE (mode 0600) instead of the screen. The spec format\n"
-     "is in DEVELOPERS.md, \"Robot spec files\". --robot_id registers under a given id (moving a\n"
-     "robot to another shard keeps its id, so the router keeps finding it)."},
-    {"robots", "", "Lists every robot with its progress (admin token)."},
-    {"status", "ROBOT_ID", "One robot's progress: data, model, last training, last episode, plans."},
-    {"watch", "[ROBOT_ID] [--seconds=N] [--plain]",
-     "Live learning progress until Ctrl-C: a refreshing table with progress bars (all robots with\n"
-     "the admin token), or one line per event with --plain."},
-    {"plan", "ROBOT_ID --state=V,V,... [--previous_action=V,...] [--deadline_ms=100]",
-     "Asks for a plan from a state (the robot's own token) and prints the action sequence with\n"
-     "the predicted states. Printing a plan moves nothing; whoever sends it to a robot owns that step."},
-    {"export", "ROBOT_ID --out=FILE.csv|FILE.npy [--from_seq=N] [--to_seq=N]",
-     "Writes the robot's transitions to CSV (a header row of column names) or to a .npy file of\n"
-     "float64, one row per transition, columns as in the CSV: seq, episode, step, state.*, action.*,\n"
-     "next_state.*, reward, terminal. numpy.load reads it."},
-    {"import", "ROBOT_ID FILE.csv",
-     "Sends the transitions of a CSV file in the export format (the robot's own token). Rows whose\n"
-     "seq the server already holds are counted as duplicates and not stored twice."},
-    {"train", "ROBOT_ID [--no_wait]", "Trains the robot's ensemble now and prints the training report."},
-    {"checkpoints", "ROBOT_ID", "Lists the robot's model checkpoints, newest first."},
-    {"archive", "ROBOT_ID",
-     "Stops serving a robot (admin token): its token stops working, its data stays on disk.\n"
-     "Used after moving a robot to another server."},
-    {"restore", "ROBOT_ID VERSION",
-     "Publishes the checkpoint of model VERSION again, as a new model version. The next plans\n"
-     "come from it."},
-};
-
-std::string Usage() {
-  std::string text = "foray: talk to the Foray planning server.\n\n";
-  for (const Command& c : kCommands) absl::StrAppend(&text, absl::StrFormat("  foray %-12s %s\n", c.name, c.args));
-  absl::StrAppend(&text, "\nforay COMMAND --help tells more. Common flags: --address=HOST:PORT, --token or "
-                         "--token_file.\nExit codes: 0 done, 1 the server refused or failed, 2 bad usage "
-                         "or input file.\n\n", kCaution);
-  return text;
-}
-
-const Command* FindCommand(const std::string& name) {
-  for (const Command& c : kCommands) {
-    if (name == c.name) return &c;
-  }
-  return nullptr;
-}
 
 // The bearer token, and the robot's id in the foray-robot header (for a router in front of
 // several servers) when the call is about one robot.
@@ -524,6 +472,84 @@ std::string ReadToken() {
   return words.empty() ? "" : std::string(absl::StripAsciiWhitespace(words.back()));
 }
 
+// The server's stubs and the caller's token, for the commands.
+struct Server {
+  std::unique_ptr<v1::Monitoring::Stub> monitoring;
+  std::unique_ptr<v1::RobotRegistry::Stub> registry;
+  std::unique_ptr<v1::RobotSession::Stub> session;
+  std::unique_ptr<v1::Models::Stub> models;
+  std::string token;
+};
+using Operands = std::vector<std::string>;
+
+// A command of the CLI, declared once: its name, operands, help and what it runs. `run` gets
+// between min_operands and max_operands operands (checked before).
+struct Command {
+  const char* name;
+  const char* args;
+  const char* help;
+  size_t min_operands, max_operands;
+  int (*run)(Server& server, const Operands& operands);
+};
+
+constexpr Command kCommands[] = {
+    {"register", "SPEC.json [--token_out=FILE] [--robot_id=ID]",
+     "Registers a robot from a spec file (admin token) and prints its id and token; with\n"
+     "--token_out the id and token go to FILE (mode 0600) instead of the screen. The spec format\n"
+     "is in DEVELOPERS.md, \"Robot spec files\". --robot_id registers under a given id (moving a\n"
+     "robot to another shard keeps its id, so the router keeps finding it).",
+     1, 1, [](Server& s, const Operands& o) { return Register(*s.registry, s.token, o[0]); }},
+    {"robots", "", "Lists every robot with its progress (admin token).",
+     0, 0, [](Server& s, const Operands&) { return Robots(*s.monitoring, s.token); }},
+    {"status", "ROBOT_ID", "One robot's progress: data, model, last training, last episode, plans.",
+     1, 1, [](Server& s, const Operands& o) { return Status(*s.monitoring, s.token, o[0]); }},
+    {"watch", "[ROBOT_ID] [--seconds=N] [--plain]",
+     "Live learning progress until Ctrl-C: a refreshing table with progress bars (all robots with\n"
+     "the admin token), or one line per event with --plain.",
+     0, 1, [](Server& s, const Operands& o) { return Watch(*s.monitoring, s.token, o.empty() ? "" : o[0]); }},
+    {"plan", "ROBOT_ID --state=V,V,... [--previous_action=V,...] [--deadline_ms=100]",
+     "Asks for a plan from a state (the robot's own token) and prints the action sequence with\n"
+     "the predicted states. Printing a plan moves nothing; whoever sends it to a robot owns that step.",
+     1, 1, [](Server& s, const Operands& o) { return PlanFrom(*s.session, s.token, o[0]); }},
+    {"export", "ROBOT_ID --out=FILE.csv|FILE.npy [--from_seq=N] [--to_seq=N]",
+     "Writes the robot's transitions to CSV (a header row of column names) or to a .npy file of\n"
+     "float64, one row per transition, columns as in the CSV: seq, episode, step, state.*, action.*,\n"
+     "next_state.*, reward, terminal. numpy.load reads it.",
+     1, 1, [](Server& s, const Operands& o) { return Export(*s.registry, *s.monitoring, s.token, o[0]); }},
+    {"import", "ROBOT_ID FILE.csv",
+     "Sends the transitions of a CSV file in the export format (the robot's own token). Rows whose\n"
+     "seq the server already holds are counted as duplicates and not stored twice.",
+     2, 2, [](Server& s, const Operands& o) { return Import(*s.registry, *s.session, s.token, o[0], o[1]); }},
+    {"train", "ROBOT_ID [--no_wait]", "Trains the robot's ensemble now and prints the training report.",
+     1, 1, [](Server& s, const Operands& o) { return Train(*s.models, s.token, o[0]); }},
+    {"checkpoints", "ROBOT_ID", "Lists the robot's model checkpoints, newest first.",
+     1, 1, [](Server& s, const Operands& o) { return Checkpoints(*s.models, s.token, o[0]); }},
+    {"archive", "ROBOT_ID",
+     "Stops serving a robot (admin token): its token stops working, its data stays on disk.\n"
+     "Used after moving a robot to another server.",
+     1, 1, [](Server& s, const Operands& o) { return Archive(*s.registry, s.token, o[0]); }},
+    {"restore", "ROBOT_ID VERSION",
+     "Publishes the checkpoint of model VERSION again, as a new model version. The next plans\n"
+     "come from it.",
+     2, 2, [](Server& s, const Operands& o) { return Restore(*s.models, s.token, o[0], o[1]); }},
+};
+
+std::string Usage() {
+  std::string text = "foray: talk to the Foray planning server.\n\n";
+  for (const Command& c : kCommands) absl::StrAppend(&text, absl::StrFormat("  foray %-12s %s\n", c.name, c.args));
+  absl::StrAppend(&text, "\nforay COMMAND --help tells more. Common flags: --address=HOST:PORT, --token or "
+                         "--token_file.\nExit codes: 0 done, 1 the server refused or failed, 2 bad usage "
+                         "or input file.\n\n", kCaution);
+  return text;
+}
+
+const Command* FindCommand(const std::string& name) {
+  for (const Command& c : kCommands) {
+    if (name == c.name) return &c;
+  }
+  return nullptr;
+}
+
 }  // namespace
 
 int main(int argc, char** argv) {
@@ -559,24 +585,14 @@ int main(int argc, char** argv) {
     std::fprintf(stderr, "foray: no token: pass --token, or --token_file with the token on its first line\n");
     return 2;
   }
-  auto channel = grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials());
-  auto monitoring = v1::Monitoring::NewStub(channel);
-  auto registry = v1::RobotRegistry::NewStub(channel);
-  auto session = v1::RobotSession::NewStub(channel);
-  auto models = v1::Models::NewStub(channel);
-  const size_t n = args.size() - 2;  // operands after the command
-  const std::string a1 = n >= 1 ? args[2] : "", a2 = n >= 2 ? args[3] : "";
-  if (command == "register" && n == 1) return Register(*registry, token, a1);
-  if (command == "robots" && n == 0) return Robots(*monitoring, token);
-  if (command == "status" && n == 1) return Status(*monitoring, token, a1);
-  if (command == "watch" && n <= 1) return Watch(*monitoring, token, a1);
-  if (command == "plan" && n == 1) return PlanFrom(*session, token, a1);
-  if (command == "export" && n == 1) return Export(*registry, *monitoring, token, a1);
-  if (command == "import" && n == 2) return Import(*registry, *session, token, a1, a2);
-  if (command == "train" && n == 1) return Train(*models, token, a1);
-  if (command == "checkpoints" && n == 1) return Checkpoints(*models, token, a1);
-  if (command == "archive" && n == 1) return Archive(*registry, token, a1);
-  if (command == "restore" && n == 2) return Restore(*models, token, a1, a2);
+  const Operands operands(args.begin() + 2, args.end());
+  if (operands.size() >= known->min_operands && operands.size() <= known->max_operands) {
+    auto channel = grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials());
+    Server server{v1::Monitoring::NewStub(channel), v1::RobotRegistry::NewStub(channel),
+                  v1::RobotSession::NewStub(channel), v1::Models::NewStub(channel), token};
+    return known->run(server, operands);
+  }
+  const size_t n = operands.size();
   std::fprintf(stderr, "foray: %s takes %s, not %zu operands\n\nforay %s %s\n%s\n", command.c_str(),
                *known->args ? known->args : "no operands", n, known->name, known->args, known->help);
   return 2;

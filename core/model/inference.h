@@ -14,6 +14,7 @@
 #include <vector>
 
 #include "core/model/ensemble.h"
+#include "core/util/matrix.h"
 #include "core/util/parallel.h"
 
 namespace foray::model {
@@ -21,7 +22,7 @@ namespace foray::model {
 class InferenceEnsemble {
  public:
   // Row-major float matrix storage used by the fast path.
-  using RowMatrix = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+  using RowMatrix = RowMatrixXf;
 
   // Per-thread scratch buffers; grow on first use and are reused afterwards.
   struct Workspace {

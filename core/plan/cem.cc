@@ -206,13 +206,14 @@ absl::StatusOr<RowMatrixXf> SampleFromPrior(const CemOptions& options,
 }
 
 absl::StatusOr<CemResult> MaximizeCem(const CemOptions& options, const SequenceLimits& limits,
-                                      const ScoreFunction& score, const CemWarmStart* warm_start,
-                                      int shift, absl::Time deadline,
-                                      const std::function<absl::Time()>& now_fn) {
+                                      const ScoreFunction& score, const CemRun& run) {
+  const CemWarmStart* const warm_start = run.warm_start;
+  const int shift = run.shift;
+  const absl::Time deadline = run.deadline;
   if (absl::Status s = options.Validate(); !s.ok()) return s;
   if (absl::Status s = limits.Validate(); !s.ok()) return s;
   if (shift < 0) return absl::InvalidArgumentError(absl::StrFormat("shift is %d, must be >= 0", shift));
-  auto now = [&] { return now_fn ? now_fn() : absl::Now(); };
+  auto now = [&] { return run.now ? run.now() : absl::Now(); };
 
   const int h = options.horizon, d = limits.dim(), width = h * d, k_elites = options.elites;
   const Eigen::RowVectorXf min_std =

@@ -10,7 +10,8 @@
 //
 //   CemOptions options;                       // iCEM defaults
 //   SequenceLimits limits = SequenceLimits::Box(lower, upper);
-//   auto result = MaximizeCem(options, limits, score, /*warm_start=*/nullptr, deadline);
+//   auto result = MaximizeCem(options, limits, score, {.deadline = absl::Now() + absl::Milliseconds(50)});
+//   auto next = MaximizeCem(options, limits, score, {.warm_start = &result->next, .shift = 1});
 #ifndef FORAY_CORE_PLAN_CEM_H_
 #define FORAY_CORE_PLAN_CEM_H_
 
@@ -22,10 +23,11 @@
 #include "Eigen/Core"
 #include "absl/status/statusor.h"
 #include "absl/time/time.h"
+#include "core/util/matrix.h"
 
 namespace foray::plan {
 
-using RowMatrixXf = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+using foray::RowMatrixXf;
 
 // Sampler of Gaussian noise with power spectrum 1/f^beta along the horizon, unit variance at
 // every step (beta 0 is white noise). Built once per (horizon, beta): a (horizon, horizon)
@@ -108,16 +110,22 @@ using ScoreFunction = std::function<void(const float* sequences, int n, float* s
 // what a planner without a model can offer. (horizon, dim); deterministic under options.seed.
 absl::StatusOr<RowMatrixXf> SampleFromPrior(const CemOptions& options, const SequenceLimits& limits);
 
-// Runs CEM/iCEM. warm_start (may be null) is shifted by `shift` steps (the steps executed
-// since it was computed): its mean and elites lose their first `shift` rows and repeat the
-// last row. The first iteration always runs; before each later one the optimiser predicts its
-// duration from the last iteration (scaled by population) and stops if it would end after
-// `deadline`. `now` is the clock (absl::Now when empty).
+// What one run of the optimiser starts from and when it must end.
+struct CemRun {
+  // The previous run's `next`, or null for a cold start. It is shifted by `shift` steps (the
+  // steps executed since it was computed): its mean and elites lose their first `shift` rows
+  // and repeat the last row. shift >= 0.
+  const CemWarmStart* warm_start = nullptr;
+  int shift = 1;
+  // The first iteration always runs; before each later one the optimiser predicts its duration
+  // from the last iteration (scaled by population) and stops if it would end after `deadline`.
+  absl::Time deadline = absl::InfiniteFuture();
+  std::function<absl::Time()> now;  // the clock; absl::Now when empty
+};
+
+// Runs CEM/iCEM on `score` within `limits`.
 absl::StatusOr<CemResult> MaximizeCem(const CemOptions& options, const SequenceLimits& limits,
-                                      const ScoreFunction& score,
-                                      const CemWarmStart* warm_start = nullptr, int shift = 1,
-                                      absl::Time deadline = absl::InfiniteFuture(),
-                                      const std::function<absl::Time()>& now = {});
+                                      const ScoreFunction& score, const CemRun& run = {});
 
 }  // namespace foray::plan
 

@@ -5,6 +5,7 @@
 #include <vector>
 
 #include "absl/strings/str_format.h"
+#include "core/util/random.h"
 
 namespace foray::plan {
 
@@ -41,12 +42,15 @@ RolloutOptions PlannerOptions::rollout() const {
   return r;
 }
 
-absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
-                                const explore::ObjectiveOptions& objective,
-                                const PlannerOptions& options, const SequenceLimits& limits,
-                                const Eigen::VectorXf& state, const CemWarmStart* warm_start,
-                                int shift, const PlanContext& context) {
+absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& request) {
   const auto start = std::chrono::steady_clock::now();
+  const explore::ObjectiveOptions& objective = request.objective;
+  const PlannerOptions& options = request.options;
+  const SequenceLimits& limits = request.limits;
+  const Eigen::VectorXf& state = request.state;
+  const CemWarmStart* const warm_start = request.warm_start;
+  const int shift = request.shift;
+  const PlanContext& context = request.context;
   if (absl::Status s = options.Validate(); !s.ok()) return s;
   if (absl::Status s = objective.Validate(model.state_dim(), model.action_dim()); !s.ok()) return s;
   if (limits.dim() != model.action_dim()) {
@@ -74,9 +78,9 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
   const std::ptrdiff_t width = static_cast<std::ptrdiff_t>(options.horizon) * limits.dim();
   // A fresh draw of particles per iteration keeps the optimiser from fitting one draw's noise;
   // candidates within an iteration share draws (so groups of them may be scored apart).
-  uint64_t iteration_seed = options.seed * 0x9e3779b97f4a7c15ULL + 1;
+  uint64_t iteration = 0;  // streams 1, 2, ... of options.seed; 0 is the report's
   ScoreFunction score = [&](const float* sequences, int n, float* scores) {
-    const uint64_t seed = iteration_seed++;
+    const uint64_t seed = DeriveSeed(options.seed, ++iteration);
     auto group = [&](int task) {
       const int first = static_cast<int>(static_cast<int64_t>(n) * task / tasks);
       const int last = static_cast<int>(static_cast<int64_t>(n) * (task + 1) / tasks);
@@ -91,8 +95,9 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
       context.parallel(tasks, group);
     }
   };
-  absl::StatusOr<CemResult> cem = MaximizeCem(options.cem(), limits, score, warm_start, shift,
-                                               context.deadline, context.now);
+  absl::StatusOr<CemResult> cem = MaximizeCem(
+      options.cem(), limits, score,
+      {.warm_start = warm_start, .shift = shift, .deadline = context.deadline, .now = context.now});
   if (!cem.ok()) return cem.status();
 
   PlanResult result;
@@ -107,7 +112,7 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
   RolloutTrace trace;
   float objective_value = 0.0f;
   ScoreSequences(model, objective, report, state.data(), result.actions.data(), 1,
-                 options.seed ^ 0x5bd1e995ULL, &objective_value, &workspaces[0], &trace,
+                 DeriveSeed(options.seed, 0), &objective_value, &workspaces[0], &trace,
                  &task_stats[0]);
   result.state_mean = trace.state_mean;
   result.state_std = trace.state_std;

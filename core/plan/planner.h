@@ -8,7 +8,8 @@
 //   PlannerOptions options;                    // horizon 20, population 200, elites 20, ...
 //   PlanContext context;
 //   context.deadline = absl::Now() + absl::Milliseconds(50);
-//   auto plan = Plan(model, objective, options, limits, state, &last->warm_start, 1, context);
+//   auto plan = Plan(model, {.state = state, .limits = limits, .objective = objective,
+//                            .options = options, .warm_start = &last->warm_start, .context = context});
 #ifndef FORAY_CORE_PLAN_PLANNER_H_
 #define FORAY_CORE_PLAN_PLANNER_H_
 
@@ -81,17 +82,23 @@ struct PlanContext {
   int tasks = 1;
 };
 
-// Plans from `state` (state_dim, robot units). limits: the robot's action bounds, rate limits
-// and (optionally) the last applied action. warm_start: the previous plan's warm_start or
-// null; it is shifted by `shift` executed steps. context: deadline, clock and threads. Errors: InvalidArgument for bad options,
-// limits or a state of the wrong size or non-finite; FailedPrecondition when the model gives
-// non-finite predictions everywhere.
-absl::StatusOr<PlanResult> Plan(const RolloutModel& model,
-                                const explore::ObjectiveOptions& objective,
-                                const PlannerOptions& options, const SequenceLimits& limits,
-                                const Eigen::VectorXf& state,
-                                const CemWarmStart* warm_start = nullptr, int shift = 1,
-                                const PlanContext& context = {});
+// One plan: where from, within which limits, for which objective, with which settings.
+struct PlanRequest {
+  Eigen::VectorXf state;  // (state_dim), robot units, finite
+  // The robot's action bounds, rate limits and (optionally) the last applied action.
+  SequenceLimits limits;
+  explore::ObjectiveOptions objective;
+  PlannerOptions options;
+  // The previous plan's warm_start, or null; shifted by `shift` executed steps (>= 0).
+  const CemWarmStart* warm_start = nullptr;
+  int shift = 1;
+  PlanContext context;  // deadline, clock and threads
+};
+
+// Plans for `request` on `model`. Errors: InvalidArgument for bad options, limits or a state
+// of the wrong size or non-finite; FailedPrecondition when the model gives non-finite
+// predictions everywhere.
+absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& request);
 
 }  // namespace foray::plan
 

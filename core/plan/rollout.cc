@@ -90,7 +90,7 @@ void LinearRolloutModel::Evaluate(const float* states, const float* actions, int
   out->term_logit.clear();
   out->scale = Eigen::VectorXf::Ones(od);
   out->offset = Eigen::VectorXf::Zero(od);
-  using RowMajor = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+  using RowMajor = RowMatrixXf;
   Eigen::Map<const RowMajor> s(states, rows, sd);
   Eigen::Map<const RowMajor> u(actions, rows, ad);
   Eigen::Map<RowMajor, 0, Eigen::OuterStride<>> delta(out->mean.data(), rows, sd,
@@ -199,7 +199,7 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
                            pred.ObservationSet(static_cast<float>(objective.observation_noise),
                                                &ws->observed_log_var),
                            ws->information.data(),
-                           objective.monte_carlo_samples, seed + 7919u * (t + 1));
+                           objective.monte_carlo_samples, DeriveSeed(seed, t));
       // Spread row n to its particles; from the top down, so no source is overwritten first.
       if (shared) {
         for (int r = rows - 1; r >= 0; --r) ws->information[r] = ws->information[r / particles];

@@ -67,6 +67,18 @@ class Rng {
   bool has_spare_ = false;
 };
 
+// The seed of stream `stream` of a computation seeded with `seed` (a plan's iterations, a
+// model version's training): the SplitMix64 finaliser (Steele, Lea & Flood 2014, "Fast
+// splittable pseudorandom number generators", OOPSLA) of seed + golden-ratio * (stream + 1), so
+// that neighbouring seeds and streams give unrelated generators. The one place seeds are
+// derived: no other constants mix seeds.
+inline uint64_t DeriveSeed(uint64_t seed, uint64_t stream) {
+  uint64_t z = seed + 0x9e3779b97f4a7c15ULL * (stream + 1);
+  z = (z ^ (z >> 30)) * 0xbf58476d1ce4e5b9ULL;
+  z = (z ^ (z >> 27)) * 0x94d049bb133111ebULL;
+  return z ^ (z >> 31);
+}
+
 }  // namespace foray
 
 #endif  // FORAY_CORE_UTIL_RANDOM_H_

@@ -10,7 +10,9 @@ namespace foray::api {
 
 bool Inbox::Push(v1::SessionClientMessage message, absl::Duration slow_wait) {
   absl::MutexLock lock(&mu_);
-  auto room = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return closed_ || queue_.size() < capacity_; };
+  auto room = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) {
+    return closed_ || queue_.size() < capacity_;
+  };
   if (!mu_.AwaitWithTimeout(absl::Condition(&room), slow_wait)) {
     std::fprintf(stderr,
                  "forayd: the %s stopped reading its client for %s: %zu messages wait for the "
@@ -74,7 +76,8 @@ std::vector<v1::SessionServerMessage> SessionCommitter::Answer(
       const uint64_t seq = in.transition().seq();
       google::protobuf::RepeatedPtrField<v1::Transition> one;
       one.Add()->Swap(in.mutable_transition());
-      absl::StatusOr<std::vector<store::TransitionRecord>> record = TransitionsFromWire(one, config_);
+      absl::StatusOr<std::vector<store::TransitionRecord>> record =
+          TransitionsFromWire(one, config_);
       absl::Status valid = record.status();
       if (valid.ok() && seq <= last_seq_seen_) {
         valid = absl::InvalidArgumentError(absl::StrFormat(
@@ -99,7 +102,8 @@ std::vector<v1::SessionServerMessage> SessionCommitter::Answer(
     } else {
       Commit(&replies);
       replies.push_back(ErrorReply(
-          absl::InvalidArgumentError("expected a transition or a plan request after the hello"), 0, 0));
+          absl::InvalidArgumentError("expected a transition or a plan request after the hello"), 0,
+          0));
     }
   }
   if (!stopped_) Commit(&replies);

@@ -8,6 +8,8 @@
 #include "absl/strings/str_format.h"
 #include "core/explore/information_gain.h"
 #include "core/model/serialize.h"
+#include "core/util/matrix.h"
+#include "core/util/random.h"
 #include "foray/v1/monitoring.pb.h"
 #include "foray/v1/types.pb.h"
 
@@ -409,7 +411,7 @@ bool RobotRuntime::WantsTrainingLocked() const {
 model::TransitionData RobotRuntime::Snapshot() const {
   const int n = static_cast<int>(rewards_.size());
   const int sd = config_.state_dim, ad = config_.action_dim;
-  using RowMajor = Eigen::Matrix<float, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>;
+  using RowMajor = RowMatrixXf;
   model::TransitionData d;
   d.states = Eigen::Map<const RowMajor>(states_.data(), n, sd);
   d.actions = Eigen::Map<const RowMajor>(actions_.data(), n, ad);
@@ -459,7 +461,7 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce(
     initial = *std::move(fresh);
   }
   model::TrainingOptions options = config.training;
-  options.seed = options.seed * 1000003u + version;
+  options.seed = DeriveSeed(options.seed, version);
   const auto begin = std::chrono::steady_clock::now();
   auto trainer = model::EnsembleTrainer::Create(std::move(initial), data, options);
   if (!trainer.ok()) return finish(trainer.status());
@@ -554,7 +556,7 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     }
     limits.max_step = input.max_step;
   }
-  input.planner.seed = input.planner.seed * 0x9e3779b97f4a7c15ULL + count;
+  input.planner.seed = DeriveSeed(input.planner.seed, count);
 
   PlanOutcome outcome;
   if (input.evaluate) {
@@ -589,8 +591,12 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     context.deadline = input.deadline;
     const bool reuse = warm.has_value() && warm->mean.rows() == input.planner.horizon;
     absl::StatusOr<plan::PlanResult> result =
-        plan::Plan(*model->rollout, input.objective, input.planner, limits, input.state,
-                   reuse ? &*warm : nullptr, 1, context);
+        plan::Plan(*model->rollout, {.state = input.state,
+                                     .limits = limits,
+                                     .objective = input.objective,
+                                     .options = input.planner,
+                                     .warm_start = reuse ? &*warm : nullptr,
+                                     .context = context});
     if (!result.ok()) return result.status();
     outcome.result = *std::move(result);
     outcome.model_version = model->version;
@@ -614,14 +620,14 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
   return outcome;
 }
 
-
 absl::StatusOr<RobotRuntime::Checkpoint> RobotRuntime::ReadCheckpoint(uint64_t version) const {
   absl::StatusOr<store::CheckpointRecord> record = store_->GetCheckpoint(robot_id_, version);
   if (!record.ok()) return record.status();
   return Decode(*record);
 }
 
-absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::RestoreCheckpoint(uint64_t version) {
+absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::RestoreCheckpoint(
+    uint64_t version) {
   absl::StatusOr<Checkpoint> checkpoint = ReadCheckpoint(version);
   if (!checkpoint.ok()) return checkpoint.status();
   return PublishModel(std::move(checkpoint->ensemble), std::move(checkpoint->report));
@@ -633,8 +639,9 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainAndWait
   {
     absl::MutexLock lock(&mu_);
     if (rewards_.size() < 2) {
-      return absl::FailedPreconditionError(absl::StrFormat(
-          "robot \"%s\" has %d transitions; training needs at least 2", config_.name, rewards_.size()));
+      return absl::FailedPreconditionError(
+          absl::StrFormat("robot \"%s\" has %d transitions; training needs at least 2",
+                          config_.name, rewards_.size()));
     }
     before = published_ ? published_->version : 0;
     training_requested_ = true;
@@ -652,9 +659,9 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainAndWait
   return published_;
 }
 
-absl::StatusOr<RobotRuntime::Prediction> RobotRuntime::Predict(const std::vector<float>& states,
-                                                               const std::vector<float>& actions, int rows,
-                                                               const explore::ObjectiveOptions& objective) const {
+absl::StatusOr<RobotRuntime::Prediction> RobotRuntime::Predict(
+    const std::vector<float>& states, const std::vector<float>& actions, int rows,
+    const explore::ObjectiveOptions& objective) const {
   std::shared_ptr<const PublishedModel> model;
   RobotConfig config;
   {
@@ -663,16 +670,16 @@ absl::StatusOr<RobotRuntime::Prediction> RobotRuntime::Predict(const std::vector
     config = config_;
   }
   if (model == nullptr) {
-    return absl::FailedPreconditionError(absl::StrFormat(
-        "robot \"%s\" has no model yet; it trains once it has %d transitions", config.name,
-        config.policy.min_transitions));
+    return absl::FailedPreconditionError(
+        absl::StrFormat("robot \"%s\" has no model yet; it trains once it has %d transitions",
+                        config.name, config.policy.min_transitions));
   }
   const int sd = config.state_dim;
   if (rows < 1 || states.size() != static_cast<size_t>(rows) * sd ||
       actions.size() != static_cast<size_t>(rows) * config.action_dim) {
-    return absl::InvalidArgumentError(absl::StrFormat(
-        "Predict: %d rows need %d state and %d action values, got %d and %d", rows, rows * sd,
-        rows * config.action_dim, states.size(), actions.size()));
+    return absl::InvalidArgumentError(
+        absl::StrFormat("Predict: %d rows need %d state and %d action values, got %d and %d", rows,
+                        rows * sd, rows * config.action_dim, states.size(), actions.size()));
   }
   plan::MemberPredictions pred;
   model->rollout->Evaluate(states.data(), actions.data(), rows, &pred);
@@ -689,23 +696,27 @@ absl::StatusOr<RobotRuntime::Prediction> RobotRuntime::Predict(const std::vector
   for (int b = 0; b < nb; ++b) {
     for (int r = 0; r < rows; ++r) {
       // As a rollout steps: state + mean * scale + offset, variances by scale^2.
-      const size_t at = (static_cast<size_t>(b) * rows + r) * od, row = static_cast<size_t>(b) * rows + r;
+      const size_t at = (static_cast<size_t>(b) * rows + r) * od,
+                   row = static_cast<size_t>(b) * rows + r;
       for (int k = 0; k < sd; ++k) {
-        out.next_state_mean[row * sd + k] =
-            states[static_cast<size_t>(r) * sd + k] + pred.mean[at + k] * pred.scale[k] + pred.offset[k];
+        out.next_state_mean[row * sd + k] = states[static_cast<size_t>(r) * sd + k] +
+                                            pred.mean[at + k] * pred.scale[k] + pred.offset[k];
         out.next_state_variance[row * sd + k] =
             std::exp(static_cast<double>(pred.log_var[at + k])) * pred.scale[k] * pred.scale[k];
       }
       out.reward_mean[row] = pred.mean[at + sd] * pred.scale[sd] + pred.offset[sd];
-      out.reward_variance[row] = std::exp(static_cast<double>(pred.log_var[at + sd])) * pred.scale[sd] * pred.scale[sd];
-      if (!pred.term_logit.empty()) out.termination_probability[row] = 1.0 / (1.0 + std::exp(-pred.term_logit[row]));
+      out.reward_variance[row] =
+          std::exp(static_cast<double>(pred.log_var[at + sd])) * pred.scale[sd] * pred.scale[sd];
+      if (!pred.term_logit.empty())
+        out.termination_probability[row] = 1.0 / (1.0 + std::exp(-pred.term_logit[row]));
     }
   }
   out.information_gain.resize(rows);
   std::vector<float> observed_log_var;
-  explore::Information(objective.estimator,
-                       pred.ObservationSet(static_cast<float>(objective.observation_noise), &observed_log_var),
-                       out.information_gain.data(), objective.monte_carlo_samples, 1);
+  explore::Information(
+      objective.estimator,
+      pred.ObservationSet(static_cast<float>(objective.observation_noise), &observed_log_var),
+      out.information_gain.data(), objective.monte_carlo_samples, 1);
   return out;
 }
 

@@ -88,7 +88,11 @@ int main(int argc, char** argv) {
       options.seed = 1 + i;
       const auto start = std::chrono::steady_clock::now();
       absl::StatusOr<foray::plan::PlanResult> plan =
-          foray::plan::Plan(model, objective, options, limits, state, nullptr, 1, context);
+          foray::plan::Plan(model, {.state = state,
+                                    .limits = limits,
+                                    .objective = objective,
+                                    .options = options,
+                                    .context = context});
       const double elapsed = MsSince(start);
       if (!plan.ok()) {
         std::fprintf(stderr, "plan failed: %s\n", std::string(plan.status().message()).c_str());

@@ -287,7 +287,7 @@ TEST(CemTest, WarmStartIsShiftedByTheExecutedSteps) {
     population.assign(seqs, seqs + 5 * n);
     for (int i = 0; i < n; ++i) scores[i] = 0.0f;
   };
-  absl::StatusOr<CemResult> r = MaximizeCem(o, limits, score, &warm, /*shift=*/2);
+  absl::StatusOr<CemResult> r = MaximizeCem(o, limits, score, {.warm_start = &warm, .shift = 2});
   ASSERT_TRUE(r.ok());
   ASSERT_EQ(population.size(), 5u * (2 + 20 + 1));
   const float kept0[5] = {-0.3f, -0.2f, -0.1f, -0.1f, -0.1f};
@@ -320,7 +320,7 @@ TEST(CemTest, DeadlineStopsBeforeAnIterationThatWouldNotFit) {
   };
   const absl::Time deadline = absl::UnixEpoch() + absl::Milliseconds(30);
   absl::StatusOr<CemResult> r =
-      MaximizeCem(o, limits, score, nullptr, 1, deadline, [&] { return clock; });
+      MaximizeCem(o, limits, score, {.deadline = deadline, .now = [&] { return clock; }});
   ASSERT_TRUE(r.ok());
   EXPECT_EQ(r->iterations, 3);
   EXPECT_LE(clock, deadline);
@@ -335,7 +335,7 @@ TEST(CemTest, FirstIterationRunsEvenPastTheDeadline) {
   ScoreFunction score = [](const float*, int n, float* scores) {
     for (int i = 0; i < n; ++i) scores[i] = 0.0f;
   };
-  absl::StatusOr<CemResult> r = MaximizeCem(o, limits, score, nullptr, 1, absl::InfinitePast());
+  absl::StatusOr<CemResult> r = MaximizeCem(o, limits, score, {.deadline = absl::InfinitePast()});
   ASSERT_TRUE(r.ok());
   EXPECT_EQ(r->iterations, 1);
 }

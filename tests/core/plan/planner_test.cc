@@ -58,7 +58,8 @@ TEST(PlannerTest, LinearQuadraticPlanIsWithinFivePercentOfTheLqrOptimum) {
   const SequenceLimits limits = SequenceLimits::Box(Eigen::VectorXf::Constant(1, -20),
                                                     Eigen::VectorXf::Constant(1, 20));
   const Eigen::Vector2f x0(problem(0, 1), problem(0, 2));
-  absl::StatusOr<PlanResult> plan = Plan(model, objective, options, limits, x0);
+  absl::StatusOr<PlanResult> plan =
+      Plan(model, {.state = x0, .limits = limits, .objective = objective, .options = options});
   ASSERT_TRUE(plan.ok()) << plan.status();
 
   // Charge the returned plan exactly, in double precision.
@@ -100,8 +101,10 @@ TEST(PlannerTest, PureExplorationSteersWhereTheMembersDisagree) {
   explore::ObjectiveOptions objective;
   objective.reward_weight = 0.0;
   objective.information_weight = 1.0;
-  absl::StatusOr<PlanResult> plan =
-      Plan(model, objective, SmallPlanner(), UnitHalfBox(), Eigen::VectorXf::Zero(1));
+  absl::StatusOr<PlanResult> plan = Plan(model, {.state = Eigen::VectorXf::Zero(1),
+                                                 .limits = UnitHalfBox(),
+                                                 .objective = objective,
+                                                 .options = SmallPlanner()});
   ASSERT_TRUE(plan.ok()) << plan.status();
   EXPECT_GT(plan->state_mean(9, 0), 2.5);
   EXPECT_GT(plan->total_information_gain, 0.5);
@@ -117,8 +120,10 @@ TEST(PlannerTest, RewardOnlyPlanIgnoresTheDisagreement) {
   objective.information_weight = 0.0;
   objective.known_reward.kind = explore::KnownReward::Kind::kQuadratic;
   objective.known_reward.target = {0.0};
-  absl::StatusOr<PlanResult> plan =
-      Plan(model, objective, SmallPlanner(), UnitHalfBox(), Eigen::VectorXf::Zero(1));
+  absl::StatusOr<PlanResult> plan = Plan(model, {.state = Eigen::VectorXf::Zero(1),
+                                                 .limits = UnitHalfBox(),
+                                                 .objective = objective,
+                                                 .options = SmallPlanner()});
   ASSERT_TRUE(plan.ok()) << plan.status();
   EXPECT_LT(plan->state_mean.col(0).cwiseAbs().maxCoeff(), 0.5);
   EXPECT_NEAR(plan->total_information_gain, 0.0, 1e-6);
@@ -160,8 +165,10 @@ TEST(PlannerTest, TrainedEnsembleExploresBeyondItsData) {
   options.horizon = 15;
   const SequenceLimits limits = SequenceLimits::Box(Eigen::VectorXf::Constant(1, -0.2f),
                                                     Eigen::VectorXf::Constant(1, 0.2f));
-  absl::StatusOr<PlanResult> plan =
-      Plan(model, objective, options, limits, Eigen::VectorXf::Constant(1, -1.0f));
+  absl::StatusOr<PlanResult> plan = Plan(model, {.state = Eigen::VectorXf::Constant(1, -1.0f),
+                                                 .limits = limits,
+                                                 .objective = objective,
+                                                 .options = options});
   ASSERT_TRUE(plan.ok()) << plan.status();
   const float end = plan->state_mean(14, 0);
   EXPECT_TRUE(end > 0.5f || end < -2.5f) << "ends at " << end;
@@ -207,8 +214,11 @@ TEST(PlannerTest, ActionsStayInsideBoundsAndRateLimitsOverRandomConfigurations) 
     Eigen::VectorXf state = Eigen::VectorXf::Random(sd);
     CemWarmStart warm;
     for (int step = 0; step < 4; ++step) {
-      absl::StatusOr<PlanResult> plan =
-          Plan(model, objective, options, limits, state, step == 0 ? nullptr : &warm);
+      absl::StatusOr<PlanResult> plan = Plan(model, {.state = state,
+                                                     .limits = limits,
+                                                     .objective = objective,
+                                                     .options = options,
+                                                     .warm_start = step == 0 ? nullptr : &warm});
       ASSERT_TRUE(plan.ok()) << plan.status();
       for (int t = 0; t < options.horizon; ++t) {
         for (int j = 0; j < ad; ++j) {
@@ -259,8 +269,11 @@ TEST(PlannerTest, DeadlineCutsIterationsAndStillReturnsAValidPlan) {
   PlanContext context;
   context.deadline = absl::UnixEpoch() + absl::Milliseconds(25);
   context.now = [&] { return clock; };
-  absl::StatusOr<PlanResult> plan = Plan(model, explore::ObjectiveOptions{}, options,
-                                         UnitHalfBox(), Eigen::VectorXf::Zero(1), nullptr, 1, context);
+  absl::StatusOr<PlanResult> plan = Plan(model, {.state = Eigen::VectorXf::Zero(1),
+                                                 .limits = UnitHalfBox(),
+                                                 .objective = explore::ObjectiveOptions{},
+                                                 .options = options,
+                                                 .context = context});
   ASSERT_TRUE(plan.ok()) << plan.status();
   EXPECT_EQ(plan->iterations, 2);
   EXPECT_EQ(plan->actions.rows(), 10);
@@ -275,8 +288,10 @@ TEST(PlannerTest, ParallelTasksGiveTheSameResultAsOneThread) {
   options.propagation = Propagation::kTs1;
   const SequenceLimits limits = SequenceLimits::Box(Eigen::Vector2f(-1, -1), Eigen::Vector2f(1, 1));
   const Eigen::Vector3f state(0.1f, 0.2f, 0.3f);
-  absl::StatusOr<PlanResult> serial =
-      Plan(model, explore::ObjectiveOptions{}, options, limits, state);
+  absl::StatusOr<PlanResult> serial = Plan(model, {.state = state,
+                                                   .limits = limits,
+                                                   .objective = explore::ObjectiveOptions{},
+                                                   .options = options});
   ASSERT_TRUE(serial.ok());
   for (int tasks : {2, 3, 7}) {
     PlanContext context;
@@ -289,8 +304,11 @@ TEST(PlannerTest, ParallelTasksGiveTheSameResultAsOneThread) {
       task(0);
       for (std::thread& t : threads) t.join();
     };
-    absl::StatusOr<PlanResult> parallel = Plan(model, explore::ObjectiveOptions{}, options,
-                                               limits, state, nullptr, 1, context);
+    absl::StatusOr<PlanResult> parallel = Plan(model, {.state = state,
+                                                       .limits = limits,
+                                                       .objective = explore::ObjectiveOptions{},
+                                                       .options = options,
+                                                       .context = context});
     ASSERT_TRUE(parallel.ok());
     EXPECT_EQ(calls, options.iterations);
     EXPECT_EQ(parallel->actions, serial->actions) << tasks << " tasks";
@@ -303,8 +321,10 @@ TEST(PlannerTest, ResultHasTheDocumentedShapes) {
   PlannerOptions options = SmallPlanner();
   options.horizon = 7;
   const SequenceLimits limits = SequenceLimits::Box(Eigen::Vector2f(-1, -1), Eigen::Vector2f(1, 1));
-  absl::StatusOr<PlanResult> plan =
-      Plan(model, explore::ObjectiveOptions{}, options, limits, Eigen::Vector3f(0.1f, 0.2f, 0.3f));
+  absl::StatusOr<PlanResult> plan = Plan(model, {.state = Eigen::Vector3f(0.1f, 0.2f, 0.3f),
+                                                 .limits = limits,
+                                                 .objective = explore::ObjectiveOptions{},
+                                                 .options = options});
   ASSERT_TRUE(plan.ok()) << plan.status();
   EXPECT_EQ(plan->actions.rows(), 7);
   EXPECT_EQ(plan->actions.cols(), 2);
@@ -322,29 +342,43 @@ TEST(PlannerTest, BadInputNamesTheFieldAndValues) {
   const OffsetMembersModel model(2, 1, {0.0f, 0.1f}, 0.05f);
   const explore::ObjectiveOptions objective;
   const PlannerOptions options = SmallPlanner();
-  absl::StatusOr<PlanResult> plan =
-      Plan(model, objective, options, UnitHalfBox(), Eigen::VectorXf::Zero(3));
+  absl::StatusOr<PlanResult> plan = Plan(model, {.state = Eigen::VectorXf::Zero(3),
+                                                 .limits = UnitHalfBox(),
+                                                 .objective = objective,
+                                                 .options = options});
   EXPECT_EQ(plan.status().code(), absl::StatusCode::kInvalidArgument);
   EXPECT_NE(plan.status().message().find("state has 3 values, the model expects 2"),
             std::string::npos);
 
-  plan = Plan(model, objective, options, UnitHalfBox(), Eigen::Vector2f(0.0f, NAN));
+  plan = Plan(model, {.state = Eigen::Vector2f(0.0f, NAN),
+                      .limits = UnitHalfBox(),
+                      .objective = objective,
+                      .options = options});
   EXPECT_NE(plan.status().message().find("state[1] is nan"), std::string::npos);
 
   const SequenceLimits two = SequenceLimits::Box(Eigen::Vector2f(-1, -1), Eigen::Vector2f(1, 1));
-  plan = Plan(model, objective, options, two, Eigen::VectorXf::Zero(2));
+  plan = Plan(model, {.state = Eigen::VectorXf::Zero(2),
+                      .limits = two,
+                      .objective = objective,
+                      .options = options});
   EXPECT_NE(plan.status().message().find("limits have 2 action values, the model has 1"),
             std::string::npos);
 
   PlannerOptions bad = options;
   bad.particles = 0;
-  plan = Plan(model, objective, bad, UnitHalfBox(), Eigen::VectorXf::Zero(2));
+  plan = Plan(model, {.state = Eigen::VectorXf::Zero(2),
+                      .limits = UnitHalfBox(),
+                      .objective = objective,
+                      .options = bad});
   EXPECT_NE(plan.status().message().find("particles is 0"), std::string::npos);
 
   explore::ObjectiveOptions wrong_target;
   wrong_target.known_reward.kind = explore::KnownReward::Kind::kQuadratic;
   wrong_target.known_reward.target = {1.0};
-  plan = Plan(model, wrong_target, options, UnitHalfBox(), Eigen::VectorXf::Zero(2));
+  plan = Plan(model, {.state = Eigen::VectorXf::Zero(2),
+                      .limits = UnitHalfBox(),
+                      .objective = wrong_target,
+                      .options = options});
   EXPECT_NE(plan.status().message().find("target has 1 values, the state has 2"),
             std::string::npos);
 }

@@ -126,11 +126,14 @@ TEST(SurvivalTest, NegativeTerminalValueAvoidsTheEdgeThatCostsMakeAttractive) {
     o.known_termination.outside = true;
     return o;
   };
-  auto zero = Plan(linear, objective_for(0.0), options, limits, x0);
+  auto zero = Plan(
+      linear, {.state = x0, .limits = limits, .objective = objective_for(0.0), .options = options});
   ASSERT_TRUE(zero.ok()) << zero.status();
   // Remaining cost from 2.9 at best about 43 (sum of squares along a 0.2-per-step retreat,
   // discounted): a terminal_value of -100 is below it.
-  auto costly = Plan(linear, objective_for(-100.0), options, limits, x0);
+  auto costly =
+      Plan(linear,
+           {.state = x0, .limits = limits, .objective = objective_for(-100.0), .options = options});
   ASSERT_TRUE(costly.ok()) << costly.status();
   EXPECT_EQ(zero->survival[options.horizon - 1], 0.0f) << "terminal_value 0 leaves the workspace";
   EXPECT_EQ(costly->survival[options.horizon - 1], 1.0f) << "terminal_value -100 stays";
@@ -245,7 +248,8 @@ TEST_F(LearnedEdgeTest, RewardSeekingPlanKeepsItsParticlesAlive) {
                                                     Eigen::VectorXf::Constant(1, 1.0f));
   Eigen::VectorXf x0(2);
   x0 << 0.45f, 0.0f;
-  auto plan = Plan(model, objective, options, limits, x0);
+  auto plan =
+      Plan(model, {.state = x0, .limits = limits, .objective = objective, .options = options});
   ASSERT_TRUE(plan.ok()) << plan.status();
   EXPECT_GT(plan->expected_return, 2.0) << "the plan reaches the reward zone";
   // Stated level: every particle still alive with probability >= 0.8 at the horizon's end.
@@ -254,9 +258,11 @@ TEST_F(LearnedEdgeTest, RewardSeekingPlanKeepsItsParticlesAlive) {
   // Heading for the edge at 0.5 m/s from 0.75 m (full braking stops it about 0.1 m later): a
   // negative terminal_value must keep the particles at least as alive as 0 does, and alive.
   x0 << 0.75f, 0.5f;
-  auto with_zero = Plan(model, objective, options, limits, x0);
+  auto with_zero =
+      Plan(model, {.state = x0, .limits = limits, .objective = objective, .options = options});
   objective.terminal_value = -5.0;
-  auto with_loss = Plan(model, objective, options, limits, x0);
+  auto with_loss =
+      Plan(model, {.state = x0, .limits = limits, .objective = objective, .options = options});
   ASSERT_TRUE(with_zero.ok() && with_loss.ok());
   const float zero_end = with_zero->survival[options.horizon - 1];
   const float loss_end = with_loss->survival[options.horizon - 1];

@@ -55,22 +55,24 @@ struct Recorder {
   uint64_t durable = 0;
 
   SessionCommitter::Hooks Hooks() {
-    return {.store = [this](const std::vector<store::TransitionRecord>& group, v1::Ack* ack) {
-              calls.push_back("store");
-              if (fail_store) return absl::UnavailableError("disk full");
-              std::vector<uint64_t> seqs;
-              for (const auto& t : group) seqs.push_back(t.seq);
-              groups.push_back(seqs);
-              durable = seqs.back();
-              ack->set_durable_seq(durable);
-              ack->set_accepted(seqs.size());
-              return absl::OkStatus();
-            },
-            .plan = [this](const v1::PlanRequest& request, v1::Plan* plan) {
-              calls.push_back("plan");
-              plan->set_request_id(request.request_id());
-              return absl::OkStatus();
-            }};
+    return {.store =
+                [this](const std::vector<store::TransitionRecord>& group, v1::Ack* ack) {
+                  calls.push_back("store");
+                  if (fail_store) return absl::UnavailableError("disk full");
+                  std::vector<uint64_t> seqs;
+                  for (const auto& t : group) seqs.push_back(t.seq);
+                  groups.push_back(seqs);
+                  durable = seqs.back();
+                  ack->set_durable_seq(durable);
+                  ack->set_accepted(seqs.size());
+                  return absl::OkStatus();
+                },
+            .plan =
+                [this](const v1::PlanRequest& request, v1::Plan* plan) {
+                  calls.push_back("plan");
+                  plan->set_request_id(request.request_id());
+                  return absl::OkStatus();
+                }};
   }
 };
 
@@ -99,10 +101,12 @@ TEST(SessionCommitterTest, AnInvalidTransitionIsAnsweredInItsPlaceAndTheOthersAr
   EXPECT_EQ(out[0].ack().durable_seq(), 2u);
   ASSERT_TRUE(out[1].has_error());
   EXPECT_EQ(out[1].error().seq(), 3u);
-  EXPECT_TRUE(absl::StrContains(out[1].error().message(), "action[0] is 7")) << out[1].error().message();
+  EXPECT_TRUE(absl::StrContains(out[1].error().message(), "action[0] is 7"))
+      << out[1].error().message();
   ASSERT_TRUE(out[2].has_error());
   EXPECT_EQ(out[2].error().seq(), 2u);
-  EXPECT_TRUE(absl::StrContains(out[2].error().message(), "seq must increase")) << out[2].error().message();
+  EXPECT_TRUE(absl::StrContains(out[2].error().message(), "seq must increase"))
+      << out[2].error().message();
   EXPECT_TRUE(out[3].has_ack());
   EXPECT_EQ(out[3].ack().durable_seq(), 4u);
   EXPECT_EQ(recorder.groups, (std::vector<std::vector<uint64_t>>{{1, 2}, {4}}));
@@ -112,7 +116,8 @@ TEST(SessionCommitterTest, AnInvalidTransitionIsAnsweredInItsPlaceAndTheOthersAr
 TEST(SessionCommitterTest, APlanComesAfterTheTransitionsSentBeforeItAreStored) {
   Recorder recorder;
   SessionCommitter committer(Cart(), recorder.Hooks(), "test session");
-  std::vector<v1::SessionClientMessage> in = {Transition(1), Transition(2), PlanRequest(9), Transition(3)};
+  std::vector<v1::SessionClientMessage> in = {Transition(1), Transition(2), PlanRequest(9),
+                                              Transition(3)};
   std::vector<v1::SessionServerMessage> out = committer.Answer(std::move(in), kReads);
   EXPECT_EQ(recorder.calls, (std::vector<std::string>{"store", "plan", "store"}));
   ASSERT_EQ(out.size(), 3u);
@@ -137,7 +142,8 @@ TEST(SessionCommitterTest, AfterAGroupFailsNothingLaterIsStoredOrAcknowledged) {
   SessionCommitter committer(Cart(), recorder.Hooks(), "test session");
   ASSERT_EQ(committer.Answer({Transition(1)}, kReads).size(), 1u);
   recorder.fail_store = true;
-  std::vector<v1::SessionClientMessage> in = {Transition(2), Transition(3), PlanRequest(5), Transition(4)};
+  std::vector<v1::SessionClientMessage> in = {Transition(2), Transition(3), PlanRequest(5),
+                                              Transition(4)};
   std::vector<v1::SessionServerMessage> out = committer.Answer(std::move(in), kReads);
   // One error naming the failed group's first seq; no plan and no ack after it: an ack of seq 4
   // would tell the client that 2 and 3 are durable.
@@ -160,7 +166,8 @@ TEST(SessionCommitterTest, AMessageOfNeitherKindIsAnError) {
   ASSERT_EQ(out.size(), 2u);
   EXPECT_TRUE(out[0].has_ack());
   ASSERT_TRUE(out[1].has_error());
-  EXPECT_TRUE(absl::StrContains(out[1].error().message(), "expected a transition or a plan request"));
+  EXPECT_TRUE(
+      absl::StrContains(out[1].error().message(), "expected a transition or a plan request"));
 }
 
 TEST(InboxTest, APushWaitsWhileTheInboxIsFullAndTakeAllHandsOverEverythingInOrder) {
