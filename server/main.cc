@@ -122,21 +122,21 @@ std::shared_ptr<grpc::ServerCredentials> Credentials(bool* tls) {
   return grpc::SslServerCredentials(options);
 }
 
-// Reads a token from the first line of `path`, or (with create) makes the file with a fresh
-// token when it is missing.
-bool LoadAdminToken(const std::filesystem::path& path, bool create, std::string* token) {
+// Reads a token (`what`: "admin" or "viewer") from the first line of `path`, or (with create)
+// makes the file with a fresh token when it is missing.
+bool LoadTokenFile(const char* what, const std::filesystem::path& path, bool create, std::string* token) {
   std::ifstream in(path);
   if (in) {
     std::getline(in, *token);
     *token = std::string(absl::StripAsciiWhitespace(*token));
     if (token->empty()) {
-      std::fprintf(stderr, "forayd: the admin token file \"%s\" is empty\n", path.c_str());
+      std::fprintf(stderr, "forayd: the %s token file \"%s\" is empty\n", what, path.c_str());
       return false;
     }
     return true;
   }
   if (!create) {
-    std::fprintf(stderr, "forayd: cannot read the admin token file \"%s\"\n", path.c_str());
+    std::fprintf(stderr, "forayd: cannot read the %s token file \"%s\"\n", what, path.c_str());
     return false;
   }
   *token = foray::api::NewToken();
@@ -146,7 +146,7 @@ bool LoadAdminToken(const std::filesystem::path& path, bool create, std::string*
   out.close();
   ::umask(old_mask);
   if (!out) {
-    std::fprintf(stderr, "forayd: cannot write the admin token file \"%s\"\n", path.c_str());
+    std::fprintf(stderr, "forayd: cannot write the %s token file \"%s\"\n", what, path.c_str());
     return false;
   }
   std::fprintf(stderr, "forayd: created a new admin token in %s\n", path.c_str());
@@ -186,15 +186,15 @@ int main(int argc, char** argv) {
 
   std::string admin_token;
   const std::string token_flag = absl::GetFlag(FLAGS_admin_token_file);
-  if (!LoadAdminToken(token_flag.empty() ? data_dir / "admin-token" : std::filesystem::path(token_flag),
-                      token_flag.empty(), &admin_token)) {
+  if (!LoadTokenFile("admin", token_flag.empty() ? data_dir / "admin-token" : std::filesystem::path(token_flag),
+                     token_flag.empty(), &admin_token)) {
     return 2;
   }
 
   std::string viewer_hash;
   if (const std::string viewer_file = absl::GetFlag(FLAGS_viewer_token_file); !viewer_file.empty()) {
     std::string viewer;
-    if (!LoadAdminToken(viewer_file, /*create=*/false, &viewer)) return 2;
+    if (!LoadTokenFile("viewer", viewer_file, /*create=*/false, &viewer)) return 2;
     viewer_hash = foray::api::HashToken(viewer);
   }
 

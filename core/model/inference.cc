@@ -148,7 +148,7 @@ void Dense(const float* x, int ldx, int rows, int k_count, const float* w, int l
 
 void Dense(const float* x, int ldx, int rows, int k_count, const float* w, int ldw,
            const float* bias, float* y, int ldy, const Epilogue& ep) {
-  using RowMatrix = InferenceEnsemble::RowMatrix;
+  using RowMatrix = PackedEnsemble::RowMatrix;
   using Stride = Eigen::OuterStride<>;
   const Eigen::Map<const RowMatrix, 0, Stride> xm(x, rows, k_count, Stride(ldx));
   const Eigen::Map<const RowMatrix> wm(w, k_count, ldw);
@@ -169,7 +169,7 @@ void Dense(const float* x, int ldx, int rows, int k_count, const float* w, int l
 
 }  // namespace
 
-InferenceEnsemble::InferenceEnsemble(const Ensemble& e)
+PackedEnsemble::PackedEnsemble(const Ensemble& e)
     : id_(NextId()),
       members_(e.size()),
       input_dim_(e.input_dim()),
@@ -199,7 +199,7 @@ InferenceEnsemble::InferenceEnsemble(const Ensemble& e)
   min_log_var_ = e.min_log_var();
 }
 
-void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, float* mean,
+void PackedEnsemble::ForwardMember(int member, const float* x, int rows, float* mean,
                                       float* log_var, Workspace* ws, float* term_logit) const {
   FORAY_CHECK(member >= 0 && member < members_, "member index out of range");
   const std::vector<Layer>& layers = layers_[member];
@@ -253,7 +253,7 @@ void InferenceEnsemble::ForwardMember(int member, const float* x, int rows, floa
   lv = t;
 }
 
-void InferenceEnsemble::ForwardAll(const float* x, int rows, float* mean, float* log_var,
+void PackedEnsemble::ForwardAll(const float* x, int rows, float* mean, float* log_var,
                                    const ParallelFor& parallel, float* term_logit) const {
   const int blocks = (rows + kBlockRows - 1) / kBlockRows;
   RunTasks(parallel, members_ * blocks, [&](int task) {

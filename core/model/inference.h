@@ -1,12 +1,12 @@
-// A read-only, inference-optimised copy of an ensemble for the planner's hot path: weights
-// re-laid row-major and padded to the SIMD width, each layer's product, bias and activation
+// PackedEnsemble: a read-only copy of an ensemble for the planner's hot path, its weights
+// packed for the SIMD kernels: re-laid row-major and padded to the SIMD width, each layer's product, bias and activation
 // fused in one pass over register tiles (AVX-512 where the build has it, Eigen otherwise).
 // Built once per published model version. Const methods are safe from several threads, each
 // with its own Workspace.
 //
-//   InferenceEnsemble fast(ensemble);
-//   InferenceEnsemble::Workspace ws;
-//   fast.ForwardMember(b, x.data(), rows, mean.data(), log_var.data(), &ws);
+//   PackedEnsemble packed(ensemble);
+//   PackedEnsemble::Workspace ws;
+//   packed.ForwardMember(b, x.data(), rows, mean.data(), log_var.data(), &ws);
 #ifndef FORAY_CORE_MODEL_INFERENCE_H_
 #define FORAY_CORE_MODEL_INFERENCE_H_
 
@@ -19,7 +19,7 @@
 
 namespace foray::model {
 
-class InferenceEnsemble {
+class PackedEnsemble {
  public:
   // Row-major float matrix storage used by the fast path.
   using RowMatrix = RowMatrixXf;
@@ -34,7 +34,7 @@ class InferenceEnsemble {
   };
 
   // Copyable and movable.
-  explicit InferenceEnsemble(const Ensemble& ensemble);
+  explicit PackedEnsemble(const Ensemble& ensemble);
 
   int size() const { return members_; }
   int input_dim() const { return input_dim_; }

@@ -221,7 +221,7 @@ double EnsembleTrainer::HoldoutLoss(const Ensemble& model, const ParallelFor& pa
                                     double* nll, double* bce) const {
   // The same losses as Ensemble::MemberLossAndGradient, through the inference kernels: this
   // evaluation is a forward pass of every member over every holdout row, each epoch.
-  const InferenceEnsemble fast(model);
+  const PackedEnsemble fast(model);
   const int n = static_cast<int>(holdout_y_.size());  // rows * output_dim
   const int rows = static_cast<int>(holdout_x_.rows());
   const bool head = holdout_terminal_.size() != 0;

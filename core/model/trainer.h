@@ -147,8 +147,8 @@ class EnsembleTrainer {
   std::vector<std::vector<int>> member_rows_;  // bootstrap resample per member
   // The evaluation rows (the holdout, or the training rows when there is none), row-major for
   // the inference kernels.
-  InferenceEnsemble::RowMatrix holdout_x_;
-  InferenceEnsemble::RowMatrix holdout_y_;     // (rows, output_dim)
+  PackedEnsemble::RowMatrix holdout_x_;
+  PackedEnsemble::RowMatrix holdout_y_;     // (rows, output_dim)
   Eigen::VectorXf holdout_terminal_;           // (rows), empty without a termination head
   double pos_weight_ = 1.0;                    // w_pos of a terminal row
   int terminal_rows_ = 0;

@@ -25,7 +25,7 @@ constexpr float kDeterministicLogVar = -60.0f;
 EnsembleRolloutModel::EnsembleRolloutModel(const model::Ensemble& ensemble)
     : state_dim_(ensemble.state_dim()),
       action_dim_(ensemble.action_dim()),
-      fast_(ensemble),
+      packed_(ensemble),
       input_mean_(ensemble.input_normalizer().mean()),
       input_inv_std_(ensemble.input_normalizer().std().cwiseInverse()),
       output_mean_(ensemble.output_normalizer().mean()),
@@ -43,13 +43,13 @@ void EnsembleRolloutModel::Evaluate(const float* states, const float* actions, i
                                     MemberPredictions* out) const {
   const int in_dim = state_dim_ + action_dim_;
   const int od = state_dim_ + 1;
-  const int nb = fast_.size();
+  const int nb = packed_.size();
   out->members = nb;
   out->rows = rows;
   out->output_dim = od;
   out->mean.resize(static_cast<size_t>(nb) * rows * od);
   out->log_var.resize(out->mean.size());
-  out->term_logit.resize(fast_.has_termination_head() ? static_cast<size_t>(nb) * rows : 0);
+  out->term_logit.resize(packed_.has_termination_head() ? static_cast<size_t>(nb) * rows : 0);
   out->input.resize(static_cast<size_t>(rows) * in_dim);
   out->scale = output_std_;
   out->offset = output_mean_;
@@ -66,7 +66,7 @@ void EnsembleRolloutModel::Evaluate(const float* states, const float* actions, i
   }
   for (int b = 0; b < nb; ++b) {
     const std::ptrdiff_t at = static_cast<std::ptrdiff_t>(b) * rows * od;
-    fast_.ForwardMember(b, x, rows, out->mean.data() + at, out->log_var.data() + at,
+    packed_.ForwardMember(b, x, rows, out->mean.data() + at, out->log_var.data() + at,
                         &out->forward,
                         out->term_logit.empty() ? nullptr
                                                 : out->term_logit.data() + static_cast<size_t>(b) * rows);

@@ -56,7 +56,7 @@ struct MemberPredictions {
   Eigen::VectorXf offset;  // (output_dim)
   // Scratch a model may use between calls.
   std::vector<float> input;
-  model::InferenceEnsemble::Workspace forward;
+  model::PackedEnsemble::Workspace forward;
 
   // The members' Gaussians over the state delta (the first output_dim - 1 outputs) at every
   // row, in model units: what the information gain is computed on. Borrows this object.
@@ -104,15 +104,16 @@ class RolloutModel {
                         MemberPredictions* out) const = 0;
 };
 
-// The learned ensemble through its inference copy. Built once per published model version.
-// Not copyable (holds the inference copy by value; share it with std::shared_ptr<const>).
+// The learned ensemble through its packed copy (model::PackedEnsemble: the weights laid out for
+// the SIMD kernels). Built once per published model version. Not copyable (holds the packed
+// copy by value; share it with std::shared_ptr<const>).
 class EnsembleRolloutModel final : public RolloutModel {
  public:
   explicit EnsembleRolloutModel(const model::Ensemble& ensemble);
   EnsembleRolloutModel(const EnsembleRolloutModel&) = delete;
   EnsembleRolloutModel& operator=(const EnsembleRolloutModel&) = delete;
 
-  int members() const override { return fast_.size(); }
+  int members() const override { return packed_.size(); }
   int state_dim() const override { return state_dim_; }
   int action_dim() const override { return action_dim_; }
   double FlopsPerMemberRow() const override { return flops_per_member_row_; }
@@ -122,7 +123,7 @@ class EnsembleRolloutModel final : public RolloutModel {
  private:
   const int state_dim_;
   const int action_dim_;
-  const model::InferenceEnsemble fast_;
+  const model::PackedEnsemble packed_;
   Eigen::VectorXf input_mean_, input_inv_std_;  // (input_dim)
   Eigen::VectorXf output_mean_, output_std_;    // (output_dim)
   double flops_per_member_row_ = 0.0;

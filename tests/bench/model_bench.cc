@@ -57,9 +57,9 @@ int main(int argc, char** argv) {
 
   {
     const int rows = 1000;
-    const foray::model::InferenceEnsemble fast(*ensemble);
-    foray::model::InferenceEnsemble::Workspace ws;
-    const foray::model::InferenceEnsemble::RowMatrix x = Random(rows, state_dim + action_dim, 4);
+    const foray::model::PackedEnsemble fast(*ensemble);
+    foray::model::PackedEnsemble::Workspace ws;
+    const foray::model::PackedEnsemble::RowMatrix x = Random(rows, state_dim + action_dim, 4);
     std::vector<float> mean(rows * ensemble->output_dim()), log_var(mean.size());
     std::vector<float> all_mean(mean.size() * fast.size()), all_log_var(all_mean.size());
     const Timing t = Time(

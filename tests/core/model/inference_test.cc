@@ -1,6 +1,7 @@
-// The inference copy computes what the reference ensemble computes (Ensemble::MemberForward,
-// itself checked against PyTorch in torch_parity_test.cc), for shapes that exercise every tile
-// remainder: rows not a multiple of the 6-row tile, widths not a multiple of 16.
+// The packed ensemble (PackedEnsemble, the planner's copy) computes what the reference ensemble
+// computes (Ensemble::MemberForward, itself checked against PyTorch in torch_parity_test.cc),
+// for shapes that exercise every tile remainder: rows not a multiple of the 6-row tile, widths
+// not a multiple of 16.
 
 #include "core/model/inference.h"
 
@@ -15,18 +16,18 @@ namespace {
 
 using Param = std::tuple<Activation, std::vector<int>, int /*state_dim*/, int /*rows*/>;
 
-// Every member of the inference copy of `e` against Ensemble::MemberForward at inputs `x`:
+// Every member of the packed copy of `e` against Ensemble::MemberForward at inputs `x`:
 // means within 1e-5 relative, log-variances within `lv_tolerance`.
 void ExpectMatchesReference(const Ensemble& e, const Eigen::MatrixXf& x, double lv_tolerance,
                             bool require_finite) {
   const int rows = static_cast<int>(x.rows());
-  const InferenceEnsemble::RowMatrix x_rows = x;
-  InferenceEnsemble fast(e);
-  InferenceEnsemble::Workspace ws;
+  const PackedEnsemble::RowMatrix x_rows = x;
+  PackedEnsemble fast(e);
+  PackedEnsemble::Workspace ws;
   for (int b = 0; b < e.size(); ++b) {
     Eigen::MatrixXf mean, log_var, logit;
     e.MemberForward(b, x, &mean, &log_var, &logit);
-    InferenceEnsemble::RowMatrix fast_mean(rows, e.output_dim()), fast_lv(rows, e.output_dim());
+    PackedEnsemble::RowMatrix fast_mean(rows, e.output_dim()), fast_lv(rows, e.output_dim());
     Eigen::VectorXf fast_logit = Eigen::VectorXf::Constant(rows, 123.0f);
     fast.ForwardMember(b, x_rows.data(), rows, fast_mean.data(), fast_lv.data(), &ws,
                        fast_logit.data());
@@ -95,17 +96,17 @@ TEST(InferenceWorkspaceTest, ReusedAcrossModelsGivesEachModelsOwnBounds) {
   second.mutable_max_log_var().array() -= 2.0f;  // bounds that bind at these inputs
   second.mutable_min_log_var().array() += 7.0f;
   const int rows = 40;
-  InferenceEnsemble::RowMatrix x(rows, first->input_dim());
+  PackedEnsemble::RowMatrix x(rows, first->input_dim());
   Rng rng(3);
   for (int i = 0; i < x.size(); ++i) x.data()[i] = static_cast<float>(rng.Normal());
   const int d = first->output_dim();
   std::vector<float> mean(rows * d), used_lv(rows * d), fresh_lv(rows * d);
 
-  InferenceEnsemble::Workspace used;
-  InferenceEnsemble(*first).ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
-  const InferenceEnsemble fast_second(second);
+  PackedEnsemble::Workspace used;
+  PackedEnsemble(*first).ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
+  const PackedEnsemble fast_second(second);
   fast_second.ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
-  InferenceEnsemble::Workspace fresh;
+  PackedEnsemble::Workspace fresh;
   fast_second.ForwardMember(0, x.data(), rows, mean.data(), fresh_lv.data(), &fresh);
   EXPECT_EQ(used_lv, fresh_lv);
 }
