@@ -2,6 +2,11 @@
 // published model version, the planner's warm start, and the training policy. Thread-safe:
 // plans run on the rpc threads while the trainer thread trains; a published model version is
 // immutable and replaced by a pointer swap, so training never blocks planning.
+// Locking: robot_id_ and store_ are constant after construction and plans_waiting_ is atomic;
+// append_mu_ serialises appends (the store write and the mirror's update), publish_mu_
+// serialises publishing (version, checkpoint, swap); both are taken before mu_, which guards
+// everything else (settings, the dataset mirror, the published pointer, the warm start, the
+// episode tracker, latencies). No lock is held while planning or training.
 //
 //   auto runtime = std::make_shared<RobotRuntime>(id, config, store);
 //   FORAY_RETURN_IF_ERROR(runtime->Load());          // transitions and newest checkpoint
