@@ -126,36 +126,14 @@ ProgressView RobotRuntime::Progress() const {
     v.p99_ms = at(0.99);
   }
   // Coverage of the next states on the grid; ranges from the config or from the data.
-  const int sd = config_.state_dim, n = static_cast<int>(rewards_.size());
-  const int cells = config_.coverage_cells;
+  CoverageGrid::View grid = coverage_.Read({config_.coverage_indices, config_.coverage_lower,
+                                            config_.coverage_upper, config_.coverage_cells},
+                                           next_states_, config_.state_dim);
   v.coverage_indices = config_.coverage_indices;
-  v.coverage_cells = cells;
-  v.coverage_lower = config_.coverage_lower;
-  v.coverage_upper = config_.coverage_upper;
-  if (v.coverage_lower.empty()) {
-    v.coverage_lower = {0.0, 0.0};
-    v.coverage_upper = {1.0, 1.0};
-    for (int k = 0; k < 2 && n > 0; ++k) {
-      float lo = next_states_[config_.coverage_indices[k]], hi = lo;
-      for (int r = 1; r < n; ++r) {
-        const float x = next_states_[static_cast<size_t>(r) * sd + config_.coverage_indices[k]];
-        lo = std::min(lo, x);
-        hi = std::max(hi, x);
-      }
-      v.coverage_lower[k] = lo;
-      v.coverage_upper[k] = hi > lo ? hi : lo + 1.0;
-    }
-  }
-  v.coverage_counts.assign(static_cast<size_t>(cells) * cells, 0);
-  for (int r = 0; r < n; ++r) {
-    int cell[2];
-    for (int k = 0; k < 2; ++k) {
-      const double x = next_states_[static_cast<size_t>(r) * sd + config_.coverage_indices[k]];
-      const double u = (x - v.coverage_lower[k]) / (v.coverage_upper[k] - v.coverage_lower[k]);
-      cell[k] = std::clamp(static_cast<int>(u * cells), 0, cells - 1);
-    }
-    ++v.coverage_counts[static_cast<size_t>(cell[0]) * cells + cell[1]];
-  }
+  v.coverage_cells = config_.coverage_cells;
+  v.coverage_lower = std::move(grid.lower);
+  v.coverage_upper = std::move(grid.upper);
+  v.coverage_counts = std::move(grid.counts);
   return v;
 }
 
@@ -257,6 +235,8 @@ void RobotRuntime::AddToDataset(const store::TransitionRecord& t) {
   for (double v : t.state) states_.push_back(static_cast<float>(v));
   for (double v : t.action) actions_.push_back(static_cast<float>(v));
   for (double v : t.next_state) next_states_.push_back(static_cast<float>(v));
+  coverage_.Add(&next_states_[next_states_.size() - t.next_state.size()],
+                static_cast<int>(t.next_state.size()));
   rewards_.push_back(static_cast<float>(t.reward));
   terminals_.push_back(t.terminal ? 1.0f : 0.0f);
   if (t.seq > last_seq_) last_seq_ = t.seq;
@@ -371,6 +351,7 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
   states_.clear();
   actions_.clear();
   next_states_.clear();
+  coverage_ = CoverageGrid();  // the rows come back in seq order: bin them anew
   rewards_.clear();
   terminals_.clear();
   last_seq_ = 0;

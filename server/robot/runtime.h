@@ -36,6 +36,7 @@
 #include "core/util/parallel.h"
 #include "foray/v1/types.pb.h"
 #include "server/robot/config.h"
+#include "server/robot/coverage.h"
 #include "server/store/store.h"
 
 namespace foray::robot {
@@ -275,6 +276,9 @@ class RobotRuntime {
   bool evaluate_next_ ABSL_GUARDED_BY(mu_) = false;
   EpisodeTally exploration_ ABSL_GUARDED_BY(mu_);
   EpisodeTally evaluation_ ABSL_GUARDED_BY(mu_);
+  // Visit counts for the progress view, kept up to date with the dataset (Progress is not
+  // const in effect: reading it bins the rows added since the last read).
+  mutable CoverageGrid coverage_ ABSL_GUARDED_BY(mu_);
   std::vector<double> latencies_ms_ ABSL_GUARDED_BY(mu_);       // ring of the last 1,000
   uint64_t deadline_misses_ ABSL_GUARDED_BY(mu_) = 0;
 
