@@ -471,9 +471,9 @@ grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
       v1::ProgressEvent event;
       event.set_robot_id(r.robot_id);
       *event.mutable_at() = ToTimestamp(r.at);
-      if (r.kind == "training") {
+      if (r.kind == store::ProgressKind::kTraining) {
         event.mutable_training()->ParseFromString(r.payload);
-      } else if (r.kind == "episode") {
+      } else if (r.kind == store::ProgressKind::kEpisode) {
         event.mutable_episode()->ParseFromString(r.payload);
       } else {
         continue;

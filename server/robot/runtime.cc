@@ -215,7 +215,7 @@ void RobotRuntime::RecordProgress() {
     store::ProgressRecord record;
     record.robot_id = robot_id_;
     record.at = e.ended_at;
-    record.kind = "episode";
+    record.kind = store::ProgressKind::kEpisode;
     record.payload = summary.SerializeAsString();
     // Progress is informational: a failed write must not fail the transitions' ack.
     store_->AppendProgress(record).IgnoreError();
@@ -297,7 +297,7 @@ absl::Status RobotRuntime::Load() {
     if (!records.ok()) return records.status();
     for (const store::ProgressRecord& r : *records) {
       v1::EpisodeSummary summary;
-      if (r.kind == "episode" && summary.ParseFromString(r.payload) && summary.evaluation()) {
+      if (r.kind == store::ProgressKind::kEpisode && summary.ParseFromString(r.payload) && summary.evaluation()) {
         evaluated.push_back(summary.episode());
       }
       after = r.row;
@@ -495,7 +495,7 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
   store::ProgressRecord record;
   record.robot_id = robot_id_;
   record.at = published->finished_at;
-  record.kind = "training";
+  record.kind = store::ProgressKind::kTraining;
   record.payload = checkpoint.report;
   store_->AppendProgress(record).IgnoreError();  // informational, like episode records
   return published;

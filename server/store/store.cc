@@ -377,13 +377,22 @@ absl::StatusOr<std::pair<uint64_t, uint64_t>> Store::TransitionSummary(
   return std::make_pair(static_cast<uint64_t>(st.Int(0)), static_cast<uint64_t>(st.Int(1)));
 }
 
+namespace {
+
+constexpr char kTrainingText[] = "training", kEpisodeText[] = "episode";
+
+}  // namespace
+
 absl::Status Store::AppendProgress(const ProgressRecord& record) {
+  if (record.kind == ProgressKind::kUnknown) {
+    return absl::InvalidArgumentError("a progress record needs a kind (training or episode)");
+  }
   absl::MutexLock lock(&mu_);
   Statement st(db_, "INSERT INTO progress (robot_id, at_us, kind, payload) VALUES (?, ?, ?, ?)");
   if (!st.ok()) return SqlError(db_, "preparing a progress insert");
   st.BindText(1, record.robot_id);
   st.Bind(2, Micros(record.at));
-  st.BindText(3, record.kind);
+  st.BindText(3, record.kind == ProgressKind::kTraining ? kTrainingText : kEpisodeText);
   st.BindBlob(4, record.payload);
   if (st.Step() != SQLITE_DONE) return SqlError(db_, "writing a progress record");
   return absl::OkStatus();
@@ -409,7 +418,10 @@ absl::StatusOr<std::vector<ProgressRecord>> Store::ReadProgress(int64_t after_ro
     r.row = st.Int(0);
     r.robot_id = st.Text(1);
     r.at = absl::FromUnixMicros(st.Int(2));
-    r.kind = st.Text(3);
+    const std::string kind = st.Text(3);
+    r.kind = kind == kTrainingText ? ProgressKind::kTraining
+             : kind == kEpisodeText ? ProgressKind::kEpisode
+                                    : ProgressKind::kUnknown;
     r.payload = st.Blob(4);
     out.push_back(std::move(r));
   }

@@ -60,13 +60,17 @@ struct CheckpointRecord {
   uint64_t size_bytes = 0;
 };
 
+// What a progress record holds; stored as the text "training" or "episode". A kind this
+// version does not know (written by a newer one) reads as kUnknown and is skipped by readers.
+enum class ProgressKind { kUnknown, kTraining, kEpisode };
+
 // One progress record: a training report or an episode summary, as serialised wire messages.
 struct ProgressRecord {
   int64_t row = 0;  // increasing with every record written
   std::string robot_id;
   absl::Time at;
-  std::string kind;     // "training" or "episode"
-  std::string payload;  // serialised foray.v1.TrainingReport or foray.v1.EpisodeSummary
+  ProgressKind kind = ProgressKind::kUnknown;
+  std::string payload;  // serialised foray.v1.TrainingReport (kTraining) or foray.v1.EpisodeSummary (kEpisode)
 };
 
 class Store {

@@ -196,7 +196,7 @@ std::string HistoryJson(const store::Store& store, const std::string& robot_id) 
   auto records = store.ReadProgress(0, absl::InfinitePast(), robot_id, 100000);
   if (records.ok()) {
     for (const store::ProgressRecord& r : *records) {
-      if (r.kind == "episode") {
+      if (r.kind == store::ProgressKind::kEpisode) {
         v1::EpisodeSummary e;
         if (!e.ParseFromString(r.payload)) continue;
         absl::StrAppend(&episodes, episodes.empty() ? "" : ", ", "{\"episode\": ", e.episode(),
@@ -205,7 +205,7 @@ std::string HistoryJson(const store::Store& store, const std::string& robot_id) 
                         ", \"evaluation\": ", e.evaluation() ? "true" : "false",
                         ", \"success\": ", e.success() ? "true" : "false",
                         ", \"terminal\": ", e.terminal() ? "true" : "false", "}");
-      } else if (r.kind == "training") {
+      } else if (r.kind == store::ProgressKind::kTraining) {
         v1::TrainingReport t;
         if (!t.ParseFromString(r.payload)) continue;
         absl::StrAppend(&trainings, trainings.empty() ? "" : ", ", "{\"model_version\": ",

@@ -16,8 +16,8 @@ class StoreTest : public ::testing::Test {
  protected:
   void SetUp() override {
     dir_ = std::filesystem::temp_directory_path() /
-           ("foray-store-" + std::to_string(::testing::UnitTest::GetInstance()->random_seed()) + "-" +
-            ::testing::UnitTest::GetInstance()->current_test_info()->name());
+           ("foray-store-" + std::to_string(::testing::UnitTest::GetInstance()->random_seed()) +
+            "-" + ::testing::UnitTest::GetInstance()->current_test_info()->name());
     std::filesystem::remove_all(dir_);
     std::filesystem::create_directories(dir_);
     path_ = (dir_ / "foray.db").string();
@@ -185,6 +185,43 @@ TEST_F(StoreTest, CheckpointsNewestFirstAndByVersion) {
   EXPECT_EQ(newest->model, std::string(300, '\3'));
   EXPECT_EQ(store->GetCheckpoint("r-1", 2)->report, "report 2");
   EXPECT_EQ(store->GetCheckpoint("r-1", 7).status().code(), absl::StatusCode::kNotFound);
+}
+
+TEST_F(StoreTest, ProgressRecordsKeepTheirKindAndAnUnknownKindReadsAsUnknown) {
+  {
+    auto store = OpenOrDie();
+    ASSERT_TRUE(store->InsertRobot(Robot("r-1")).ok());
+    ProgressRecord training{.robot_id = "r-1",
+                            .at = absl::FromUnixSeconds(1700000001),
+                            .kind = ProgressKind::kTraining,
+                            .payload = "report"};
+    ProgressRecord episode = training;
+    episode.kind = ProgressKind::kEpisode;
+    episode.payload = "summary";
+    ASSERT_TRUE(store->AppendProgress(training).ok());
+    ASSERT_TRUE(store->AppendProgress(episode).ok());
+    ProgressRecord none = training;
+    none.kind = ProgressKind::kUnknown;
+    EXPECT_EQ(store->AppendProgress(none).code(), absl::StatusCode::kInvalidArgument);
+  }
+  // A record of a kind a newer version might write.
+  sqlite3* db = nullptr;
+  ASSERT_EQ(sqlite3_open(path_.c_str(), &db), SQLITE_OK);
+  ASSERT_EQ(sqlite3_exec(db,
+                         "INSERT INTO progress (robot_id, at_us, kind, payload) "
+                         "VALUES ('r-1', 1700000002000000, 'calibration', x'00')",
+                         nullptr, nullptr, nullptr),
+            SQLITE_OK);
+  sqlite3_close(db);
+  auto store = OpenOrDie();
+  auto records = store->ReadProgress(0, absl::InfinitePast(), "r-1");
+  ASSERT_TRUE(records.ok()) << records.status();
+  ASSERT_EQ(records->size(), 3u);
+  EXPECT_EQ((*records)[0].kind, ProgressKind::kTraining);
+  EXPECT_EQ((*records)[0].payload, "report");
+  EXPECT_EQ((*records)[1].kind, ProgressKind::kEpisode);
+  EXPECT_EQ((*records)[1].payload, "summary");
+  EXPECT_EQ((*records)[2].kind, ProgressKind::kUnknown);
 }
 
 }  // namespace
