@@ -21,9 +21,10 @@ absl::StatusOr<robot::PlanOutcome> PlanScheduler::Plan(robot::RobotRuntime& runt
   absl::StatusOr<PlanGate::Ticket> ticket = gate_->Enter(input.deadline);
   runtime.AddPlansWaiting(-1);
   if (!ticket.ok()) return ticket.status();
-  // Idle cores join this plan: its rollouts are split over them.
-  const int threads = 1 + ticket->Borrow(gate_->slots() - 1);
-  if (threads > 1 && helpers_ != nullptr) {
+  // Idle cores join this plan: its rollouts are split over them (none without helpers to run
+  // them, so that no core is held idle).
+  const int threads = helpers_ != nullptr ? 1 + ticket->Borrow(gate_->slots() - 1) : 1;
+  if (threads > 1) {
     input.context.tasks = threads;
     input.context.parallel = helpers_->ParallelFor();
   }

@@ -21,7 +21,8 @@ namespace foray::sched {
 
 class PlanScheduler {
  public:
-  // `gate` and `helpers` must outlive the scheduler. plans_per_s: each robot's limit (0: none),
+  // `gate` and `helpers` (may be null: plans then run on their rpc's thread alone) must outlive
+  // the scheduler. plans_per_s: each robot's limit (0: none),
   // with two seconds' worth of burst.
   PlanScheduler(PlanGate* gate, HelperPool* helpers, double plans_per_s);
   PlanScheduler(const PlanScheduler&) = delete;

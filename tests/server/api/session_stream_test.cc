@@ -13,19 +13,12 @@
 #include "absl/strings/match.h"
 #include "absl/time/clock.h"
 #include "gtest/gtest.h"
+#include "tests/server/cart_config.h"
 
 namespace foray::api {
 namespace {
 
-robot::RobotConfig Cart() {
-  robot::RobotConfig config;
-  config.name = "stream-cart";
-  config.state_dim = 2;
-  config.action_dim = 1;
-  config.limits = plan::SequenceLimits::Box(Eigen::VectorXf::Constant(1, -1.0f),
-                                            Eigen::VectorXf::Constant(1, 1.0f));
-  return config;
-}
+robot::RobotConfig Cart() { return test_configs::CartConfig("stream-cart"); }
 
 v1::SessionClientMessage Transition(uint64_t seq, double action = 0.5) {
   v1::SessionClientMessage m;

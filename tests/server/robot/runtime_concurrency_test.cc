@@ -26,6 +26,7 @@
 #include "server/sched/plan_scheduler.h"
 #include "server/sched/training_loop.h"
 #include "server/store/store.h"
+#include "tests/server/cart_config.h"
 
 namespace foray {
 namespace {
@@ -34,12 +35,7 @@ constexpr int kStateDim = 2;
 constexpr int kActionDim = 1;
 
 robot::RobotConfig SmallRobot() {
-  robot::RobotConfig config;
-  config.name = "concurrency-cart";
-  config.state_dim = kStateDim;
-  config.action_dim = kActionDim;
-  config.limits = plan::SequenceLimits::Box(Eigen::VectorXf::Constant(1, -1.0f),
-                                            Eigen::VectorXf::Constant(1, 1.0f));
+  robot::RobotConfig config = test_configs::CartConfig("concurrency-cart");
   config.control_period_s = 0.05;
   config.ensemble.ensemble_size = 3;
   config.ensemble.hidden_widths = {16, 16};
