@@ -3,8 +3,8 @@
 # AddressSanitizer + UndefinedBehaviorSanitizer (build-asan/): the server's and clients'
 #     tests, the crash, network-fault and bad-input tests, the router test.
 # ThreadSanitizer (build-tsan/): the server's concurrency tests without the network (robot
-#     runtime, trainer thread, plan gate, store, directory, the trainer's and the planner's
-#     split over threads) and the server's, clients' and
+#     runtime, trainer thread, plan gate and scheduler, session stream inbox, store, directory,
+#     the trainer's and the planner's split over threads) and the server's, clients' and
 #     fault tests over loopback. Debian's Abseil is rebuilt for TSan from its own source
 #     (tests/build_tsan_abseil.sh) and the TSan binaries load it through their RPATH, so every
 #     absl::Mutex, gRPC's too, is seen. gRPC and protobuf themselves are not rebuilt: reports
@@ -25,7 +25,7 @@ cmake -S . -B build-asan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo -DFORAY_PORT
   -DFORAY_SANITIZE="address;undefined" >/dev/null
 cmake --build build-asan --parallel "$(nproc)"
 (cd build-asan && ctest --output-on-failure --parallel "$(nproc)" \
-  -R '^(server\.|client\.|reliability\.|deploy\.|interop\.|Store|PlanGate|SpecFile|TableFiles|RuntimeConcurrency|DirectoryConcurrency|HelperPool)')
+  -R '^(server\.|client\.|reliability\.|deploy\.|interop\.|Store|PlanGate|PlanScheduler|SessionCommitter|Inbox|ConvertTest|CoverageGrid|SpecFile|TableFiles|RuntimeConcurrency|DirectoryConcurrency|HelperPool)')
 
 ./tests/build_tsan_abseil.sh build-tsan-abseil/prefix
 cmake -S . -B build-tsan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo -DFORAY_PORTABLE=ON \
@@ -39,4 +39,4 @@ if ! ldd build-tsan/server/forayd | grep -q "libabsl_synchronization.so.* => $PW
   exit 1
 fi
 (cd build-tsan && ctest --output-on-failure --parallel "$(nproc)" \
-  -R '^(RuntimeConcurrency|DirectoryConcurrency|HelperPool|TrainingSplit|PlanGate|Store|PlannerTest\.Parallel|TrainerTest\.Parallel|server\.|client\.|reliability\.(network_faults|rate_limits|bad_input|storage_faults)|interop\.)')
+  -R '^(RuntimeConcurrency|DirectoryConcurrency|HelperPool|TrainingSplit|PlanGate|PlanScheduler|SessionCommitter|Inbox|Store|PlannerTest\.Parallel|TrainerTest\.Parallel|server\.|client\.|reliability\.(network_faults|rate_limits|bad_input|storage_faults)|interop\.)')
