@@ -12,12 +12,18 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "server"))
 from conftest import forayd  # noqa: F401,E402  (the fixture)
 
 
+# Under the sanitizers a plan takes about a second (one CEM iteration always runs, whatever the
+# deadline), so a run of a few episodes takes minutes there (69 s for this file on an idle
+# 2-core machine under TSan, 131 s with other builds running).
+RUN_TIMEOUT_S = 600 if os.environ.get("FORAY_SANITIZED") else 120
+
+
 def run_sim(server, *args):
     return subprocess.run(
         [os.environ["FORAY_SIM"], f"--address={server.address}",
          f"--admin_token_file={os.path.join(server.data_dir, 'admin-token')}",
          f"--state_dir={os.path.join(server.data_dir, 'sim')}", *args],
-        capture_output=True, text=True, timeout=120)
+        capture_output=True, text=True, timeout=RUN_TIMEOUT_S)
 
 
 def stored(server):
