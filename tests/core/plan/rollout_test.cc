@@ -187,15 +187,21 @@ TEST(RolloutTest, DiscountGivesTheGeometricSeries) {
   EXPECT_NEAR(score, (1.0 - std::pow(0.9, 10)) / (1.0 - 0.9), 1e-5);
 }
 
+// An objective of the information term alone, by the pairwise-KL estimator.
+explore::ObjectiveOptions PairwiseKlInformationOnly() {
+  explore::ObjectiveOptions objective;
+  objective.reward_weight = 0.0;
+  objective.information_weight = 1.0;
+  objective.estimator = explore::Estimator::kPairwiseKl;
+  return objective;
+}
+
 TEST(RolloutTest, InformationTermIsThePairwiseKlBoundAtEveryStep) {
   // Two members whose delta means differ by 2 with unit variances, everywhere. KL between them
   // is 1/2 * (mu_1 - mu_2)^2 / var = 2 both ways, so (Kolchinsky & Tracey 2017)
   // I_KL = -(1/2) sum_i ln((1 + e^-2) / 2) = ln 2 - ln(1 + e^-2) per step.
   const OffsetMembersModel model(1, 1, {-1.0f, 1.0f}, 1.0f);
-  explore::ObjectiveOptions objective;
-  objective.reward_weight = 0.0;
-  objective.information_weight = 1.0;
-  objective.estimator = explore::Estimator::kPairwiseKl;
+  explore::ObjectiveOptions objective = PairwiseKlInformationOnly();
   RolloutOptions options;
   options.horizon = 4;
   options.particles = 6;
@@ -217,10 +223,7 @@ TEST(RolloutTest, ObservationNoiseFloorsTheVariancesOfTheInformationTerm) {
   // members give KL = 1/2 * 0.002^2 / 0.0025 = 8e-4 both ways and I_KL = ln 2 - ln(1 + e^-8e-4)
   // (Kolchinsky & Tracey 2017, KL between Gaussians of equal variance).
   const OffsetMembersModel model(1, 1, {-0.001f, 0.001f}, 1e-8f);
-  explore::ObjectiveOptions objective;
-  objective.reward_weight = 0.0;
-  objective.information_weight = 1.0;
-  objective.estimator = explore::Estimator::kPairwiseKl;
+  explore::ObjectiveOptions objective = PairwiseKlInformationOnly();
   RolloutOptions options;
   options.horizon = 2;
   options.particles = 4;
