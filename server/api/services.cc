@@ -209,16 +209,6 @@ grpc::Status SessionService::Connect(
 
 namespace {
 
-absl::StatusOr<std::shared_ptr<const robot::PublishedModel>> PublishedOf(const RobotEntry& entry) {
-  std::shared_ptr<const robot::PublishedModel> model = entry.runtime->published();
-  if (model == nullptr) {
-    return absl::FailedPreconditionError(absl::StrFormat(
-        "robot \"%s\" has no model yet; it trains once it has %d transitions",
-        entry.spec.name(), entry.runtime->config().policy.min_transitions));
-  }
-  return model;
-}
-
 absl::Status PredictRows(const RobotEntry& entry, const v1::PredictRequest& request,
                          v1::PredictResponse* response) {
   const robot::RobotConfig config = entry.runtime->config();
@@ -338,7 +328,7 @@ grpc::Status ModelsService::ExportModel(grpc::ServerContext* context,
   auto entry = directory_->Authorize(*context, request->robot_id(), /*admin_ok=*/true);
   if (!entry.ok()) return ToGrpc(entry.status());
   if (request->model_version() == 0) {
-    auto model = PublishedOf(**entry);
+    auto model = (*entry)->runtime->RequirePublished();
     if (!model.ok()) return ToGrpc(model.status());
     *response = EnsembleToWire((*model)->ensemble);
     return grpc::Status::OK;

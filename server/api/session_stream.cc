@@ -106,7 +106,7 @@ std::vector<v1::SessionServerMessage> SessionCommitter::Answer(
           0));
     }
   }
-  if (!stopped_) Commit(&replies);
+  Commit(&replies);  // nothing left after a failed group: it was cleared
   return replies;
 }
 

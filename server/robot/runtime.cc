@@ -640,21 +640,23 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainAndWait
   return published_;
 }
 
+absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::RequirePublished() const {
+  absl::MutexLock lock(&mu_);
+  if (published_ == nullptr) {
+    return absl::FailedPreconditionError(
+        absl::StrFormat("robot \"%s\" has no model yet; it trains once it has %d transitions",
+                        config_.name, config_.policy.min_transitions));
+  }
+  return published_;
+}
+
 absl::StatusOr<RobotRuntime::Prediction> RobotRuntime::Predict(
     const std::vector<float>& states, const std::vector<float>& actions, int rows,
     const explore::ObjectiveOptions& objective) const {
-  std::shared_ptr<const PublishedModel> model;
-  RobotConfig config;
-  {
-    absl::MutexLock lock(&mu_);
-    model = published_;
-    config = config_;
-  }
-  if (model == nullptr) {
-    return absl::FailedPreconditionError(
-        absl::StrFormat("robot \"%s\" has no model yet; it trains once it has %d transitions",
-                        config.name, config.policy.min_transitions));
-  }
+  absl::StatusOr<std::shared_ptr<const PublishedModel>> published = RequirePublished();
+  if (!published.ok()) return published.status();
+  const std::shared_ptr<const PublishedModel>& model = *published;
+  const RobotConfig config = this->config();
   const int sd = config.state_dim;
   if (rows < 1 || states.size() != static_cast<size_t>(rows) * sd ||
       actions.size() != static_cast<size_t>(rows) * config.action_dim) {

@@ -155,6 +155,8 @@ class RobotRuntime {
   RobotStatus Status() const;
   ProgressView Progress() const;
   std::shared_ptr<const PublishedModel> published() const;
+  // The published model, or FailedPrecondition saying when the robot will have one.
+  absl::StatusOr<std::shared_ptr<const PublishedModel>> RequirePublished() const;
 
   // Mirrors the stored transitions and publishes the newest checkpoint that decodes, without
   // retraining. Unreadable checkpoints are skipped and listed in load_problems(); when none can
