@@ -25,7 +25,7 @@ cmake -S . -B build-asan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo -DFORAY_PORT
   -DFORAY_SANITIZE="address;undefined" >/dev/null
 cmake --build build-asan --parallel "$(nproc)"
 (cd build-asan && ctest --output-on-failure --parallel "$(nproc)" \
-  -R '^(server\.|client\.|reliability\.|deploy\.|interop\.|Store|PlanGate|PlanScheduler|SessionCommitter|Inbox|ConvertTest|CoverageGrid|SpecFile|TableFiles|RuntimeConcurrency|DirectoryConcurrency|HelperPool)')
+  -R '^(server\.|client\.|reliability\.|deploy\.|interop\.|Store|PlanGate|PlanScheduler|SessionCommitter|Inbox|ConvertTest|CoverageGrid|EpisodeTracker|DatasetMirror|PlanState|RecordsTest|SpecFile|TableFiles|RuntimeConcurrency|DirectoryConcurrency|HelperPool)')
 
 ./tests/build_tsan_abseil.sh build-tsan-abseil/prefix
 cmake -S . -B build-tsan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo -DFORAY_PORTABLE=ON \

@@ -48,14 +48,6 @@ float FloatAtMost(double x) {
   return f;
 }
 
-google::protobuf::Timestamp ToTimestamp(absl::Time t) {
-  google::protobuf::Timestamp ts;
-  const int64_t micros = absl::ToUnixMicros(t);
-  ts.set_seconds(micros / 1000000);
-  ts.set_nanos(static_cast<int32_t>(micros % 1000000) * 1000);
-  return ts;
-}
-
 grpc::Status ToGrpc(const absl::Status& status) {
   if (status.ok()) return grpc::Status::OK;
   // absl and gRPC share the canonical code numbers.
@@ -346,8 +338,7 @@ absl::StatusOr<std::vector<store::TransitionRecord>> TransitionsFromWire(
     r.reward = t.reward();
     r.terminal = t.terminal();
     if (t.has_measured_at()) {
-      r.measured_at = absl::FromUnixSeconds(t.measured_at().seconds()) +
-                      absl::Nanoseconds(t.measured_at().nanos());
+      r.measured_at = store::TimeFromWire(t.measured_at());
     }
     out.push_back(std::move(r));
   }

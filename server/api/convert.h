@@ -17,6 +17,7 @@
 #include "grpcpp/support/status.h"
 #include "server/robot/runtime.h"
 #include "server/robot/config.h"
+#include "server/store/records_wire.h"
 #include "server/store/store.h"
 
 namespace foray::api {
@@ -24,9 +25,6 @@ namespace foray::api {
 // The nearest float >= x and <= x: the planner's float limits are rounded inward with these.
 float FloatAtLeast(double x);
 float FloatAtMost(double x);
-
-// absl::Time as a protobuf Timestamp (microsecond resolution).
-google::protobuf::Timestamp ToTimestamp(absl::Time t);
 
 // The one place where absl::Status becomes grpc::Status.
 grpc::Status ToGrpc(const absl::Status& status);

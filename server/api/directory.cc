@@ -216,7 +216,7 @@ v1::Robot RobotDirectory::ToWire(const RobotEntry& entry) {
   v1::Robot r;
   r.set_robot_id(entry.robot_id);
   *r.mutable_spec() = entry.spec;
-  *r.mutable_created_at() = ToTimestamp(entry.created_at);
+  *r.mutable_created_at() = store::TimeToWire(entry.created_at);
   r.set_archived(entry.archived);
   const robot::RobotStatus status = entry.runtime->Status();
   r.set_last_seq(status.last_seq);

@@ -8,6 +8,7 @@
 #include "absl/strings/str_format.h"
 #include "server/api/convert.h"
 #include "server/api/session_stream.h"
+#include "server/store/records_wire.h"
 
 namespace foray::api {
 namespace {
@@ -38,7 +39,7 @@ void PlanToWire(const robot::PlanOutcome& outcome, const robot::RobotConfig& con
   plan->set_compute_ms(outcome.compute_ms);
   // A plan is worth executing for at most its horizon of control periods.
   *plan->mutable_valid_until() =
-      ToTimestamp(absl::Now() + absl::Seconds(config.control_period_s * horizon));
+      store::TimeToWire(absl::Now() + absl::Seconds(config.control_period_s * horizon));
   plan->set_request_id(request_id);
   plan->set_evaluation(outcome.evaluation);
 }
@@ -287,7 +288,7 @@ grpc::Status ModelsService::TrainNow(grpc::ServerContext* context,
   // Bounded by the call's deadline (cancellation) and by ten minutes.
   auto model = runtime.TrainAndWait(absl::Now() + absl::Minutes(10), [context] { return context->IsCancelled(); });
   if (!model.ok()) return ToGrpc(model.status());
-  *response->mutable_report() = robot::ReportToWire(**model);
+  *response->mutable_report() = store::TrainingToWire((*model)->training());
   return grpc::Status::OK;
 }
 
@@ -318,7 +319,7 @@ grpc::Status ModelsService::RestoreCheckpoint(grpc::ServerContext* context,
   }
   auto published = (*entry)->runtime->RestoreCheckpoint(request->model_version());
   if (!published.ok()) return ToGrpc(published.status());
-  *response = robot::ReportToWire(**published);
+  *response = store::TrainingToWire((*published)->training());
   return grpc::Status::OK;
 }
 
@@ -348,7 +349,7 @@ grpc::Status ModelsService::ImportModel(grpc::ServerContext* context,
   if (!ensemble.ok()) return ToGrpc(ensemble.status());
   auto published = (*entry)->runtime->PublishModel(*std::move(ensemble), model::TrainingReport{});
   if (!published.ok()) return ToGrpc(published.status());
-  *response = robot::ReportToWire(**published);
+  *response = store::TrainingToWire((*published)->training());
   return grpc::Status::OK;
 }
 
@@ -362,17 +363,9 @@ v1::RobotProgress ProgressToWire(const RobotEntry& entry) {
   out.set_transitions(p.status.transitions);
   out.set_episodes(p.episodes);
   out.set_model_version(p.status.model_version);
-  if (p.model) *out.mutable_last_training() = robot::ReportToWire(*p.model);
+  if (p.model) *out.mutable_last_training() = store::TrainingToWire(p.model->training());
   if (p.last_episode) {
-    v1::EpisodeSummary* e = out.mutable_last_episode();
-    e->set_episode(p.last_episode->episode);
-    e->set_steps(static_cast<uint32_t>(p.last_episode->steps));
-    e->set_return_(p.last_episode->episode_return);
-    e->set_information_gain(p.last_episode->information_gain);
-    *e->mutable_ended_at() = ToTimestamp(p.last_episode->ended_at);
-    e->set_evaluation(p.last_episode->evaluation);
-    e->set_success(p.last_episode->success);
-    e->set_terminal(p.last_episode->terminal);
+    *out.mutable_last_episode() = store::EpisodeToWire(*p.last_episode);
   }
   for (auto [tally, wire] : {std::pair{&p.exploration, out.mutable_exploration()},
                              std::pair{&p.evaluation, out.mutable_evaluation()}}) {
@@ -429,7 +422,7 @@ grpc::Status MonitoringService::GetProgress(grpc::ServerContext* context,
   auto robots = Visible(*context, request->robot_id());
   if (!robots.ok()) return ToGrpc(robots.status());
   for (const auto& entry : *robots) *response->add_robots() = ProgressToWire(*entry);
-  *response->mutable_taken_at() = ToTimestamp(absl::Now());
+  *response->mutable_taken_at() = store::TimeToWire(absl::Now());
   return grpc::Status::OK;
 }
 
@@ -444,14 +437,11 @@ grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
   for (const auto& entry : *robots) {
     v1::ProgressEvent event;
     event.set_robot_id(entry->robot_id);
-    *event.mutable_at() = ToTimestamp(absl::Now());
+    *event.mutable_at() = store::TimeToWire(absl::Now());
     *event.mutable_snapshot() = ProgressToWire(*entry);
     if (!watched.Write(writer, event)) return grpc::Status::OK;
   }
-  const absl::Time since = request->has_since()
-                               ? absl::FromUnixSeconds(request->since().seconds()) +
-                                     absl::Nanoseconds(request->since().nanos())
-                               : absl::Now();
+  const absl::Time since = request->has_since() ? store::TimeFromWire(request->since()) : absl::Now();
   int64_t after_row = 0;
   while (!context->IsCancelled()) {
     auto records = directory_->store()->ReadProgress(after_row, since, request->robot_id());
@@ -460,7 +450,7 @@ grpc::Status MonitoringService::WatchProgress(grpc::ServerContext* context,
       after_row = r.row;
       v1::ProgressEvent event;
       event.set_robot_id(r.robot_id);
-      *event.mutable_at() = ToTimestamp(r.at);
+      *event.mutable_at() = store::TimeToWire(r.at);
       if (r.kind == store::ProgressKind::kTraining) {
         event.mutable_training()->ParseFromString(r.payload);
       } else if (r.kind == store::ProgressKind::kEpisode) {
@@ -507,7 +497,7 @@ grpc::Status MonitoringService::ExportTransitions(grpc::ServerContext* context,
     for (double v : t.next_state) out->add_next_state(v);
     out->set_reward(t.reward);
     out->set_terminal(t.terminal);
-    *out->mutable_measured_at() = ToTimestamp(t.measured_at);
+    *out->mutable_measured_at() = store::TimeToWire(t.measured_at);
     if (batch.transitions_size() == 1000 && !send()) return grpc::Status::OK;
   }
   if (batch.transitions_size() > 0) send();

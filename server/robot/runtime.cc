@@ -10,47 +10,8 @@
 #include "core/model/serialize.h"
 #include "core/util/matrix.h"
 #include "core/util/random.h"
-#include "foray/v1/monitoring.pb.h"
-#include "foray/v1/types.pb.h"
 
 namespace foray::robot {
-namespace {
-
-}  // namespace
-
-v1::TrainingReport ReportToWire(const PublishedModel& m) {
-  v1::TrainingReport r;
-  r.set_model_version(m.version);
-  r.set_epochs(static_cast<uint32_t>(m.report.epochs));
-  r.set_transitions(static_cast<uint64_t>(m.report.transitions));
-  r.set_train_nll(m.report.train_nll);
-  r.set_holdout_nll(m.report.holdout_nll);
-  r.set_holdout_mse(m.report.holdout_mse);
-  for (double v : m.report.within_1sigma) r.add_within_1sigma(v);
-  for (double v : m.report.within_2sigma) r.add_within_2sigma(v);
-  r.set_terminal_transitions(static_cast<uint64_t>(m.report.terminal_rows));
-  r.set_terminal_weight(m.report.terminal_pos_weight);
-  r.set_holdout_termination_bce(m.report.holdout_termination_bce);
-  r.set_duration_s(m.training_seconds);
-  r.mutable_finished_at()->set_seconds(absl::ToUnixSeconds(m.finished_at));
-  return r;
-}
-
-model::TrainingReport ReportFromWire(const v1::TrainingReport& r, double* seconds) {
-  model::TrainingReport out;
-  out.epochs = static_cast<int>(r.epochs());
-  out.transitions = static_cast<int>(r.transitions());
-  out.train_nll = r.train_nll();
-  out.holdout_nll = r.holdout_nll();
-  out.holdout_mse = r.holdout_mse();
-  out.within_1sigma.assign(r.within_1sigma().begin(), r.within_1sigma().end());
-  out.within_2sigma.assign(r.within_2sigma().begin(), r.within_2sigma().end());
-  out.terminal_rows = static_cast<int>(r.terminal_transitions());
-  out.terminal_pos_weight = r.terminal_weight();
-  out.holdout_termination_bce = r.holdout_termination_bce();
-  if (seconds != nullptr) *seconds = r.duration_s();
-  return out;
-}
 
 namespace {
 
@@ -71,7 +32,10 @@ std::shared_ptr<const PublishedModel> MakePublished(uint64_t version, model::Ens
 }  // namespace
 
 RobotRuntime::RobotRuntime(std::string robot_id, RobotConfig config, store::Store* store)
-    : robot_id_(std::move(robot_id)), store_(store), config_(std::move(config)) {}
+    : robot_id_(std::move(robot_id)),
+      store_(store),
+      config_(std::move(config)),
+      dataset_(config_.state_dim, config_.action_dim) {}
 
 RobotConfig RobotRuntime::config() const {
   absl::MutexLock lock(&mu_);
@@ -87,7 +51,7 @@ void RobotRuntime::UpdateSettings(const plan::PlannerOptions& planner,
   config_.objective = objective;
   config_.training = training;
   config_.policy = policy;
-  warm_start_.reset();  // the horizon may have changed
+  plan_state_.ForgetWarmStart();  // the horizon may have changed
 }
 
 RobotStatus RobotRuntime::Status() const {
@@ -97,8 +61,8 @@ RobotStatus RobotRuntime::Status() const {
 
 RobotStatus RobotRuntime::StatusLocked() const {
   RobotStatus s;
-  s.last_seq = last_seq_;
-  s.transitions = rewards_.size();
+  s.last_seq = dataset_.last_seq();
+  s.transitions = dataset_.size();
   s.model_version = published_ ? published_->version : 0;
   s.training = training_;
   return s;
@@ -108,27 +72,22 @@ ProgressView RobotRuntime::Progress() const {
   absl::MutexLock lock(&mu_);
   ProgressView v;
   v.status = StatusLocked();
-  v.episodes = episodes_;
-  v.last_episode = last_episode_record_;
+  v.episodes = episodes_.episodes();
+  v.last_episode = episodes_.last();
   v.model = published_;
-  v.plans = plans_;
-  v.deadline_misses = deadline_misses_;
+  v.plans = plan_state_.plans();
+  v.deadline_misses = plan_state_.deadline_misses();
   v.plans_waiting = plans_waiting_.load(std::memory_order_relaxed);
   v.training_due = WantsTrainingLocked();
-  v.exploration = exploration_;
-  v.evaluation = evaluation_;
-  if (!latencies_ms_.empty()) {
-    std::vector<double> sorted = latencies_ms_;
-    std::sort(sorted.begin(), sorted.end());
-    auto at = [&](double q) { return sorted[static_cast<size_t>(q * (sorted.size() - 1) + 0.5)]; };
-    v.p50_ms = at(0.5);
-    v.p90_ms = at(0.9);
-    v.p99_ms = at(0.99);
-  }
+  v.exploration = episodes_.exploration();
+  v.evaluation = episodes_.evaluation();
+  const PlanState::Latency latency = plan_state_.Percentiles();
+  v.p50_ms = latency.p50_ms;
+  v.p90_ms = latency.p90_ms;
+  v.p99_ms = latency.p99_ms;
   // Coverage of the next states on the grid; ranges from the config or from the data.
-  CoverageGrid::View grid = coverage_.Read({config_.coverage_indices, config_.coverage_lower,
-                                            config_.coverage_upper, config_.coverage_cells},
-                                           next_states_, config_.state_dim);
+  CoverageGrid::View grid = dataset_.Coverage({config_.coverage_indices, config_.coverage_lower,
+                                               config_.coverage_upper, config_.coverage_cells});
   v.coverage_indices = config_.coverage_indices;
   v.coverage_cells = config_.coverage_cells;
   v.coverage_lower = std::move(grid.lower);
@@ -147,107 +106,26 @@ std::shared_ptr<const PublishedModel> RobotRuntime::published() const {
   return published_;
 }
 
-void EpisodeTally::Add(const EpisodeRecord& e) {
-  ++episodes;
-  successes += e.success ? 1 : 0;
-  terminals += e.terminal ? 1 : 0;
-  last_return = e.episode_return;
-  recent.emplace_back(e.episode_return, e.success);
-  if (recent.size() > kRecent) recent.pop_front();
-}
-
-double EpisodeTally::RecentMeanReturn() const {
-  if (recent.empty()) return 0.0;
-  double sum = 0.0;
-  for (const auto& [r, ok] : recent) sum += r;
-  return sum / recent.size();
-}
-
-double EpisodeTally::RecentSuccessRate() const {
-  if (recent.empty()) return 0.0;
-  int ok = 0;
-  for (const auto& [r, success] : recent) ok += success ? 1 : 0;
-  return static_cast<double>(ok) / recent.size();
-}
-
-void RobotRuntime::MarkEvaluation(uint64_t episode) {
-  evaluation_episodes_.insert(episode);
-  while (evaluation_episodes_.size() > kMarked) evaluation_episodes_.erase(evaluation_episodes_.begin());
-}
-
-void RobotRuntime::CloseEpisode(bool terminal) {
-  if (current_steps_ == 0) return;
-  EpisodeRecord e;
-  e.episode = current_episode_;
-  e.steps = current_steps_;
-  e.episode_return = current_return_;
-  e.information_gain = plan_gain_count_ > 0 ? plan_gain_sum_ / plan_gain_count_ : 0.0;
-  e.ended_at = absl::Now();
-  e.evaluation = evaluation_episodes_.count(current_episode_) > 0;
-  e.success = current_return_ > config_.success_return;
-  e.terminal = terminal;
-  (e.evaluation ? evaluation_ : exploration_).Add(e);
-  ++episodes_;
-  last_episode_record_ = e;
-  if (!replaying_) unrecorded_.push_back(e);
-  current_steps_ = 0;
-  current_return_ = 0.0;
-  plan_gain_sum_ = 0.0;
-  plan_gain_count_ = 0;
-}
-
 void RobotRuntime::RecordProgress() {
   std::vector<EpisodeRecord> records;
   {
     absl::MutexLock lock(&mu_);
-    records.swap(unrecorded_);
+    records = episodes_.TakeUnrecorded();
   }
   for (const EpisodeRecord& e : records) {
-    v1::EpisodeSummary summary;
-    summary.set_episode(e.episode);
-    summary.set_steps(static_cast<uint32_t>(e.steps));
-    summary.set_return_(e.episode_return);
-    summary.set_information_gain(e.information_gain);
-    summary.mutable_ended_at()->set_seconds(absl::ToUnixSeconds(e.ended_at));
-    summary.set_evaluation(e.evaluation);
-    summary.set_success(e.success);
-    summary.set_terminal(e.terminal);
     store::ProgressRecord record;
     record.robot_id = robot_id_;
     record.at = e.ended_at;
     record.kind = store::ProgressKind::kEpisode;
-    record.payload = summary.SerializeAsString();
+    record.payload = store::EncodeEpisode(e);
     // Progress is informational: a failed write must not fail the transitions' ack.
     store_->AppendProgress(record).IgnoreError();
   }
 }
 
-void RobotRuntime::AddToDataset(const store::TransitionRecord& t) {
-  if (current_steps_ > 0 && t.episode != current_episode_) CloseEpisode(/*terminal=*/false);
-  if (evaluate_next_ && !replaying_) {
-    MarkEvaluation(t.episode);
-    evaluate_next_ = false;
-  }
-  current_episode_ = t.episode;
-  ++current_steps_;
-  current_return_ += t.reward;
-  if (t.terminal) CloseEpisode(/*terminal=*/true);
-  for (double v : t.state) states_.push_back(static_cast<float>(v));
-  for (double v : t.action) actions_.push_back(static_cast<float>(v));
-  for (double v : t.next_state) next_states_.push_back(static_cast<float>(v));
-  coverage_.Add(&next_states_[next_states_.size() - t.next_state.size()],
-                static_cast<int>(t.next_state.size()));
-  rewards_.push_back(static_cast<float>(t.reward));
-  terminals_.push_back(t.terminal ? 1.0f : 0.0f);
-  if (t.seq > last_seq_) last_seq_ = t.seq;
-  // An episode ends at a terminal transition, or (when the client sends none) where the
-  // episode id changes; either counts once.
-  if (t.terminal || (last_episode_ != 0 && t.episode != last_episode_ && !last_terminal_)) {
-    episode_ended_ = true;
-  }
-  last_episode_ = t.episode;
-  last_terminal_ = t.terminal;
-  ++new_since_training_;
+void RobotRuntime::AddTransition(const store::TransitionRecord& t) {
+  episodes_.Add(t, config_.success_return);
+  dataset_.Add(t);
 }
 
 namespace {
@@ -255,11 +133,12 @@ namespace {
 absl::StatusOr<RobotRuntime::Checkpoint> Decode(const store::CheckpointRecord& record) {
   absl::StatusOr<model::Ensemble> ensemble = model::DeserializeEnsemble(record.model);
   if (!ensemble.ok()) return ensemble.status();
-  RobotRuntime::Checkpoint out{.ensemble = *std::move(ensemble)};
-  v1::TrainingReport wire;
-  wire.ParseFromString(record.report);  // an unreadable report leaves zeros
-  out.report = ReportFromWire(wire, &out.training_seconds);
-  return out;
+  // An unreadable report leaves zeros: the model is what counts.
+  const store::TrainingRecord training =
+      store::DecodeTraining(record.report).value_or(store::TrainingRecord{});
+  return RobotRuntime::Checkpoint{.ensemble = *std::move(ensemble),
+                                  .report = training.report,
+                                  .training_seconds = training.training_seconds};
 }
 
 }  // namespace
@@ -296,26 +175,26 @@ absl::Status RobotRuntime::Load() {
         store_->ReadProgress(after, absl::InfinitePast(), robot_id_, 10000);
     if (!records.ok()) return records.status();
     for (const store::ProgressRecord& r : *records) {
-      v1::EpisodeSummary summary;
-      if (r.kind == store::ProgressKind::kEpisode && summary.ParseFromString(r.payload) && summary.evaluation()) {
-        evaluated.push_back(summary.episode());
-      }
+      if (r.kind != store::ProgressKind::kEpisode) continue;
+      std::optional<EpisodeRecord> episode = store::DecodeEpisode(r.payload);
+      if (episode && episode->evaluation) evaluated.push_back(episode->episode);
       after = r.row;
     }
     if (records->size() < 10000) break;
   }
   absl::MutexLock lock(&mu_);
-  for (uint64_t episode : evaluated) MarkEvaluation(episode);
-  replaying_ = true;
-  for (const store::TransitionRecord& t : *transitions) AddToDataset(t);
-  replaying_ = false;
+  for (uint64_t episode : evaluated) episodes_.MarkEvaluation(episode);
+  episodes_.BeginReplay(/*rebuild=*/false);
+  for (const store::TransitionRecord& t : *transitions) AddTransition(t);
+  episodes_.EndReplay();
   // What was stored before the restart is already in the checkpoint's model (or will be in
   // the next round's): no round is owed for it, unless no checkpoint could be read.
-  new_since_training_ = published == nullptr && !listed->empty() ? transitions->size() : 0;
+  dataset_.SetPending(
+      published == nullptr && !listed->empty() ? static_cast<int>(transitions->size()) : 0,
+      /*episode_ended=*/false);
   // New versions continue above every stored one, readable or not.
   highest_version_ = listed->empty() ? 0 : listed->front().model_version;
   load_problems_ = std::move(problems);
-  episode_ended_ = false;
   published_ = std::move(published);
   return absl::OkStatus();
 }
@@ -327,7 +206,7 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
   uint64_t before;
   {
     absl::MutexLock lock(&mu_);
-    before = last_seq_;
+    before = dataset_.last_seq();
   }
   absl::StatusOr<store::AppendResult> result = store_->AppendTransitions(robot_id_, batch);
   if (!result.ok() || result->accepted == 0) return result;
@@ -337,7 +216,7 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
     {
       absl::MutexLock lock(&mu_);
       for (const store::TransitionRecord& t : batch) {
-        if (t.seq > before) AddToDataset(t);
+        if (t.seq > before) AddTransition(t);
       }
     }
     RecordProgress();
@@ -347,24 +226,13 @@ absl::StatusOr<store::AppendResult> RobotRuntime::Append(
   absl::StatusOr<std::vector<store::TransitionRecord>> all = store_->LoadTransitions(robot_id_);
   if (!all.ok()) return all.status();
   absl::MutexLock lock(&mu_);
-  const int pending = new_since_training_ + static_cast<int>(result->accepted);
-  states_.clear();
-  actions_.clear();
-  next_states_.clear();
-  coverage_ = CoverageGrid();  // the rows come back in seq order: bin them anew
-  rewards_.clear();
-  terminals_.clear();
-  last_seq_ = 0;
-  last_episode_ = 0;
-  last_terminal_ = false;
-  const bool ended = episode_ended_;
-  replaying_ = true;  // a rebuild: the finished episodes are on record already
-  episodes_ = 0;
-  current_steps_ = 0;
-  for (const store::TransitionRecord& t : *all) AddToDataset(t);
-  replaying_ = false;
-  new_since_training_ = pending;
-  episode_ended_ = ended;
+  const int pending = dataset_.new_since_training() + static_cast<int>(result->accepted);
+  const bool ended = dataset_.episode_ended();
+  dataset_.Clear();
+  episodes_.BeginReplay(/*rebuild=*/true);  // the finished episodes are on record already
+  for (const store::TransitionRecord& t : *all) AddTransition(t);
+  episodes_.EndReplay();
+  dataset_.SetPending(pending, ended);
   return result;
 }
 
@@ -380,26 +248,14 @@ bool RobotRuntime::WantsTraining() const {
 
 bool RobotRuntime::WantsTrainingLocked() const {
   if (training_) return false;
-  if (training_requested_ && rewards_.size() >= 2) return true;
-  if (static_cast<int>(rewards_.size()) < config_.policy.min_transitions) return false;
+  const int rows = dataset_.size(), fresh = dataset_.new_since_training();
+  if (training_requested_ && rows >= 2) return true;
+  if (rows < config_.policy.min_transitions) return false;
   // After a failed round, wait for new data rather than fail again at once.
-  if (last_round_failed_ && new_since_training_ == 0) return false;
+  if (last_round_failed_ && fresh == 0) return false;
   if (published_ == nullptr) return true;
-  if (new_since_training_ >= config_.policy.every_n_transitions) return true;
-  return config_.policy.at_episode_end && episode_ended_ && new_since_training_ > 0;
-}
-
-model::TransitionData RobotRuntime::Snapshot() const {
-  const int n = static_cast<int>(rewards_.size());
-  const int sd = config_.state_dim, ad = config_.action_dim;
-  using RowMajor = RowMatrixXf;
-  model::TransitionData d;
-  d.states = Eigen::Map<const RowMajor>(states_.data(), n, sd);
-  d.actions = Eigen::Map<const RowMajor>(actions_.data(), n, ad);
-  d.next_states = Eigen::Map<const RowMajor>(next_states_.data(), n, sd);
-  d.rewards = Eigen::Map<const Eigen::VectorXf>(rewards_.data(), n);
-  d.terminals = Eigen::Map<const Eigen::VectorXf>(terminals_.data(), n);
-  return d;
+  if (fresh >= config_.policy.every_n_transitions) return true;
+  return config_.policy.at_episode_end && dataset_.episode_ended() && fresh > 0;
 }
 
 absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce(
@@ -410,18 +266,17 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainOnce(
   {
     absl::MutexLock lock(&mu_);
     if (training_) return absl::FailedPreconditionError("a training round is running already");
-    if (static_cast<int>(rewards_.size()) < 2) {
+    if (dataset_.size() < 2) {
       return absl::FailedPreconditionError(absl::StrFormat(
           "robot \"%s\" has %d transitions; training needs at least 2", config_.name,
-          rewards_.size()));
+          dataset_.size()));
     }
-    data = Snapshot();
+    data = dataset_.Snapshot();
     config = config_;
     start = published_;
     training_ = true;
     training_requested_ = false;
-    new_since_training_ = 0;
-    episode_ended_ = false;
+    dataset_.StartRound();
   }
   const uint64_t version = start ? start->version + 1 : 1;  // seeds the fresh model only
   auto finish = [&](absl::Status status) {
@@ -485,7 +340,7 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
   store::CheckpointRecord checkpoint;
   checkpoint.model_version = version;
   checkpoint.created_at = published->finished_at;
-  checkpoint.report = ReportToWire(*published).SerializeAsString();
+  checkpoint.report = store::EncodeTraining(published->training());
   checkpoint.model = model::SerializeEnsemble(published->ensemble);
   if (absl::Status s = store_->PutCheckpoint(robot_id_, checkpoint); !s.ok()) return s;
   {
@@ -511,8 +366,8 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     absl::MutexLock lock(&mu_);
     model = published_;
     config = config_;
-    warm = warm_start_;
-    count = ++plans_;
+    warm = plan_state_.warm_start();
+    count = plan_state_.Start();
   }
   if (input.state.size() != config.state_dim) {
     return absl::InvalidArgumentError(absl::StrFormat(
@@ -551,9 +406,9 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     outcome.evaluation = true;
     absl::MutexLock lock(&mu_);
     if (input.episode != 0) {
-      MarkEvaluation(input.episode);
+      episodes_.MarkEvaluation(input.episode);
     } else {
-      evaluate_next_ = true;
+      episodes_.EvaluateNext();
     }
   }
   if (model == nullptr) {
@@ -582,20 +437,14 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     outcome.result = *std::move(result);
     outcome.model_version = model->version;
     absl::MutexLock lock(&mu_);
-    warm_start_ = outcome.result.warm_start;
+    plan_state_.set_warm_start(outcome.result.warm_start);
   }
   outcome.compute_ms = absl::ToDoubleMilliseconds(absl::Now() - start);
   {
     absl::MutexLock lock(&mu_);
-    if (latencies_ms_.size() < 1000) {
-      latencies_ms_.push_back(outcome.compute_ms);
-    } else {
-      latencies_ms_[plans_ % 1000] = outcome.compute_ms;
-    }
-    if (absl::Now() > input.deadline) ++deadline_misses_;
+    plan_state_.Finish(outcome.compute_ms, absl::Now() > input.deadline);
     if (!outcome.from_prior && outcome.result.information_gain.size() > 0) {
-      plan_gain_sum_ += outcome.result.information_gain[0];
-      ++plan_gain_count_;
+      episodes_.AddPlanGain(outcome.result.information_gain[0]);
     }
   }
   return outcome;
@@ -619,10 +468,10 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::TrainAndWait
   uint64_t before;
   {
     absl::MutexLock lock(&mu_);
-    if (rewards_.size() < 2) {
+    if (dataset_.size() < 2) {
       return absl::FailedPreconditionError(
           absl::StrFormat("robot \"%s\" has %d transitions; training needs at least 2",
-                          config_.name, rewards_.size()));
+                          config_.name, dataset_.size()));
     }
     before = published_ ? published_->version : 0;
     training_requested_ = true;

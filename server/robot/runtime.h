@@ -1,12 +1,16 @@
-// One robot's runtime: its settings, the in-memory mirror of its stored transitions, the
-// published model version, the planner's warm start, and the training policy. Thread-safe:
-// plans run on the rpc threads while the trainer thread trains; a published model version is
-// immutable and replaced by a pointer swap, so training never blocks planning.
+// One robot's runtime: its settings and the training policy over four parts, each its own
+// class: the dataset mirror (server/robot/dataset.h), the published model and its checkpoints
+// (here), the plan state (server/robot/plan_state.h) and the episode tracker
+// (server/robot/episodes.h). Thread-safe: plans run on the rpc threads while the trainer thread
+// trains; a published model version is immutable and replaced by a pointer swap, so training
+// never blocks planning.
 // Locking: robot_id_ and store_ are constant after construction and plans_waiting_ is atomic;
 // append_mu_ serialises appends (the store write and the mirror's update), publish_mu_
 // serialises publishing (version, checkpoint, swap); both are taken before mu_, which guards
-// everything else (settings, the dataset mirror, the published pointer, the warm start, the
-// episode tracker, latencies). No lock is held while planning or training.
+// everything else (settings, the four parts, the training flags). The parts are not
+// thread-safe themselves: an update that touches two of them (a transition counts into the
+// mirror and the episode tracker) is one step under mu_. No lock is held while planning or
+// training.
 //
 //   auto runtime = std::make_shared<RobotRuntime>(id, config, store);
 //   FORAY_RETURN_IF_ERROR(runtime->Load());          // transitions and newest checkpoint
@@ -19,9 +23,7 @@
 #include <cstdint>
 #include <functional>
 #include <memory>
-#include <deque>
 #include <optional>
-#include <set>
 #include <string>
 #include <vector>
 
@@ -34,17 +36,14 @@
 #include "core/plan/planner.h"
 #include "core/plan/rollout.h"
 #include "core/util/parallel.h"
-#include "foray/v1/types.pb.h"
 #include "server/robot/config.h"
-#include "server/robot/coverage.h"
+#include "server/robot/dataset.h"
+#include "server/robot/episodes.h"
+#include "server/robot/plan_state.h"
+#include "server/store/records.h"
 #include "server/store/store.h"
 
 namespace foray::robot {
-
-// A published model's training report on the wire, and back (checkpoints store the wire form).
-struct PublishedModel;
-v1::TrainingReport ReportToWire(const PublishedModel& model);
-model::TrainingReport ReportFromWire(const v1::TrainingReport& report, double* seconds);
 
 // An immutable published model version. Shared as std::shared_ptr<const PublishedModel>:
 // planners keep the version they started with while training publishes the next one.
@@ -55,6 +54,13 @@ struct PublishedModel {
   model::TrainingReport report;
   double training_seconds = 0.0;
   absl::Time finished_at;
+  // The training as checkpoints and progress records keep it.
+  store::TrainingRecord training() const {
+    return {.model_version = version,
+            .report = report,
+            .training_seconds = training_seconds,
+            .finished_at = finished_at};
+  }
 };
 
 struct PlanInput {
@@ -87,32 +93,6 @@ struct RobotStatus {
   uint64_t transitions = 0;
   uint64_t model_version = 0;
   bool training = false;
-};
-
-// One finished episode: steps, return, mean information gain of the plans made during it
-// (the first step of each plan, the one executed), when it ended.
-struct EpisodeRecord {
-  uint64_t episode = 0;
-  int steps = 0;
-  double episode_return = 0.0;
-  double information_gain = 0.0;  // nats per executed step
-  absl::Time ended_at;
-  bool evaluation = false;  // its plans were evaluation plans
-  bool success = false;     // return > the robot's success_return
-  bool terminal = false;    // ended by a terminal transition (not a time limit)
-};
-
-// Episodes of one kind (exploration or evaluation) so far; `recent` holds the last kRecent.
-struct EpisodeTally {
-  static constexpr int kRecent = 10;
-  uint64_t episodes = 0;
-  uint64_t successes = 0;
-  uint64_t terminals = 0;
-  double last_return = 0.0;
-  std::deque<std::pair<double, bool>> recent;  // (return, success), oldest first
-  void Add(const EpisodeRecord& e);
-  double RecentMeanReturn() const;
-  double RecentSuccessRate() const;
 };
 
 // How a robot's learning goes, for monitoring.
@@ -223,13 +203,14 @@ class RobotRuntime {
                                                                      model::TrainingReport report);
 
  private:
-  model::TransitionData Snapshot() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
   RobotStatus StatusLocked() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
   bool WantsTrainingLocked() const ABSL_SHARED_LOCKS_REQUIRED(mu_);
   absl::StatusOr<std::shared_ptr<const PublishedModel>> Publish(model::Ensemble ensemble,
                                                                 model::TrainingReport report,
                                                                 double seconds);
-  void AddToDataset(const store::TransitionRecord& t) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  // Counts one transition into the dataset mirror and the episode tracker.
+  void AddTransition(const store::TransitionRecord& t) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
+  void RecordProgress();  // writes the tracker's finished episodes to the store
 
   const std::string robot_id_;
   store::Store* const store_;
@@ -241,53 +222,18 @@ class RobotRuntime {
 
   mutable absl::Mutex mu_;
   RobotConfig config_ ABSL_GUARDED_BY(mu_);
-  // The dataset, a row per transition, robot units.
-  std::vector<float> states_ ABSL_GUARDED_BY(mu_);
-  std::vector<float> actions_ ABSL_GUARDED_BY(mu_);
-  std::vector<float> next_states_ ABSL_GUARDED_BY(mu_);
-  std::vector<float> rewards_ ABSL_GUARDED_BY(mu_);
-  std::vector<float> terminals_ ABSL_GUARDED_BY(mu_);  // 1 where the client's terminal flag was set
-  uint64_t last_seq_ ABSL_GUARDED_BY(mu_) = 0;
-  uint64_t last_episode_ ABSL_GUARDED_BY(mu_) = 0;
-  bool last_terminal_ ABSL_GUARDED_BY(mu_) = false;
-  int new_since_training_ ABSL_GUARDED_BY(mu_) = 0;
-  bool episode_ended_ ABSL_GUARDED_BY(mu_) = false;
+  // Mutable: Progress() bins the rows added since its last call into the coverage counts.
+  mutable DatasetMirror dataset_ ABSL_GUARDED_BY(mu_);
+  EpisodeTracker episodes_ ABSL_GUARDED_BY(mu_);
+  PlanState plan_state_ ABSL_GUARDED_BY(mu_);
+  // The published model and its checkpoints.
+  std::shared_ptr<const PublishedModel> published_ ABSL_GUARDED_BY(mu_);
+  uint64_t highest_version_ ABSL_GUARDED_BY(mu_) = 0;  // of every stored checkpoint, readable or not
+  std::vector<std::string> load_problems_ ABSL_GUARDED_BY(mu_);
+  // Training: a round is running, the last one failed, a round was asked for.
   bool training_ ABSL_GUARDED_BY(mu_) = false;
   bool last_round_failed_ ABSL_GUARDED_BY(mu_) = false;
   bool training_requested_ ABSL_GUARDED_BY(mu_) = false;
-  std::shared_ptr<const PublishedModel> published_ ABSL_GUARDED_BY(mu_);
-  std::optional<plan::CemWarmStart> warm_start_ ABSL_GUARDED_BY(mu_);
-  uint64_t plans_ ABSL_GUARDED_BY(mu_) = 0;
-
-  // Progress: the episode in progress, finished ones, plan latencies.
-  bool replaying_ ABSL_GUARDED_BY(mu_) = false;  // Load(): episodes are on record already
-  uint64_t highest_version_ ABSL_GUARDED_BY(mu_) = 0;  // of every stored checkpoint, readable or not
-  std::vector<std::string> load_problems_ ABSL_GUARDED_BY(mu_);
-  uint64_t current_episode_ ABSL_GUARDED_BY(mu_) = 0;
-  int current_steps_ ABSL_GUARDED_BY(mu_) = 0;
-  double current_return_ ABSL_GUARDED_BY(mu_) = 0.0;
-  double plan_gain_sum_ ABSL_GUARDED_BY(mu_) = 0.0;
-  int plan_gain_count_ ABSL_GUARDED_BY(mu_) = 0;
-  uint64_t episodes_ ABSL_GUARDED_BY(mu_) = 0;
-  std::optional<EpisodeRecord> last_episode_record_ ABSL_GUARDED_BY(mu_);
-  std::vector<EpisodeRecord> unrecorded_ ABSL_GUARDED_BY(mu_);  // to write to the store
-  // Evaluation episodes: ids marked by evaluation plans (the newest kMarked kept), and whether
-  // the next transition's episode is one (an evaluation plan that named no episode).
-  static constexpr size_t kMarked = 4096;
-  std::set<uint64_t> evaluation_episodes_ ABSL_GUARDED_BY(mu_);
-  bool evaluate_next_ ABSL_GUARDED_BY(mu_) = false;
-  EpisodeTally exploration_ ABSL_GUARDED_BY(mu_);
-  EpisodeTally evaluation_ ABSL_GUARDED_BY(mu_);
-  // Visit counts for the progress view, kept up to date with the dataset (Progress is not
-  // const in effect: reading it bins the rows added since the last read).
-  mutable CoverageGrid coverage_ ABSL_GUARDED_BY(mu_);
-  std::vector<double> latencies_ms_ ABSL_GUARDED_BY(mu_);       // ring of the last 1,000
-  uint64_t deadline_misses_ ABSL_GUARDED_BY(mu_) = 0;
-
-  // `terminal`: the episode ended by a terminal transition.
-  void CloseEpisode(bool terminal) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
-  void MarkEvaluation(uint64_t episode) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
-  void RecordProgress();  // writes unrecorded_ episodes to the store
 };
 
 }  // namespace foray::robot

@@ -10,8 +10,8 @@
 #include "absl/strings/str_cat.h"
 #include "absl/strings/str_format.h"
 #include "absl/strings/str_replace.h"
-#include "foray/v1/monitoring.pb.h"
 #include "server/api/auth.h"
+#include "server/store/records.h"
 #include "server/web/dashboard_html.h"
 
 namespace foray::web {
@@ -197,21 +197,21 @@ std::string HistoryJson(const store::Store& store, const std::string& robot_id) 
   if (records.ok()) {
     for (const store::ProgressRecord& r : *records) {
       if (r.kind == store::ProgressKind::kEpisode) {
-        v1::EpisodeSummary e;
-        if (!e.ParseFromString(r.payload)) continue;
-        absl::StrAppend(&episodes, episodes.empty() ? "" : ", ", "{\"episode\": ", e.episode(),
-                        ", \"steps\": ", e.steps(), ", \"return\": ", Number(e.return_()),
-                        ", \"information_gain\": ", Number(e.information_gain()),
-                        ", \"evaluation\": ", e.evaluation() ? "true" : "false",
-                        ", \"success\": ", e.success() ? "true" : "false",
-                        ", \"terminal\": ", e.terminal() ? "true" : "false", "}");
+        std::optional<store::EpisodeRecord> e = store::DecodeEpisode(r.payload);
+        if (!e) continue;
+        absl::StrAppend(&episodes, episodes.empty() ? "" : ", ", "{\"episode\": ", e->episode,
+                        ", \"steps\": ", e->steps, ", \"return\": ", Number(e->episode_return),
+                        ", \"information_gain\": ", Number(e->information_gain),
+                        ", \"evaluation\": ", e->evaluation ? "true" : "false",
+                        ", \"success\": ", e->success ? "true" : "false",
+                        ", \"terminal\": ", e->terminal ? "true" : "false", "}");
       } else if (r.kind == store::ProgressKind::kTraining) {
-        v1::TrainingReport t;
-        if (!t.ParseFromString(r.payload)) continue;
+        std::optional<store::TrainingRecord> t = store::DecodeTraining(r.payload);
+        if (!t) continue;
         absl::StrAppend(&trainings, trainings.empty() ? "" : ", ", "{\"model_version\": ",
-                        t.model_version(), ", \"epochs\": ", t.epochs(),
-                        ", \"holdout_nll\": ", Number(t.holdout_nll()),
-                        ", \"holdout_mse\": ", Number(t.holdout_mse()), "}");
+                        t->model_version, ", \"epochs\": ", t->report.epochs,
+                        ", \"holdout_nll\": ", Number(t->report.holdout_nll),
+                        ", \"holdout_mse\": ", Number(t->report.holdout_mse), "}");
       }
     }
   }
