@@ -231,7 +231,7 @@ absl::Status RobotSession::Flush(absl::Duration timeout) {
 
 absl::StatusOr<v1::Plan> RobotSession::RequestPlan(const std::vector<double>& state,
                                                    const std::vector<double>& previous_action,
-                                                   absl::Duration compute, absl::Duration wait,
+                                                   absl::Duration deadline, absl::Duration wait,
                                                    const PlanChoices& choices) {
   absl::MutexLock lock(&mu_);
   if (absl::Status s = CheckVector("state", state, state_dim_); !s.ok()) return s;
@@ -248,7 +248,7 @@ absl::StatusOr<v1::Plan> RobotSession::RequestPlan(const std::vector<double>& st
   request.set_request_id(id);
   request.mutable_state()->Add(state.begin(), state.end());
   request.mutable_previous_action()->Add(previous_action.begin(), previous_action.end());
-  request.set_deadline_ms(std::max(1.0, absl::ToDoubleMilliseconds(compute)));
+  request.set_deadline_ms(std::max(1.0, absl::ToDoubleMilliseconds(deadline)));
   request.set_evaluate(choices.evaluate);
   request.set_episode(choices.episode);
   if (choices.objective.has_value()) *request.mutable_objective() = *choices.objective;
@@ -267,9 +267,9 @@ absl::StatusOr<v1::Plan> RobotSession::RequestPlan(const std::vector<double>& st
 }
 
 Decision RobotSession::Act(const std::vector<double>& state, const std::vector<double>& previous_action,
-                           absl::Duration compute, absl::Duration wait, const PlanChoices& choices) {
+                           absl::Duration deadline, absl::Duration wait, const PlanChoices& choices) {
   Decision decision;
-  absl::StatusOr<v1::Plan> plan = RequestPlan(state, previous_action, compute, wait, choices);
+  absl::StatusOr<v1::Plan> plan = RequestPlan(state, previous_action, deadline, wait, choices);
   if (!plan.ok()) {
     decision.why = plan.status();
   } else if (plan->steps_size() == 0 ||

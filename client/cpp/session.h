@@ -182,18 +182,18 @@ class RobotSession {
   absl::Status Flush(absl::Duration timeout);
 
   // Asks for a plan from `state` (state_dim values); `previous_action` (action_dim values, may be
-  // empty) feeds the rate limit of the first step. The server plans for at most `compute`;
+  // empty) feeds the rate limit of the first step. The server plans for at most `deadline` (counted from the request's arrival);
   // this call waits at most `wait` for the reply. Unavailable while disconnected.
   absl::StatusOr<foray::v1::Plan> RequestPlan(const std::vector<double>& state,
                                               const std::vector<double>& previous_action,
-                                              absl::Duration compute, absl::Duration wait,
+                                              absl::Duration deadline, absl::Duration wait,
                                               const PlanChoices& choices = {});
 
   // The watchdog: the first action of a plan that arrives within `wait` and is still valid,
   // else the safe action (returned within `wait` plus scheduling noise, also when the server
   // is down). `previous_action` has action_dim values.
   Decision Act(const std::vector<double>& state, const std::vector<double>& previous_action,
-               absl::Duration compute, absl::Duration wait, const PlanChoices& choices = {});
+               absl::Duration deadline, absl::Duration wait, const PlanChoices& choices = {});
 
   SessionStats Stats() const;
 

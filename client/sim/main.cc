@@ -206,11 +206,11 @@ bool RunRobot(const std::string& kind, int index) {
   const bool random_baseline = absl::GetFlag(FLAGS_strategy) == "random";
   const bool no_model = random_baseline || absl::GetFlag(FLAGS_strategy) == "noise";
   const bool realtime = absl::GetFlag(FLAGS_realtime);
-  const absl::Duration compute = absl::Milliseconds(absl::GetFlag(FLAGS_deadline_ms));
+  const absl::Duration deadline = absl::Milliseconds(absl::GetFlag(FLAGS_deadline_ms));
   // In real time the watchdog holds the last action once a control period is over; flat out,
   // the simulation waits for the plan (the clock is ours).
   const absl::Duration wait =
-      realtime ? std::max(compute, absl::Seconds(sim.control_period_s())) : compute + absl::Seconds(10);
+      realtime ? std::max(deadline, absl::Seconds(sim.control_period_s())) : deadline + absl::Seconds(10);
   std::mt19937_64 rng(absl::GetFlag(FLAGS_seed) * 7919 + index);
   auto models = v1::Models::NewStub(
       grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials()));
@@ -246,7 +246,7 @@ bool RunRobot(const std::string& kind, int index) {
       if (no_model) {
         action = BaselineAction(sim, ranges, state, previous, random_baseline, rng);
       } else {
-        foray::client::Decision decision = session.Act(now, previous, compute, wait, choices);
+        foray::client::Decision decision = session.Act(now, previous, deadline, wait, choices);
         ++plans;
         action = std::move(decision.action);
         if (decision.planned) {

@@ -155,16 +155,21 @@ void SequenceLimits::Project(float* sequence, int horizon) const {
 }
 
 absl::Status CemOptions::Validate() const {
-  if (horizon < 1) return absl::InvalidArgumentError(absl::StrFormat("horizon is %d, must be >= 1", horizon));
-  if (population < 1) {
-    return absl::InvalidArgumentError(absl::StrFormat("population is %d, must be >= 1", population));
+  if (horizon < 1 || horizon > kMaxHorizon) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("horizon is %d, must be in 1..%d", horizon, kMaxHorizon));
+  }
+  if (population < 1 || population > kMaxPopulation) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("population is %d, must be in 1..%d", population, kMaxPopulation));
   }
   if (elites < 1 || elites > population) {
     return absl::InvalidArgumentError(absl::StrFormat(
         "elites is %d, must be in [1, population %d]", elites, population));
   }
-  if (iterations < 1) {
-    return absl::InvalidArgumentError(absl::StrFormat("iterations is %d, must be >= 1", iterations));
+  if (iterations < 1 || iterations > kMaxIterations) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("iterations is %d, must be in 1..%d", iterations, kMaxIterations));
   }
   if (!(noise_beta >= 0.0 && noise_beta <= 10.0)) {
     return absl::InvalidArgumentError(absl::StrFormat("noise_beta is %g, must be in [0, 10]", noise_beta));

@@ -71,19 +71,26 @@ struct SequenceLimits {
   void Project(float* sequence, int horizon) const;
 };
 
+// The optimiser's settings. Validate() refuses a value outside the range given beside it,
+// naming the field and the value.
 struct CemOptions {
-  int horizon = 20;             // steps
-  int population = 200;         // candidates in the first iteration
-  int elites = 20;              // K, <= population
-  int iterations = 4;           // at most; fewer when the deadline comes first
-  double noise_beta = 2.0;      // coloured-noise exponent; 0 = white
-  double keep_fraction = 0.3;   // fraction of the K elites carried into the next iteration
-  double population_decay = 1.25;  // N_i = max(N * decay^-i, 2 K), >= 1
-  double momentum = 0.1;        // mean/std <- momentum * old + (1 - momentum) * elite fit
-  double initial_std_fraction = 0.5;  // initial std per dim, fraction of (upper - lower)
-  double min_std_fraction = 1e-4;     // floor of the std, fraction of (upper - lower)
-  uint64_t seed = 1;
+  int horizon = 20;             // steps of a sequence; 1..500
+  int population = 200;         // candidates in the first iteration; 1..100000
+  int elites = 20;              // K, the candidates the distribution is refitted to; 1..population
+  int iterations = 4;           // at most (fewer when the deadline comes first); 1..1000
+  double noise_beta = 2.0;      // coloured-noise exponent along the horizon (0 = white); [0, 10]
+  double keep_fraction = 0.3;   // fraction of the K elites carried into the next iteration; [0, 1]
+  double population_decay = 1.25;  // N_i = max(N * decay^-i, 2 K); >= 1, finite
+  double momentum = 0.1;        // mean/std <- momentum * old + (1 - momentum) * elite fit; [0, 1)
+  double initial_std_fraction = 0.5;  // initial std per dim, fraction of (upper - lower); > 0
+  double min_std_fraction = 1e-4;     // floor of the std, same unit; [0, initial_std_fraction]
+  uint64_t seed = 1;            // the draws' seed; any value
 
+  // Largest horizon, population and iterations: a plan beyond them would take minutes or
+  // gigabytes, not a request a robot can wait for.
+  static constexpr int kMaxHorizon = 500;
+  static constexpr int kMaxPopulation = 100000;
+  static constexpr int kMaxIterations = 1000;
   absl::Status Validate() const;
 };
 

@@ -10,36 +10,19 @@
 namespace foray::plan {
 
 absl::Status PlannerOptions::Validate() const {
-  if (absl::Status s = cem().Validate(); !s.ok()) return s;
-  if (absl::Status s = rollout().Validate(); !s.ok()) return s;
-  if (report_particles < 0) {
-    return absl::InvalidArgumentError(
-        absl::StrFormat("report_particles is %d, must be >= 0", report_particles));
+  if (absl::Status s = cem.Validate(); !s.ok()) return s;
+  if (absl::Status s = rollout.Validate(); !s.ok()) return s;
+  if (rollout.horizon != cem.horizon) {
+    return absl::InvalidArgumentError(absl::StrFormat(
+        "the rollouts' horizon is %d, the optimiser's %d; they must agree (set_horizon)",
+        rollout.horizon, cem.horizon));
+  }
+  if (report_particles < 0 || report_particles > RolloutOptions::kMaxParticles) {
+    return absl::InvalidArgumentError(absl::StrFormat("report_particles is %d, must be in 0..%d",
+                                                      report_particles,
+                                                      RolloutOptions::kMaxParticles));
   }
   return absl::OkStatus();
-}
-
-CemOptions PlannerOptions::cem() const {
-  CemOptions c;
-  c.horizon = horizon;
-  c.population = population;
-  c.elites = elites;
-  c.iterations = iterations;
-  c.noise_beta = noise_beta;
-  c.keep_fraction = keep_fraction;
-  c.population_decay = population_decay;
-  c.momentum = momentum;
-  c.initial_std_fraction = initial_std_fraction;
-  c.seed = seed;
-  return c;
-}
-
-RolloutOptions PlannerOptions::rollout() const {
-  RolloutOptions r;
-  r.horizon = horizon;
-  r.particles = particles;
-  r.propagation = propagation;
-  return r;
 }
 
 absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& request) {
@@ -71,16 +54,16 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& re
     return absl::InvalidArgumentError(absl::StrFormat("tasks is %d, must be >= 1", context.tasks));
   }
 
-  const RolloutOptions rollout = options.rollout();
+  const RolloutOptions& rollout = options.rollout;
   const int tasks = context.parallel ? context.tasks : 1;
   std::vector<RolloutWorkspace> workspaces(tasks);
   std::vector<RolloutStats> task_stats(tasks);
-  const std::ptrdiff_t width = static_cast<std::ptrdiff_t>(options.horizon) * limits.dim();
+  const std::ptrdiff_t width = static_cast<std::ptrdiff_t>(options.horizon()) * limits.dim();
   // A fresh draw of particles per iteration keeps the optimiser from fitting one draw's noise;
   // candidates within an iteration share draws (so groups of them may be scored apart).
-  uint64_t iteration = 0;  // streams 1, 2, ... of options.seed; 0 is the report's
+  uint64_t iteration = 0;  // streams 1, 2, ... of options.cem.seed; 0 is the report's
   ScoreFunction score = [&](const float* sequences, int n, float* scores) {
-    const uint64_t seed = DeriveSeed(options.seed, ++iteration);
+    const uint64_t seed = DeriveSeed(options.cem.seed, ++iteration);
     auto group = [&](int task) {
       const int first = static_cast<int>(static_cast<int64_t>(n) * task / tasks);
       const int last = static_cast<int>(static_cast<int64_t>(n) * (task + 1) / tasks);
@@ -96,7 +79,7 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& re
     }
   };
   absl::StatusOr<CemResult> cem = MaximizeCem(
-      options.cem(), limits, score,
+      options.cem, limits, score,
       {.warm_start = warm_start, .shift = shift, .deadline = context.deadline, .now = context.now});
   if (!cem.ok()) return cem.status();
 
@@ -108,11 +91,11 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& re
 
   // The reported prediction: a separate rollout of the chosen sequence with its own draws.
   RolloutOptions report = rollout;
-  report.particles = options.report_particles > 0 ? options.report_particles : options.particles;
+  report.particles = options.report_particles > 0 ? options.report_particles : rollout.particles;
   RolloutTrace trace;
   float objective_value = 0.0f;
   ScoreSequences(model, objective, report, state.data(), result.actions.data(), 1,
-                 DeriveSeed(options.seed, 0), &objective_value, &workspaces[0], &trace,
+                 DeriveSeed(options.cem.seed, 0), &objective_value, &workspaces[0], &trace,
                  &task_stats[0]);
   result.state_mean = trace.state_mean;
   result.state_std = trace.state_std;
@@ -122,7 +105,7 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& re
   result.min_survival = trace.min_survival;
   result.objective = objective_value;
   double discount = 1.0;
-  for (int t = 0; t < options.horizon; ++t) {
+  for (int t = 0; t < options.horizon(); ++t) {
     result.expected_return += discount * trace.expected_reward[t];
     result.total_information_gain += discount * trace.information_gain[t];
     discount *= objective.discount;

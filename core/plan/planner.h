@@ -24,26 +24,20 @@
 
 namespace foray::plan {
 
+// The planner's settings: the optimiser's and the rollouts', each with its ranges beside it
+// (cem.h, rollout.h). The plan's horizon is cem.horizon and rollout.horizon, which must agree:
+// set both with set_horizon. cem.seed seeds the plan.
 struct PlannerOptions {
-  int horizon = 20;
-  int population = 200;
-  int elites = 20;
-  int iterations = 4;
-  int particles = 5;
-  double noise_beta = 2.0;
-  double keep_fraction = 0.3;
-  double population_decay = 1.25;
-  double momentum = 0.1;
-  double initial_std_fraction = 0.5;
-  Propagation propagation = Propagation::kTsInf;
+  CemOptions cem;
+  RolloutOptions rollout;
   // Particles of the final rollout of the chosen sequence that fills the result's predicted
-  // states, rewards and information gains; 0 means `particles`.
+  // states, rewards and information gains; 0 means rollout.particles. 0..kMaxParticles.
   int report_particles = 0;
-  uint64_t seed = 1;
 
+  int horizon() const { return cem.horizon; }
+  void set_horizon(int steps) { cem.horizon = rollout.horizon = steps; }
+  // The first refused value, named by its field (without a prefix: "population is 0, ...").
   absl::Status Validate() const;
-  CemOptions cem() const;
-  RolloutOptions rollout() const;
 };
 
 struct PlanResult {

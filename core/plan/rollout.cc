@@ -100,9 +100,13 @@ void LinearRolloutModel::Evaluate(const float* states, const float* actions, int
 }
 
 absl::Status RolloutOptions::Validate() const {
-  if (horizon < 1) return absl::InvalidArgumentError(absl::StrFormat("horizon is %d, must be >= 1", horizon));
-  if (particles < 1) {
-    return absl::InvalidArgumentError(absl::StrFormat("particles is %d, must be >= 1", particles));
+  if (horizon < 1 || horizon > CemOptions::kMaxHorizon) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("horizon is %d, must be in 1..%d", horizon, CemOptions::kMaxHorizon));
+  }
+  if (particles < 1 || particles > kMaxParticles) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("particles is %d, must be in 1..%d", particles, kMaxParticles));
   }
   if (propagation != Propagation::kTsInf && propagation != Propagation::kTs1) {
     return absl::InvalidArgumentError("propagation is not TS-inf or TS1");

@@ -32,6 +32,7 @@
 #include "core/explore/objective.h"
 #include "core/model/ensemble.h"
 #include "core/model/inference.h"
+#include "core/plan/cem.h"
 #include "core/util/parallel.h"
 
 namespace foray::plan {
@@ -148,10 +149,12 @@ class LinearRolloutModel final : public RolloutModel {
   const Eigen::VectorXf c_;
 };
 
+// The rollouts' settings. Validate() refuses a value outside the range given beside it.
 struct RolloutOptions {
-  int horizon = 20;    // steps, >= 1
-  int particles = 5;   // per candidate, >= 1
-  Propagation propagation = Propagation::kTsInf;
+  int horizon = 20;    // steps; 1..CemOptions::kMaxHorizon
+  int particles = 5;   // particles per candidate; 1..kMaxParticles
+  Propagation propagation = Propagation::kTsInf;  // kTsInf or kTs1
+  static constexpr int kMaxParticles = 1000;
   absl::Status Validate() const;
 };
 

@@ -55,35 +55,32 @@ grpc::Status ToGrpc(const absl::Status& status) {
 }
 
 absl::Status ApplyPlannerSettings(const v1::PlannerSettings& s, plan::PlannerOptions* o) {
-  if (s.horizon() > 500) {
-    return Invalid(absl::StrFormat("planner.horizon is %d, must be in 1..500", s.horizon()));
+  // The ranges are the options' own (PlannerOptions::Validate); here only what does not fit
+  // an int is refused before it is converted.
+  for (auto [name, value] : {std::pair{"horizon", s.horizon()}, {"population", s.population()},
+                             {"elites", s.elites()}, {"iterations", s.iterations()},
+                             {"particles", s.particles()}}) {
+    if (value > static_cast<uint32_t>(std::numeric_limits<int>::max())) {
+      return Invalid(absl::StrFormat("planner: %s is %d, far beyond its range", name, value));
+    }
   }
-  if (s.population() > 100000) {
-    return Invalid(absl::StrFormat("planner.population is %d, must be at most 100000", s.population()));
-  }
-  if (s.particles() > 1000) {
-    return Invalid(absl::StrFormat("planner.particles is %d, must be at most 1000", s.particles()));
-  }
-  if (s.iterations() > 1000) {
-    return Invalid(absl::StrFormat("planner.iterations is %d, must be at most 1000", s.iterations()));
-  }
-  if (s.horizon() != 0) o->horizon = static_cast<int>(s.horizon());
-  if (s.population() != 0) o->population = static_cast<int>(s.population());
-  if (s.elites() != 0) o->elites = static_cast<int>(s.elites());
-  if (s.iterations() != 0) o->iterations = static_cast<int>(s.iterations());
-  if (s.particles() != 0) o->particles = static_cast<int>(s.particles());
+  if (s.horizon() != 0) o->set_horizon(static_cast<int>(s.horizon()));
+  if (s.population() != 0) o->cem.population = static_cast<int>(s.population());
+  if (s.elites() != 0) o->cem.elites = static_cast<int>(s.elites());
+  if (s.iterations() != 0) o->cem.iterations = static_cast<int>(s.iterations());
+  if (s.particles() != 0) o->rollout.particles = static_cast<int>(s.particles());
   if (s.white_noise()) {
-    o->noise_beta = 0.0;
+    o->cem.noise_beta = 0.0;
   } else if (s.noise_beta() != 0.0) {
-    o->noise_beta = s.noise_beta();
+    o->cem.noise_beta = s.noise_beta();
   }
-  if (s.keep_fraction() != 0.0) o->keep_fraction = s.keep_fraction();
-  if (s.population_decay() != 0.0) o->population_decay = s.population_decay();
-  if (s.initial_std_fraction() != 0.0) o->initial_std_fraction = s.initial_std_fraction();
+  if (s.keep_fraction() != 0.0) o->cem.keep_fraction = s.keep_fraction();
+  if (s.population_decay() != 0.0) o->cem.population_decay = s.population_decay();
+  if (s.initial_std_fraction() != 0.0) o->cem.initial_std_fraction = s.initial_std_fraction();
   switch (s.propagation()) {
     case v1::PROPAGATION_UNSPECIFIED: break;
-    case v1::PROPAGATION_TS_INF: o->propagation = plan::Propagation::kTsInf; break;
-    case v1::PROPAGATION_TS1: o->propagation = plan::Propagation::kTs1; break;
+    case v1::PROPAGATION_TS_INF: o->rollout.propagation = plan::Propagation::kTsInf; break;
+    case v1::PROPAGATION_TS1: o->rollout.propagation = plan::Propagation::kTs1; break;
     default:
       return Invalid(absl::StrFormat("planner.propagation is %d, not a known value",
                                      static_cast<int>(s.propagation())));

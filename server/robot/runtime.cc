@@ -392,7 +392,7 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     }
     limits.max_step = input.max_step;
   }
-  input.planner.seed = DeriveSeed(input.planner.seed, count);
+  input.planner.cem.seed = DeriveSeed(input.planner.cem.seed, count);
 
   PlanOutcome outcome;
   if (input.evaluate) {
@@ -416,16 +416,16 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     // middle of the bounds), information gain off.
     const plan::PlannerOptions& p = input.planner;
     if (absl::Status s = p.Validate(); !s.ok()) return s;
-    absl::StatusOr<plan::RowMatrixXf> actions = plan::SampleFromPrior(p.cem(), limits);
+    absl::StatusOr<plan::RowMatrixXf> actions = plan::SampleFromPrior(p.cem, limits);
     if (!actions.ok()) return actions.status();
     outcome.result.actions = *std::move(actions);
-    outcome.result.expected_reward = Eigen::VectorXf::Zero(p.horizon);
-    outcome.result.information_gain = Eigen::VectorXf::Zero(p.horizon);
+    outcome.result.expected_reward = Eigen::VectorXf::Zero(p.horizon());
+    outcome.result.information_gain = Eigen::VectorXf::Zero(p.horizon());
     outcome.from_prior = true;
   } else {
     plan::PlanContext context = input.context;
     context.deadline = input.deadline;
-    const bool reuse = warm.has_value() && warm->mean.rows() == input.planner.horizon;
+    const bool reuse = warm.has_value() && warm->mean.rows() == input.planner.horizon();
     absl::StatusOr<plan::PlanResult> result =
         plan::Plan(*model->rollout, {.state = input.state,
                                      .limits = limits,

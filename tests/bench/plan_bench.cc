@@ -65,11 +65,11 @@ int main(int argc, char** argv) {
     const foray::plan::EnsembleRolloutModel model(*ensemble);
     foray::explore::ObjectiveOptions objective;  // learned reward + pairwise-KL information
     foray::plan::PlannerOptions options;
-    options.horizon = c.horizon;
-    options.population = c.population;
-    options.elites = c.elites;
-    options.iterations = c.iterations;
-    options.particles = c.particles;
+    options.set_horizon(c.horizon);
+    options.cem.population = c.population;
+    options.cem.elites = c.elites;
+    options.cem.iterations = c.iterations;
+    options.rollout.particles = c.particles;
     const foray::plan::SequenceLimits limits = foray::plan::SequenceLimits::Box(
         Eigen::VectorXf::Constant(c.action_dim, -1.0f), Eigen::VectorXf::Constant(c.action_dim, 1.0f));
     const Eigen::VectorXf state = Random(c.state_dim, 1, 9).col(0) * 0.1f;
@@ -85,7 +85,7 @@ int main(int argc, char** argv) {
     double flops = 0;
     int evaluations = 0;
     for (int i = 0; i < repeats + 2; ++i) {
-      options.seed = 1 + i;
+      options.cem.seed = 1 + i;
       const auto start = std::chrono::steady_clock::now();
       absl::StatusOr<foray::plan::PlanResult> plan =
           foray::plan::Plan(model, {.state = state,

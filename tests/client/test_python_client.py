@@ -59,7 +59,7 @@ def test_stream_resume_after_restart_plan_and_export(forayd, tmp_path):  # noqa:
         forayd.stop(sig=signal.SIGKILL)
         session.record_many(2, s[150:], a[150:], ns[150:], r[150:], last_is_terminal=True)
         with pytest.raises(ForayError):
-            session.plan(s[0], compute=0.02, wait=0.2)
+            session.plan(s[0], deadline=0.02, wait=0.2)
         forayd.start_again()
         session.flush(30)
         stats = session.stats()
@@ -72,7 +72,7 @@ def test_stream_resume_after_restart_plan_and_export(forayd, tmp_path):  # noqa:
         assert np.array_equal(exported["next_state"], ns) and np.array_equal(exported["reward"], r)
         assert exported["terminal"].sum() == 1 and exported["terminal"][-1]
 
-        plan = session.plan([0.1, -0.2], previous_action=[0.8], compute=0.05, wait=10)
+        plan = session.plan([0.1, -0.2], previous_action=[0.8], deadline=0.05, wait=10)
         assert plan.actions.shape == (6, 1) and plan.from_prior  # no model yet (min_transitions)
         assert np.all(np.abs(plan.actions) <= 1.0) and abs(plan.actions[0, 0] - 0.8) <= 0.5 + 1e-9
 
@@ -80,11 +80,11 @@ def test_stream_resume_after_restart_plan_and_export(forayd, tmp_path):  # noqa:
 def test_watchdog_returns_the_safe_action_in_time(forayd, tmp_path):  # noqa: F811
     with session_for(forayd, tmp_path, safe_action=[0.25]) as session:
         session.wait_connected(10)
-        d = session.act([0.0, 0.0], [0.1], compute=0.02, wait=2.0)
+        d = session.act([0.0, 0.0], [0.1], deadline=0.02, wait=2.0)
         assert d.planned and d.plan.actions.shape == (6, 1)
         forayd.stop(sig=signal.SIGKILL)
         started = time.monotonic()
-        d = session.act([0.0, 0.0], [0.1], compute=0.02, wait=0.1)
+        d = session.act([0.0, 0.0], [0.1], deadline=0.02, wait=0.1)
         assert time.monotonic() - started < 0.5  # bounded by `wait` plus scheduling, not by the outage
         assert not d.planned and d.action.tolist() == [0.25] and d.why
         assert session.stats()["safe_actions"] == 1

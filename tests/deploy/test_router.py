@@ -128,7 +128,7 @@ def test_four_robots_through_one_address_and_a_shard_restart(cluster):
     try:
         for s in sessions:
             s.wait_connected(10)
-            plan = s.plan([0.1, 0.0], compute=0.05, wait=10)
+            plan = s.plan([0.1, 0.0], deadline=0.05, wait=10)
             assert plan.actions.shape == (5, 1)
         killed = threading.Event()
 
@@ -156,7 +156,7 @@ def test_four_robots_through_one_address_and_a_shard_restart(cluster):
             if placement[r.robot_id] == victim:
                 assert st["connects"] >= 2  # it reconnected through the router after the restart
         for s in sessions:  # plans again, through the router, from every shard
-            assert s.plan([0.0, 0.1], compute=0.05, wait=10).actions.shape == (5, 1)
+            assert s.plan([0.0, 0.1], deadline=0.05, wait=10).actions.shape == (5, 1)
     finally:
         for s in sessions:
             s.close()

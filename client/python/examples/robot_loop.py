@@ -85,7 +85,7 @@ def main(argv=None):
             total, planned = 0.0, 0
             for t in range(args.steps):
                 started = time.monotonic()
-                decision = session.act(state, action, compute=0.6 * PERIOD_S,
+                decision = session.act(state, action, deadline=0.6 * PERIOD_S,
                                        wait=PERIOD_S if args.realtime else 5.0)
                 action = decision.action
                 planned += decision.planned

@@ -13,7 +13,7 @@ Thread-safe: call it from the control loop while the library's thread does the I
     from foray_client import RobotSession
     with RobotSession("127.0.0.1:50151", robot_id, token, safe_action="last") as session:
         session.wait_connected(10)
-        decision = session.act(state, last_action, compute=0.03, wait=0.045)
+        decision = session.act(state, last_action, deadline=0.03, wait=0.045)
         ...apply decision.action, measure next_state...
         session.record(episode, step, state, decision.action, next_state, reward)
 
@@ -302,9 +302,9 @@ class RobotSession:
                                  f"({'connected' if self._connected else 'not connected'})"
                                  + (f"; last error: {self._last_error}" if self._last_error else ""))
 
-    def plan(self, state, previous_action=None, compute=0.1, wait=1.0, *, evaluate=False, episode=0,
+    def plan(self, state, previous_action=None, deadline=0.1, wait=1.0, *, evaluate=False, episode=0,
              objective=None):
-        """A Plan from `state`; the server plans for at most `compute` s, this waits at most `wait` s.
+        """A Plan from `state`; the server plans for at most `deadline` s (from its arrival), this waits at most `wait` s.
 
         evaluate=True plans reward only (no information term) on the current model and records
         the episode (`episode`, or else the episode of the next recorded transition) as an
@@ -322,7 +322,7 @@ class RobotSession:
             rid = self._next_request_id
             self._next_request_id += 1
             request = types_pb2.PlanRequest(
-                request_id=rid, state=s.tolist(), previous_action=prev, deadline_ms=max(1.0, compute * 1000),
+                request_id=rid, state=s.tolist(), previous_action=prev, deadline_ms=max(1.0, deadline * 1000),
                 evaluate=bool(evaluate), episode=int(episode))
             if settings is not None:
                 request.objective.CopyFrom(settings)
@@ -337,12 +337,12 @@ class RobotSession:
                 raise waiter[1]
             return Plan.from_message(waiter[1])
 
-    def act(self, state, previous_action, compute, wait, *, evaluate=False, episode=0, objective=None):
+    def act(self, state, previous_action, deadline, wait, *, evaluate=False, episode=0, objective=None):
         """The watchdog: the first action of a plan that comes within `wait` s and is still valid,
         else the safe action. evaluate, episode and objective as for plan()."""
         previous = _vector("previous_action", previous_action)
         try:
-            plan = self.plan(state, previous, compute, wait, evaluate=evaluate, episode=episode,
+            plan = self.plan(state, previous, deadline, wait, evaluate=evaluate, episode=episode,
                              objective=objective)
             if plan.actions.shape[0] == 0 or plan.actions.shape[1] != previous.size:
                 why = f"the plan's first step has {plan.actions.shape[1] if plan.actions.size else 0} actions"

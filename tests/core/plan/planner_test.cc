@@ -49,12 +49,12 @@ TEST(PlannerTest, LinearQuadraticPlanIsWithinFivePercentOfTheLqrOptimum) {
   objective.known_reward.state_weight = {q(0, 0), q(0, 1)};
   objective.known_reward.action_weight = {r};
   PlannerOptions options;
-  options.horizon = horizon;
-  options.particles = 1;
-  options.population = 500;
-  options.elites = 50;
-  options.iterations = 60;
-  options.seed = 4;
+  options.set_horizon(horizon);
+  options.rollout.particles = 1;
+  options.cem.population = 500;
+  options.cem.elites = 50;
+  options.cem.iterations = 60;
+  options.cem.seed = 4;
   const SequenceLimits limits = SequenceLimits::Box(Eigen::VectorXf::Constant(1, -20),
                                                     Eigen::VectorXf::Constant(1, 20));
   const Eigen::Vector2f x0(problem(0, 1), problem(0, 2));
@@ -84,11 +84,11 @@ OffsetMembersModel DisagreeAboveTwo() {
 
 PlannerOptions SmallPlanner() {
   PlannerOptions options;
-  options.horizon = 10;
-  options.population = 200;
-  options.elites = 20;
-  options.iterations = 5;
-  options.seed = 12;
+  options.set_horizon(10);
+  options.cem.population = 200;
+  options.cem.elites = 20;
+  options.cem.iterations = 5;
+  options.cem.seed = 12;
   return options;
 }
 
@@ -162,7 +162,7 @@ TEST(PlannerTest, TrainedEnsembleExploresBeyondItsData) {
   objective.reward_weight = 0.0;
   objective.information_weight = 1.0;
   PlannerOptions options = SmallPlanner();
-  options.horizon = 15;
+  options.set_horizon(15);
   const SequenceLimits limits = SequenceLimits::Box(Eigen::VectorXf::Constant(1, -0.2f),
                                                     Eigen::VectorXf::Constant(1, 0.2f));
   absl::StatusOr<PlanResult> plan = Plan(model, {.state = Eigen::VectorXf::Constant(1, -1.0f),
@@ -204,13 +204,13 @@ TEST(PlannerTest, ActionsStayInsideBoundsAndRateLimitsOverRandomConfigurations) 
     objective.known_reward.kind = explore::KnownReward::Kind::kQuadratic;
     objective.known_reward.target.assign(sd, 10.0 * rng.Normal());
     PlannerOptions options;
-    options.horizon = 1 + static_cast<int>(rng.UniformInt(12));
-    options.population = 30;
-    options.elites = 5;
-    options.iterations = 1 + static_cast<int>(rng.UniformInt(3));
-    options.particles = 2;
-    options.noise_beta = 3.0 * rng.Uniform();
-    options.seed = trial;
+    options.set_horizon(1 + static_cast<int>(rng.UniformInt(12)));
+    options.cem.population = 30;
+    options.cem.elites = 5;
+    options.cem.iterations = 1 + static_cast<int>(rng.UniformInt(3));
+    options.rollout.particles = 2;
+    options.cem.noise_beta = 3.0 * rng.Uniform();
+    options.cem.seed = trial;
     Eigen::VectorXf state = Eigen::VectorXf::Random(sd);
     CemWarmStart warm;
     for (int step = 0; step < 4; ++step) {
@@ -220,7 +220,7 @@ TEST(PlannerTest, ActionsStayInsideBoundsAndRateLimitsOverRandomConfigurations) 
                                                      .options = options,
                                                      .warm_start = step == 0 ? nullptr : &warm});
       ASSERT_TRUE(plan.ok()) << plan.status();
-      for (int t = 0; t < options.horizon; ++t) {
+      for (int t = 0; t < options.horizon(); ++t) {
         for (int j = 0; j < ad; ++j) {
           const float u = plan->actions(t, j);
           const float before = t == 0 ? limits.previous[j] : plan->actions(t - 1, j);
@@ -264,8 +264,8 @@ TEST(PlannerTest, DeadlineCutsIterationsAndStillReturnsAValidPlan) {
   absl::Time clock = absl::UnixEpoch();
   const SlowModel model(inner, &clock);
   PlannerOptions options = SmallPlanner();
-  options.iterations = 20;
-  options.population_decay = 1.0;
+  options.cem.iterations = 20;
+  options.cem.population_decay = 1.0;
   PlanContext context;
   context.deadline = absl::UnixEpoch() + absl::Milliseconds(25);
   context.now = [&] { return clock; };
@@ -285,7 +285,7 @@ TEST(PlannerTest, ParallelTasksGiveTheSameResultAsOneThread) {
   // change a single bit of the plan.
   const OffsetMembersModel model(3, 2, {-0.1f, 0.0f, 0.05f, 0.2f}, 0.05f);
   PlannerOptions options = SmallPlanner();
-  options.propagation = Propagation::kTs1;
+  options.rollout.propagation = Propagation::kTs1;
   const SequenceLimits limits = SequenceLimits::Box(Eigen::Vector2f(-1, -1), Eigen::Vector2f(1, 1));
   const Eigen::Vector3f state(0.1f, 0.2f, 0.3f);
   absl::StatusOr<PlanResult> serial = Plan(model, {.state = state,
@@ -310,7 +310,7 @@ TEST(PlannerTest, ParallelTasksGiveTheSameResultAsOneThread) {
                                                        .options = options,
                                                        .context = context});
     ASSERT_TRUE(parallel.ok());
-    EXPECT_EQ(calls, options.iterations);
+    EXPECT_EQ(calls, options.cem.iterations);
     EXPECT_EQ(parallel->actions, serial->actions) << tasks << " tasks";
     EXPECT_EQ(parallel->objective, serial->objective);
   }
@@ -319,7 +319,7 @@ TEST(PlannerTest, ParallelTasksGiveTheSameResultAsOneThread) {
 TEST(PlannerTest, ResultHasTheDocumentedShapes) {
   const OffsetMembersModel model(3, 2, {0.0f, 0.1f, 0.2f}, 0.05f);
   PlannerOptions options = SmallPlanner();
-  options.horizon = 7;
+  options.set_horizon(7);
   const SequenceLimits limits = SequenceLimits::Box(Eigen::Vector2f(-1, -1), Eigen::Vector2f(1, 1));
   absl::StatusOr<PlanResult> plan = Plan(model, {.state = Eigen::Vector3f(0.1f, 0.2f, 0.3f),
                                                  .limits = limits,
@@ -333,7 +333,7 @@ TEST(PlannerTest, ResultHasTheDocumentedShapes) {
   EXPECT_EQ(plan->state_std.cols(), 3);
   EXPECT_EQ(plan->expected_reward.size(), 7);
   EXPECT_EQ(plan->information_gain.size(), 7);
-  EXPECT_EQ(plan->iterations, options.iterations);
+  EXPECT_EQ(plan->iterations, options.cem.iterations);
   EXPECT_EQ(plan->warm_start.mean.rows(), 7);
   EXPECT_GT(plan->evaluations, 0);
 }
@@ -365,7 +365,7 @@ TEST(PlannerTest, BadInputNamesTheFieldAndValues) {
             std::string::npos);
 
   PlannerOptions bad = options;
-  bad.particles = 0;
+  bad.rollout.particles = 0;
   plan = Plan(model, {.state = Eigen::VectorXf::Zero(2),
                       .limits = UnitHalfBox(),
                       .objective = objective,

@@ -106,12 +106,12 @@ TEST(SurvivalTest, NegativeTerminalValueAvoidsTheEdgeThatCostsMakeAttractive) {
   const LinearRolloutModel linear(Eigen::MatrixXf::Identity(1, 1), Eigen::MatrixXf::Identity(1, 1),
                                   Eigen::VectorXf::Zero(1));
   PlannerOptions options;
-  options.horizon = 10;
-  options.particles = 1;
-  options.population = 300;
-  options.elites = 30;
-  options.iterations = 8;
-  options.seed = 3;
+  options.set_horizon(10);
+  options.rollout.particles = 1;
+  options.cem.population = 300;
+  options.cem.elites = 30;
+  options.cem.iterations = 8;
+  options.cem.seed = 3;
   // At most 0.2 a step: from 2.9 the target 0 is out of reach within the horizon, and the
   // edge at 3.0 is one step away.
   const SequenceLimits limits = SequenceLimits::Box(Eigen::VectorXf::Constant(1, -0.2f),
@@ -135,8 +135,8 @@ TEST(SurvivalTest, NegativeTerminalValueAvoidsTheEdgeThatCostsMakeAttractive) {
       Plan(linear,
            {.state = x0, .limits = limits, .objective = objective_for(-100.0), .options = options});
   ASSERT_TRUE(costly.ok()) << costly.status();
-  EXPECT_EQ(zero->survival[options.horizon - 1], 0.0f) << "terminal_value 0 leaves the workspace";
-  EXPECT_EQ(costly->survival[options.horizon - 1], 1.0f) << "terminal_value -100 stays";
+  EXPECT_EQ(zero->survival[options.horizon() - 1], 0.0f) << "terminal_value 0 leaves the workspace";
+  EXPECT_EQ(costly->survival[options.horizon() - 1], 1.0f) << "terminal_value -100 stays";
   EXPECT_LT(costly->actions(0, 0), 0.0f);  // it backs away from the edge at once
 }
 
@@ -238,12 +238,12 @@ TEST_F(LearnedEdgeTest, RewardSeekingPlanKeepsItsParticlesAlive) {
   objective.known_reward.lower = {0.6};
   objective.known_reward.upper = {0.9};
   PlannerOptions options;
-  options.horizon = 20;
-  options.particles = 10;
-  options.population = 300;
-  options.elites = 30;
-  options.iterations = 6;
-  options.seed = 5;
+  options.set_horizon(20);
+  options.rollout.particles = 10;
+  options.cem.population = 300;
+  options.cem.elites = 30;
+  options.cem.iterations = 6;
+  options.cem.seed = 5;
   const SequenceLimits limits = SequenceLimits::Box(Eigen::VectorXf::Constant(1, -1.0f),
                                                     Eigen::VectorXf::Constant(1, 1.0f));
   Eigen::VectorXf x0(2);
@@ -253,7 +253,7 @@ TEST_F(LearnedEdgeTest, RewardSeekingPlanKeepsItsParticlesAlive) {
   ASSERT_TRUE(plan.ok()) << plan.status();
   EXPECT_GT(plan->expected_return, 2.0) << "the plan reaches the reward zone";
   // Stated level: every particle still alive with probability >= 0.8 at the horizon's end.
-  EXPECT_GE(plan->min_survival[options.horizon - 1], 0.8f);
+  EXPECT_GE(plan->min_survival[options.horizon() - 1], 0.8f);
 
   // Heading for the edge at 0.5 m/s from 0.75 m (full braking stops it about 0.1 m later): a
   // negative terminal_value must keep the particles at least as alive as 0 does, and alive.
@@ -264,13 +264,13 @@ TEST_F(LearnedEdgeTest, RewardSeekingPlanKeepsItsParticlesAlive) {
   auto with_loss =
       Plan(model, {.state = x0, .limits = limits, .objective = objective, .options = options});
   ASSERT_TRUE(with_zero.ok() && with_loss.ok());
-  const float zero_end = with_zero->survival[options.horizon - 1];
-  const float loss_end = with_loss->survival[options.horizon - 1];
+  const float zero_end = with_zero->survival[options.horizon() - 1];
+  const float loss_end = with_loss->survival[options.horizon() - 1];
   EXPECT_GE(loss_end, zero_end - 0.02f);
   EXPECT_GE(loss_end, 0.8f);
   std::printf("survival at the horizon's end: from rest %.3f (lowest particle %.3f); heading "
               "out, terminal_value 0: %.3f, -5: %.3f\n",
-              plan->survival[options.horizon - 1], plan->min_survival[options.horizon - 1],
+              plan->survival[options.horizon() - 1], plan->min_survival[options.horizon() - 1],
               zero_end, loss_end);
 }
 

@@ -73,10 +73,13 @@ TEST(ConvertTest, ConfigFromSpecRefusesEachBadFieldByName) {
        {"spec.training.min_transitions", "1"}},
       {"horizon",
        [](v1::RobotSpec* s) { s->mutable_planner()->set_horizon(501); },
-       {"planner.horizon", "501"}},
+       {"spec.planner: horizon", "501", "1..500"}},
+      {"particles beyond an int",
+       [](v1::RobotSpec* s) { s->mutable_planner()->set_particles(4000000000u); },
+       {"spec.planner: particles", "4000000000"}},
       {"population",
        [](v1::RobotSpec* s) { s->mutable_planner()->set_population(100001); },
-       {"planner.population", "100001"}},
+       {"spec.planner: population", "100001", "1..100000"}},
       {"discount",
        [](v1::RobotSpec* s) { s->mutable_objective()->set_discount(1.5); },
        {"objective", "discount", "1.5"}},
@@ -162,7 +165,7 @@ TEST(ConvertTest, PlanInputFromWireChecksTheRequestAndCountsTheDeadlineFromArriv
        {"request.previous_action[0]", "2.5", "[-2, 2]"}},
       {"planner override",
        [](v1::PlanRequest* r) { r->mutable_planner()->set_horizon(9999); },
-       {"request.planner.horizon", "9999"}},
+       {"request.planner: horizon", "9999"}},
   };
   for (const Case& c : cases) {
     v1::PlanRequest bad = request;

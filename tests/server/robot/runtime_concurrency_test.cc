@@ -44,11 +44,11 @@ robot::RobotConfig SmallRobot() {
   config.policy.every_n_transitions = 60;
   config.policy.min_transitions = 40;
   config.policy.at_episode_end = true;
-  config.planner.horizon = 6;
-  config.planner.population = 24;
-  config.planner.elites = 4;
-  config.planner.iterations = 2;
-  config.planner.particles = 3;
+  config.planner.set_horizon(6);
+  config.planner.cem.population = 24;
+  config.planner.cem.elites = 4;
+  config.planner.cem.iterations = 2;
+  config.planner.rollout.particles = 3;
   return config;
 }
 
@@ -120,7 +120,7 @@ TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
       input.state = Eigen::Vector2f(0.1f * static_cast<float>(seed), -0.2f);
       input.deadline = absl::Now() + absl::Seconds(5);
       input.planner = runtime->config().planner;
-      input.planner.seed = static_cast<uint64_t>(seed * 1000 + n);
+      input.planner.cem.seed = static_cast<uint64_t>(seed * 1000 + n);
       input.objective = runtime->config().objective;
       absl::StatusOr<robot::PlanOutcome> outcome = scheduler.Plan(*runtime, std::move(input));
       if (!outcome.ok()) {

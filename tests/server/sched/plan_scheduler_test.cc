@@ -35,7 +35,7 @@ class PlanSchedulerTest : public ::testing::Test {
     record.created_at = absl::Now();
     ASSERT_TRUE(store_->InsertRobot(record).ok());
     robot::RobotConfig config = test_configs::CartConfig("scheduled-cart");
-    config.planner.horizon = 4;
+    config.planner.set_horizon(4);
     runtime_ = std::make_unique<robot::RobotRuntime>(record.robot_id, config, store_.get());
     ASSERT_TRUE(runtime_->Load().ok());
   }
