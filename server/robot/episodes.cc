@@ -28,7 +28,8 @@ double EpisodeTally::RecentSuccessRate() const {
 }
 
 void EpisodeTracker::Add(const store::TransitionRecord& t, double success_return) {
-  if (current_steps_ > 0 && t.episode != current_episode_) Close(/*terminal=*/false, success_return);
+  if (current_steps_ > 0 && t.episode != current_episode_)
+    Close(/*terminal=*/false, success_return);
   if (evaluate_next_ && !replaying_) {
     MarkEvaluation(t.episode);
     evaluate_next_ = false;
@@ -46,7 +47,8 @@ void EpisodeTracker::AddPlanGain(double nats) {
 
 void EpisodeTracker::MarkEvaluation(uint64_t episode) {
   evaluation_episodes_.insert(episode);
-  while (evaluation_episodes_.size() > kMarked) evaluation_episodes_.erase(evaluation_episodes_.begin());
+  while (evaluation_episodes_.size() > kMarked)
+    evaluation_episodes_.erase(evaluation_episodes_.begin());
 }
 
 void EpisodeTracker::BeginReplay(bool rebuild) {

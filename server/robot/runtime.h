@@ -228,7 +228,8 @@ class RobotRuntime {
   PlanState plan_state_ ABSL_GUARDED_BY(mu_);
   // The published model and its checkpoints.
   std::shared_ptr<const PublishedModel> published_ ABSL_GUARDED_BY(mu_);
-  uint64_t highest_version_ ABSL_GUARDED_BY(mu_) = 0;  // of every stored checkpoint, readable or not
+  // The highest version of every stored checkpoint, readable or not.
+  uint64_t highest_version_ ABSL_GUARDED_BY(mu_) = 0;
   std::vector<std::string> load_problems_ ABSL_GUARDED_BY(mu_);
   // Training: a round is running, the last one failed, a round was asked for.
   bool training_ ABSL_GUARDED_BY(mu_) = false;

@@ -4,11 +4,12 @@
 // documented with the Transition message (proto/foray/v1/types.proto): a terminal transition
 // ends an episode, and so does a change of episode id (a time limit).
 
+#include "server/robot/episodes.h"
+
 #include <vector>
 
 #include "gtest/gtest.h"
 #include "server/robot/dataset.h"
-#include "server/robot/episodes.h"
 #include "server/robot/plan_state.h"
 
 namespace foray::robot {
