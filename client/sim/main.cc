@@ -41,6 +41,7 @@ ABSL_FLAG(int, steps, 0, "Control steps per episode; 0: the scenario's own lengt
 ABSL_FLAG(uint64_t, seed, 1, "Seed of the robots' initial states.");
 ABSL_FLAG(bool, realtime, false, "Pace each step to the control period instead of running flat out.");
 ABSL_FLAG(double, deadline_ms, 100.0, "Planning time per step, milliseconds.");
+ABSL_FLAG(double, nll_beta, 0.0, "beta of the models' beta-NLL training loss; 0: the plain NLL.");
 ABSL_FLAG(int, horizon, 0,
           "Planning horizon in control steps (at registration); 0: the scenario's own (15 for "
           "gantry and arm, 30 for bench, whose strike takes 1.5 s to play out).");
@@ -111,6 +112,7 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
   spec.mutable_training()->set_min_transitions(absl::GetFlag(FLAGS_min_transitions));
   spec.mutable_training()->set_every_n_transitions(absl::GetFlag(FLAGS_train_every));
   spec.mutable_training()->set_max_epochs(20);
+  if (absl::GetFlag(FLAGS_nll_beta) != 0.0) spec.mutable_training()->set_nll_beta(absl::GetFlag(FLAGS_nll_beta));
   spec.mutable_planner()->set_horizon(absl::GetFlag(FLAGS_horizon) > 0 ? absl::GetFlag(FLAGS_horizon)
                                                                        : s.plan_horizon());
   spec.mutable_planner()->set_population(150);

@@ -240,7 +240,7 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
                                                 Scalar* grad_params, Vector* grad_max_log_var,
                                                 Vector* grad_min_log_var,
                                                 GradientWorkspace* workspace,
-                                                const TerminationLoss& termination,
+                                                const LossOptions& loss_options,
                                                 Scalar* termination_bce) const {
   FORAY_CHECK(member >= 0 && member < size(), "member index out of range");
   FORAY_CHECK(x.cols() == input_dim(), "input has the wrong number of columns");
@@ -285,14 +285,19 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
           static_cast<double>(elements) +
       kHalfLog2Pi;
 
-  // Backward. dL/dmu = err * inv_var / N; dL/dlv = 0.5 (1 - err^2 inv_var) / N.
+  // Backward. dL/dmu = w err inv_var / N; dL/dlv = 0.5 w (1 - err^2 inv_var) / N, with the
+  // beta-NLL's weight w = exp(beta lv) held constant (1 for the plain NLL).
   const Scalar inv_n = Scalar(1) / static_cast<Scalar>(elements);
-  const auto d_lv = (Scalar(0.5) * inv_n * (Scalar(1) - err.square() * inv_var)).eval();
+  const Scalar beta = static_cast<Scalar>(loss_options.nll_beta);
+  using Array = Eigen::Array<Scalar, Eigen::Dynamic, Eigen::Dynamic>;
+  const Array scale = beta == Scalar(0) ? Array::Constant(rows, d, inv_n)
+                                        : Array((beta * log_var).exp() * inv_n);
+  const auto d_lv = (Scalar(0.5) * scale * (Scalar(1) - err.square() * inv_var)).eval();
   const auto sig_u = Sigmoid(u).eval();
   const auto sig_v = Sigmoid(v).eval();
   Matrix& delta = ws.delta;
   delta.resize(rows, layer_fan_out(layers - 1));
-  delta.leftCols(d) = (err * inv_var * inv_n).matrix();
+  delta.leftCols(d) = (err * inv_var * scale).matrix();
   delta.middleCols(d, d) = (d_lv * sig_v * sig_u).matrix();
   if (termination_head_) {
     // Weighted BCE with logits, written as PyTorch does for stability:
@@ -301,13 +306,14 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
     if (train_head) {
       const auto z = ws.out.col(2 * d).array();
       const auto t = y.col(d).array();
-      const Scalar w_pos = static_cast<Scalar>(termination.pos_weight);
+      const Scalar w_pos = static_cast<Scalar>(loss_options.pos_weight);
       const auto coeff = (Scalar(1) + (w_pos - Scalar(1)) * t).eval();
       const double bce = ((Scalar(1) - t) * z + coeff * Softplus((-z).eval()))
                              .template cast<double>().sum() / static_cast<double>(rows);
       if (termination_bce != nullptr) *termination_bce = static_cast<Scalar>(bce);
-      const Scalar scale = static_cast<Scalar>(termination.weight) / static_cast<Scalar>(rows);
-      delta.col(2 * d) = (scale * (Sigmoid(z.eval()) * coeff - w_pos * t)).matrix();
+      const Scalar head_scale =
+          static_cast<Scalar>(loss_options.termination_weight) / static_cast<Scalar>(rows);
+      delta.col(2 * d) = (head_scale * (Sigmoid(z.eval()) * coeff - w_pos * t)).matrix();
     } else {
       delta.col(2 * d).setZero();
       if (termination_bce != nullptr) *termination_bce = Scalar(0);

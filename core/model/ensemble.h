@@ -122,21 +122,27 @@ class EnsembleT {
   //   BCE = 1/rows * sum -[ w_pos t ln sigmoid(z) + (1 - t) ln(1 - sigmoid(z)) ],
   // the gradient is that of L + termination.weight * BCE, and BCE is written to
   // *termination_bce (when not null). Without the column the head's gradient is zero.
+  // With loss.nll_beta = beta > 0 the gradient is that of the beta-NLL of Seitzer et al.
+  // (ICLR 2022, "On the pitfalls of heteroscedastic uncertainty estimation with probabilistic
+  // neural networks"): each element's NLL term weighted by stop_gradient(exp(beta * lv)), i.e.
+  // the predicted variance to the power beta, so that rows the model calls noisy do not stop
+  // their mean from being fitted. The returned L stays the plain NLL.
   // `workspace` holds the layer buffers between calls (one per thread); null: a fresh one.
   struct GradientWorkspace {
     std::vector<Matrix> hidden;  // per hidden layer: act(z_l), the next layer's input
     std::vector<Matrix> slope;   // per hidden layer: act'(z_l)
     Matrix out, delta, back;
   };
-  struct TerminationLoss {
-    double weight = 1.0;      // of the BCE beside the NLL, >= 0
+  struct LossOptions {
+    double termination_weight = 1.0;  // of the BCE beside the NLL, >= 0
     double pos_weight = 1.0;  // w_pos: weight of the terminal rows, >= 1 (rare terminals count)
+    double nll_beta = 0.0;    // beta of the beta-NLL, [0, 1]; 0: the plain NLL
   };
   Scalar MemberLossAndGradient(int member, const Matrix& x, const Matrix& y,
                                Scalar* grad_params, Vector* grad_max_log_var,
                                Vector* grad_min_log_var,
                                GradientWorkspace* workspace = nullptr,
-                               const TerminationLoss& termination = {},
+                               const LossOptions& loss = {},
                                Scalar* termination_bce = nullptr) const;
 
   // L of MemberLossAndGradient without the gradient (y's terminal column, if any, ignored).

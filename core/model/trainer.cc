@@ -114,6 +114,10 @@ absl::Status TrainingOptions::Validate() const {
     return absl::InvalidArgumentError(absl::StrFormat(
         "max_terminal_pos_weight is %g, expected in [1, 1000]", max_terminal_pos_weight));
   }
+  if (!(nll_beta >= 0 && nll_beta <= 1)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("nll_beta is %g, expected in [0, 1]", nll_beta));
+  }
   if (patience < 1 || patience > 10000) {
     return absl::InvalidArgumentError(
         absl::StrFormat("patience is %d, expected 1..10000", patience));
@@ -300,7 +304,9 @@ bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
   const float penalty = static_cast<float>(options_.log_var_bound_penalty);
   const Eigen::Index d = current_.output_dim();
   member_steps_.resize(members);
-  const Ensemble::TerminationLoss termination{options_.termination_weight, pos_weight_};
+  const Ensemble::LossOptions loss{.termination_weight = options_.termination_weight,
+                                   .pos_weight = pos_weight_,
+                                   .nll_beta = options_.nll_beta};
   double nll_sum = 0;
   for (int s = 0; s < steps; ++s) {
     const int begin = s * batch;
@@ -314,7 +320,7 @@ bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
       m.grad_max.setZero(d);
       m.grad_min.setZero(d);
       m.nll = current_.MemberLossAndGradient(b, m.x, m.y, grad_.col(b).data(), &m.grad_max,
-                                             &m.grad_min, &m.workspace, termination, &m.bce);
+                                             &m.grad_min, &m.workspace, loss, &m.bce);
     });
     grad_max_.setZero();
     grad_min_.setZero();

@@ -66,6 +66,11 @@ struct TrainingOptions {
   // the head predict termination wherever the model is unsure.
   double termination_weight = 1.0;
   double max_terminal_pos_weight = 10.0;
+  // beta of the beta-NLL (Seitzer et al., ICLR 2022; Ensemble::MemberLossAndGradient): each
+  // element's NLL weighted by its predicted variance^beta, held constant. 0 is the plain
+  // Gaussian NLL; the paper recommends 0.5. Range [0, 1]. Early stopping and the report use
+  // the plain NLL either way.
+  double nll_beta = 0.0;
   // Fraction of transitions held out for early stopping and the report. Range [0, 0.5].
   double holdout_fraction = 0.1;
   // Stop after this many epochs without a holdout improvement. Range 1..10000.

@@ -232,6 +232,7 @@ absl::StatusOr<robot::RobotConfig> ConfigFromSpec(const v1::RobotSpec& spec) {
   if (t.max_epochs() != 0) c.training.max_epochs = static_cast<int>(t.max_epochs());
   if (t.holdout_fraction() != 0) c.training.holdout_fraction = t.holdout_fraction();
   if (t.patience() != 0) c.training.patience = static_cast<int>(t.patience());
+  if (t.has_nll_beta()) c.training.nll_beta = t.nll_beta();
   if (absl::Status st = c.training.Validate(); !st.ok()) {
     return Invalid(absl::StrCat("spec.training: ", st.message()));
   }

@@ -63,12 +63,16 @@ Ensemble FromReference(const Arrays& a) {
   return *std::move(e);
 }
 
-// "tanh" runs without a termination head (the layout of models saved before it).
+// "tanh" runs without a termination head (the layout of models saved before it); "silu_beta"
+// takes the gradients of the beta-NLL with beta 0.5 (Seitzer et al., ICLR 2022).
 class TorchForwardTest : public ::testing::TestWithParam<std::string> {};
 
 TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
   const bool head = GetParam() != "tanh";
-  const Arrays a = RunReference("--case forward --activation " + GetParam() + (head ? "" : " --no_head"),
+  const bool beta = GetParam() == "silu_beta";
+  const std::string activation = beta ? "silu" : GetParam();
+  const Arrays a = RunReference("--case forward --activation " + activation +
+                                    (head ? "" : " --no_head") + (beta ? " --nll_beta 0.5" : ""),
                                 "fwd-" + GetParam());
   ASSERT_FALSE(a.empty());
   const Ensemble e = FromReference(a);
@@ -79,8 +83,9 @@ TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
     y.conservativeResize(Eigen::NoChange, y.cols() + 1);
     y.col(y.cols() - 1) = a.at("terminal").cast<float>();
   }
-  Ensemble::TerminationLoss termination;
-  termination.pos_weight = a.at("pos_weight")(0);
+  Ensemble::LossOptions loss_options;
+  loss_options.pos_weight = a.at("pos_weight")(0);
+  loss_options.nll_beta = beta ? 0.5 : 0.0;
   Eigen::MatrixXf probability;
   ASSERT_TRUE(e.PredictTermination(a.at("states").cast<float>(), a.at("actions").cast<float>(),
                                    &probability).ok());
@@ -110,7 +115,7 @@ TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
     Eigen::VectorXf grad_min = Eigen::VectorXf::Zero(e.output_dim());
     float bce = -1;
     const float loss = e.MemberLossAndGradient(b, x, y, grad.data(), &grad_max, &grad_min,
-                                               nullptr, termination, &bce);
+                                               nullptr, loss_options, &bce);
     EXPECT_NEAR(loss, a.at("loss_" + s)(0), 1e-5 * std::abs(a.at("loss_" + s)(0)));
     if (head) EXPECT_NEAR(bce, a.at("bce_" + s)(0), 1e-5 * std::abs(a.at("bce_" + s)(0)));
     // Issue target: gradients within 1e-4 relative, per parameter block.
@@ -132,7 +137,7 @@ TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
 }
 
 INSTANTIATE_TEST_SUITE_P(Activations, TorchForwardTest,
-                         ::testing::Values("silu", "relu", "tanh"));
+                         ::testing::Values("silu", "relu", "tanh", "silu_beta"));
 
 // Full-batch training without bootstrap, holdout or normaliser refit is exactly AdamW on the
 // summed member NLL plus the bound penalty: each epoch is one step, as in the reference.

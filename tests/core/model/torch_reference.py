@@ -143,10 +143,14 @@ def case_forward(args):
         w.put(f"raw_mean_{b}", mean * out_std + out_mean)
         w.put(f"raw_var_{b}", torch.exp(lv) * out_std ** 2)
         loss = nll(mean, lv, target)
-        total = loss
+        # The beta-NLL (Seitzer et al., ICLR 2022): each element's term weighted by
+        # var.detach() ** beta; the gradient target. The reported loss stays the plain NLL.
+        total = loss if args.nll_beta == 0 else (
+            0.5 * ((mean - target) ** 2 * torch.exp(-lv) + lv + math.log(2 * math.pi))
+            * torch.exp(lv).detach() ** args.nll_beta).mean()
         if head:
             termination = bce(logit, terminal, pos_weight)
-            total = loss + termination  # termination weight 1
+            total = total + termination  # termination weight 1
             w.put(f"logit_{b}", logit)
             w.put(f"probability_{b}", torch.sigmoid(logit))
             w.put(f"bce_{b}", termination)
@@ -203,6 +207,7 @@ def main():
     parser.add_argument("--activation", choices=sorted(ACTIVATIONS), default="silu")
     parser.add_argument("--seed", type=int, default=2026)
     parser.add_argument("--no_head", action="store_true", help="an ensemble without a termination head")
+    parser.add_argument("--nll_beta", type=float, default=0.0, help="gradients of the beta-NLL")
     parser.add_argument("--out", required=True)
     args = parser.parse_args()
     torch.manual_seed(args.seed)
