@@ -111,6 +111,7 @@ def run_one(args, scenario, strategy, seed):
                  f"--deadline_ms={args.deadline_ms}", f"--report={report_path}",
                  f"--evaluate_every={args.evaluate_every}", f"--evaluation_episodes={args.evaluations}",
                  f"--terminal_value={args.terminal_value}", f"--horizon={args.horizon}",
+                 f"--nll_beta={args.nll_beta}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
             if result.returncode != 0:
@@ -261,6 +262,8 @@ def main(argv=None):
     parser.add_argument("--evaluations", type=int, default=2, help="E: evaluation episodes per round")
     parser.add_argument("--terminal_value", type=float, default=0.0,
                         help="the robots' objective value of a terminal state (foray-sim --terminal_value)")
+    parser.add_argument("--nll_beta", type=float, default=0.0,
+                        help="beta of the models' beta-NLL training loss (foray-sim --nll_beta); 0: plain NLL")
     parser.add_argument("--no-plots", action="store_true")
     args = parser.parse_args(argv)
     os.makedirs(args.out, exist_ok=True)
