@@ -9,6 +9,7 @@
 #include <csignal>
 #include <cstdio>
 #include <fstream>
+#include <iterator>
 #include <memory>
 #include <map>
 #include <string>
@@ -38,6 +39,12 @@
 ABSL_FLAG(std::string, address, "127.0.0.1:50151", "forayd's gRPC address, host:port.");
 ABSL_FLAG(std::string, token, "", "Bearer token (admin or a robot's own); overrides --token_file.");
 ABSL_FLAG(std::string, token_file, "./foray-data/admin-token", "File whose first line is the token.");
+ABSL_FLAG(std::string, tls_ca, "",
+          "PEM file of the certificate authority (or the self-signed certificate) that signed "
+          "forayd's certificate: connect over TLS (forayd --tls_cert). Empty: plaintext.");
+ABSL_FLAG(std::string, tls_server_name, "",
+          "TLS: the name to check forayd's certificate against, when it is not the host in "
+          "--address.");
 ABSL_FLAG(double, seconds, 0, "watch: stop after this many seconds (0: until Ctrl-C).");
 ABSL_FLAG(bool, plain, false, "watch: print one line per event instead of redrawing a table.");
 ABSL_FLAG(std::string, token_out, "", "register: write the new robot's id and token to this file (0600).");
@@ -472,6 +479,35 @@ std::string ReadToken() {
   return words.empty() ? "" : std::string(absl::StripAsciiWhitespace(words.back()));
 }
 
+// Plaintext, or TLS checked against --tls_ca; null (after saying why) when the file cannot be
+// read.
+std::shared_ptr<grpc::Channel> OpenChannel() {
+  const std::string address = absl::GetFlag(FLAGS_address);
+  const std::string ca_path = absl::GetFlag(FLAGS_tls_ca);
+  if (ca_path.empty()) {
+    if (!absl::GetFlag(FLAGS_tls_server_name).empty()) {
+      std::fprintf(stderr, "foray: --tls_server_name needs --tls_ca\n");
+      return nullptr;
+    }
+    return grpc::CreateChannel(address, grpc::InsecureChannelCredentials());
+  }
+  std::ifstream in(ca_path, std::ios::binary);
+  std::string pem((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+  if (!in.good() && !in.eof()) pem.clear();
+  if (pem.find("-----BEGIN CERTIFICATE-----") == std::string::npos) {
+    std::fprintf(stderr, "foray: --tls_ca \"%s\" %s\n", ca_path.c_str(),
+                 pem.empty() ? "cannot be read" : "holds no PEM certificate");
+    return nullptr;
+  }
+  grpc::SslCredentialsOptions options;
+  options.pem_root_certs = std::move(pem);
+  grpc::ChannelArguments arguments;
+  if (const std::string name = absl::GetFlag(FLAGS_tls_server_name); !name.empty()) {
+    arguments.SetSslTargetNameOverride(name);
+  }
+  return grpc::CreateCustomChannel(address, grpc::SslCredentials(options), arguments);
+}
+
 // The server's stubs and the caller's token, for the commands.
 struct Server {
   std::unique_ptr<v1::Monitoring::Stub> monitoring;
@@ -587,7 +623,8 @@ int main(int argc, char** argv) {
   }
   const Operands operands(args.begin() + 2, args.end());
   if (operands.size() >= known->min_operands && operands.size() <= known->max_operands) {
-    auto channel = grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials());
+    const std::shared_ptr<grpc::Channel> channel = OpenChannel();
+    if (channel == nullptr) return 2;
     Server server{v1::Monitoring::NewStub(channel), v1::RobotRegistry::NewStub(channel),
                   v1::RobotSession::NewStub(channel), v1::Models::NewStub(channel), token};
     return known->run(server, operands);

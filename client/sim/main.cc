@@ -38,7 +38,9 @@ ABSL_FLAG(std::string, robots, "gantry,arm", "Comma-separated scenarios, one rob
 ABSL_FLAG(std::string, name_prefix, "sim", "Robots are named PREFIX-SCENARIO-N.");
 ABSL_FLAG(int, episodes, 20, "Episodes per robot; 0 runs until Ctrl-C.");
 ABSL_FLAG(int, steps, 0, "Control steps per episode; 0: the scenario's own length.");
-ABSL_FLAG(uint64_t, seed, 1, "Seed of the robots' initial states.");
+ABSL_FLAG(uint64_t, seed, 1,
+          "Seed of the run: each robot's initial states, its plans and its training (the robot "
+          "spec's seed) derive from it.");
 ABSL_FLAG(bool, realtime, false, "Pace each step to the control period instead of running flat out.");
 ABSL_FLAG(double, deadline_ms, 100.0, "Planning time per step, milliseconds.");
 ABSL_FLAG(double, nll_beta, 0.0, "beta of the models' beta-NLL training loss; 0: the plain NLL.");
@@ -87,8 +89,10 @@ void Say(const std::string& line) {
   std::fflush(stdout);
 }
 
-v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
+// `seed`: the robot's own random streams (its plans and training).
+v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed) {
   v1::RobotSpec spec;
+  spec.set_seed(seed);
   spec.set_name(name);
   for (const auto& d : s.state_dims()) {
     auto* dim = spec.add_state();
@@ -112,7 +116,9 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name) {
   spec.mutable_training()->set_min_transitions(absl::GetFlag(FLAGS_min_transitions));
   spec.mutable_training()->set_every_n_transitions(absl::GetFlag(FLAGS_train_every));
   spec.mutable_training()->set_max_epochs(20);
-  if (absl::GetFlag(FLAGS_nll_beta) != 0.0) spec.mutable_training()->set_nll_beta(absl::GetFlag(FLAGS_nll_beta));
+  if (absl::GetFlag(FLAGS_nll_beta) != 0.0) {
+    spec.mutable_training()->set_nll_beta(absl::GetFlag(FLAGS_nll_beta));
+  }
   spec.mutable_planner()->set_horizon(absl::GetFlag(FLAGS_horizon) > 0 ? absl::GetFlag(FLAGS_horizon)
                                                                        : s.plan_horizon());
   spec.mutable_planner()->set_population(150);
@@ -159,7 +165,9 @@ std::vector<double> BaselineAction(const Scenario& sim, const std::vector<foray:
 
 // Runs the episodes of one robot; returns false on an error that stops it.
 bool RunRobot(const std::string& kind, int index) {
-  auto scenario = foray::sim::MakeScenario(kind, absl::GetFlag(FLAGS_seed) * 1000 + index);
+  // One seed per robot and run, for its simulation and (in its spec) its plans and training.
+  const uint64_t seed = absl::GetFlag(FLAGS_seed) * 1000 + index;
+  auto scenario = foray::sim::MakeScenario(kind, seed);
   if (!scenario.ok()) {
     Say(std::string(scenario.status().message()));
     return false;
@@ -172,7 +180,7 @@ bool RunRobot(const std::string& kind, int index) {
   bool registered = false;
   absl::StatusOr<foray::client::Identity> id = foray::client::RobotSession::LoadOrRegister(
       (state_dir / (name + ".token")).string(), absl::GetFlag(FLAGS_address), nullptr,
-      absl::GetFlag(FLAGS_admin_token_file), SpecFor(sim, name), &registered);
+      absl::GetFlag(FLAGS_admin_token_file), SpecFor(sim, name, seed), &registered);
   if (!id.ok()) {
     Say(absl::StrFormat("%s: %s", name, id.status().message()));
     return false;

@@ -195,3 +195,37 @@ def test_bad_input_files_and_usage_say_what_to_fix(forayd, tmp_path):  # noqa: F
     for command in ("register", "robots", "status", "watch", "plan", "export", "import", "train",
                     "checkpoints", "restore", "archive"):
         assert foray(forayd, command, "--help").returncode == 0
+
+
+# --- Over TLS: forayd --tls_cert/--tls_key, foray --tls_ca ---
+
+def test_cli_over_tls(tmp_path):
+    """A self-signed certificate for 127.0.0.1 made by openssl at test time (as the service's
+    TLS test does): with --tls_ca the CLI reaches a TLS-only forayd, without it the plaintext
+    channel is refused; a CA file that is not PEM is a usage error naming the file."""
+    from conftest import Forayd
+
+    cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
+    subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
+                    "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1,DNS:foray.lab",
+                    "-keyout", str(key), "-out", str(cert)], check=True, capture_output=True)
+    data = tmp_path / "data"
+    data.mkdir()
+    server = Forayd(str(data), [f"--tls_cert={cert}", f"--tls_key={key}"])
+    try:
+        secure = foray(server, "robots", f"--tls_ca={cert}")
+        assert secure.returncode == 0, secure.stderr
+        named = foray(server, "robots", f"--tls_ca={cert}", "--tls_server_name=foray.lab")
+        assert named.returncode == 0, named.stderr
+        wrong_name = foray(server, "robots", f"--tls_ca={cert}", "--tls_server_name=other.lab")
+        assert wrong_name.returncode == 1, wrong_name.stdout + wrong_name.stderr
+        plain = foray(server, "robots")
+        assert plain.returncode == 1, plain.stdout + plain.stderr
+        not_pem = tmp_path / "ca.txt"
+        not_pem.write_text("not a certificate\n")
+        bad = foray(server, "robots", f"--tls_ca={not_pem}")
+        assert bad.returncode == 2 and str(not_pem) in bad.stderr and "no PEM" in bad.stderr
+        missing = foray(server, "robots", f"--tls_ca={tmp_path / 'absent.pem'}")
+        assert missing.returncode == 2 and "cannot be read" in missing.stderr
+    finally:
+        assert server.stop() == 0

@@ -131,6 +131,18 @@ TEST(ConvertTest, ConfigFromSpecFillsTheDocumentedDefaultsAndRoundsLimitsInward)
   EXPECT_EQ(config->objective.observation_noise, 0.05);  // documented in types.proto
   EXPECT_EQ(config->objective.reward_weight, 1.0);
   EXPECT_EQ(config->coverage_indices, (std::vector<int>{0, 1}));
+  EXPECT_EQ(config->planner.cem.seed, 1u);  // documented in types.proto: absent means 1
+  EXPECT_EQ(config->training.seed, 1u);
+  EXPECT_EQ(config->training.nll_beta, 0.0);
+}
+
+TEST(ConvertTest, TheSpecsSeedSeedsThePlansAndTheTraining) {
+  v1::RobotSpec spec = ValidSpec();
+  spec.set_seed(424242);
+  absl::StatusOr<robot::RobotConfig> config = ConfigFromSpec(spec);
+  ASSERT_TRUE(config.ok()) << config.status();
+  EXPECT_EQ(config->planner.cem.seed, 424242u);
+  EXPECT_EQ(config->training.seed, 424242u);
 }
 
 TEST(ConvertTest, PlanInputFromWireChecksTheRequestAndCountsTheDeadlineFromArrival) {
