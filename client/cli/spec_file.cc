@@ -205,7 +205,8 @@ absl::StatusOr<v1::RobotSpec> ParseSpecJson(std::string_view text) {
     return absl::InvalidArgumentError(absl::StrCat("not valid JSON: ", e.what()));
   }
   if (absl::Status s = OnlyKeys(doc, "", {"name", "control_period_s", "state", "action", "model", "training",
-                                          "planner", "objective", "coverage", "success_return"});
+                                          "planner", "objective", "coverage", "success_return",
+                                          "seed"});
       !s.ok()) {
     return s;
   }
@@ -238,6 +239,14 @@ absl::StatusOr<v1::RobotSpec> ParseSpecJson(std::string_view text) {
     absl::StatusOr<double> threshold = Number(doc["success_return"], "success_return");
     if (!threshold.ok()) return threshold.status();
     spec.set_success_return(*threshold);
+  }
+  if (doc.contains("seed")) {
+    const json& seed = doc["seed"];
+    if (!seed.is_number_integer() || seed.is_number_float() ||
+        (!seed.is_number_unsigned() && seed.get<int64_t>() < 0)) {
+      return Bad("seed", absl::StrCat(Shown(seed), " is not a whole number >= 0"));
+    }
+    spec.set_seed(seed.get<uint64_t>());
   }
   if (doc.contains("coverage")) {
     const json& c = doc["coverage"];

@@ -108,6 +108,9 @@ def test_bad_input_is_refused_with_the_field_named(forayd, tmp_path):  # noqa: F
         spec_from_dict(dict(SPEC, planner={"horizn": 3}))
     with pytest.raises(ValueError, match="'gelu' is not one of silu, relu, tanh"):
         spec_from_dict(dict(SPEC, model={"activation": "gelu"}))
+    with pytest.raises(ValueError, match="seed: -7 is not a whole number"):
+        spec_from_dict(dict(SPEC, seed=-7))
+    assert spec_from_dict(dict(SPEC, seed=2 ** 64 - 1)).seed == 2 ** 64 - 1
 
 
 def test_spec_files_read_the_same_in_python_and_in_the_cli(tmp_path):

@@ -9,7 +9,7 @@ from google.protobuf import json_format
 from ._stubs import types_pb2
 
 _TOP = ("name", "control_period_s", "state", "action", "model", "training", "planner", "objective", "coverage",
-        "success_return")
+        "success_return", "seed")
 
 
 def _choice_names(enum_type):
@@ -38,6 +38,12 @@ def _settings(value, descriptor, path):
     return out
 
 
+def _seed(value):
+    if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value < 2 ** 64:
+        raise ValueError(f"seed: {value!r} is not a whole number in 0..2^64-1")
+    return str(value)  # the protobuf JSON form of a uint64
+
+
 def spec_from_dict(d):
     """A RobotSpec from a dict in the spec-file format; ValueError names what is wrong."""
     unknown = [k for k in d if k not in _TOP]
@@ -48,6 +54,7 @@ def spec_from_dict(d):
             raise ValueError(f"{key}: required key is missing")
     out = {"name": d["name"], "control_period_s": d["control_period_s"],
            **({"success_return": d["success_return"]} if "success_return" in d else {}),
+           **({"seed": _seed(d["seed"])} if "seed" in d else {}),
            "state": [{k: v for k, v in s.items()} for s in d["state"]],
            "action": [], "action_limits": []}
     for i, a in enumerate(d["action"]):

@@ -23,6 +23,7 @@ constexpr char kFull[] = R"({
                 "terminal_value": -40,
                 "known_termination": {"indices": [0], "lower": [-1.5], "upper": [1.5], "outside": true}},
   "success_return": 3,
+  "seed": 18446744073709551615,
   "coverage": {"indices": [0, 1], "lower": [0, -0.5], "upper": [1, 0.5], "cells": 16}
 })";
 
@@ -52,6 +53,8 @@ TEST(SpecFileTest, EveryPartReachesTheSpec) {
   EXPECT_EQ(spec->objective().known_termination().upper(0), 1.5);
   EXPECT_TRUE(spec->has_success_return());
   EXPECT_EQ(spec->success_return(), 3.0);
+  EXPECT_TRUE(spec->has_seed());
+  EXPECT_EQ(spec->seed(), 18446744073709551615u);  // 2^64 - 1, the largest seed
   EXPECT_EQ(spec->coverage_cells(), 16u);
   EXPECT_EQ(spec->coverage_upper(1), 0.5);
 }
@@ -70,6 +73,8 @@ TEST(SpecFileTest, MistakesAreNamedWithTheirValues) {
   auto with = [](const std::string& extra) { return std::string("{") + kBase + extra + "}"; };
   ExpectRefused(with(R"(, "planner": {"horizn": 5})"), "planner.horizn: unknown key; planner has horizon,");
   ExpectRefused(with(R"(, "colour": 1)"), "colour: unknown key");
+  ExpectRefused(with(R"(, "seed": -7)"), "seed: -7 is not a whole number >= 0");
+  ExpectRefused(with(R"(, "seed": 1.5)"), "seed: 1.5 is not a whole number >= 0");
   ExpectRefused(with(R"(, "planner": {"horizon": -3})"), "planner.horizon: -3 is outside 0..4294967295");
   ExpectRefused(with(R"(, "planner": {"horizon": 2.5})"), "planner.horizon: 2.5 is not a whole number");
   ExpectRefused(with(R"(, "model": {"activation": "gelu"})"),
