@@ -166,10 +166,14 @@ TEST(RuntimeConcurrencyTest, AppendPlanTrainAndMonitorAtOnce) {
   planner_a.join();
   planner_b.join();
   monitor.join();
-  // Let the trainer see the last transitions, then stop it (a round in progress finishes).
+  // Let the trainer see the last transitions, then stop it. A round that is running when the
+  // request is made does not answer it (it trains on what it started with), so wait until no
+  // round runs and none is due.
   runtime->RequestTraining();
   const absl::Time until = absl::Now() + absl::Seconds(60);
-  while (runtime->WantsTraining() && absl::Now() < until) absl::SleepFor(absl::Milliseconds(10));
+  while ((runtime->WantsTraining() || runtime->Status().training) && absl::Now() < until) {
+    absl::SleepFor(absl::Milliseconds(10));
+  }
   trainer.Stop();
 
   const robot::RobotStatus status = runtime->Status();
