@@ -203,15 +203,9 @@ def test_cli_over_tls(tmp_path):
     """A self-signed certificate for 127.0.0.1 made by openssl at test time (as the service's
     TLS test does): with --tls_ca the CLI reaches a TLS-only forayd, without it the plaintext
     channel is refused; a CA file that is not PEM is a usage error naming the file."""
-    from conftest import Forayd
+    from conftest import tls_forayd
 
-    cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
-    subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
-                    "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1,DNS:foray.lab",
-                    "-keyout", str(key), "-out", str(cert)], check=True, capture_output=True)
-    data = tmp_path / "data"
-    data.mkdir()
-    server = Forayd(str(data), [f"--tls_cert={cert}", f"--tls_key={key}"])
+    server, cert = tls_forayd(tmp_path, "IP:127.0.0.1,DNS:foray.lab")
     try:
         secure = foray(server, "robots", f"--tls_ca={cert}")
         assert secure.returncode == 0, secure.stderr

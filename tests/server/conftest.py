@@ -82,3 +82,15 @@ def forayd():
             yield server
         finally:
             server.stop()
+
+
+def tls_forayd(tmp_path, alt_names="IP:127.0.0.1"):
+    """A TLS-only forayd with a self-signed certificate for 127.0.0.1 (and `alt_names`) made by
+    openssl at test time; returns (server, certificate path)."""
+    cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
+    subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
+                    "-subj", "/CN=127.0.0.1", "-addext", f"subjectAltName={alt_names}",
+                    "-keyout", str(key), "-out", str(cert)], check=True, capture_output=True)
+    data = tmp_path / "data"
+    data.mkdir()
+    return Forayd(str(data), [f"--tls_cert={cert}", f"--tls_key={key}"]), cert

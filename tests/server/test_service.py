@@ -433,16 +433,9 @@ def test_models_predict_matches_the_exported_weights_and_checkpoints_restore(for
 
 def test_tls_when_a_certificate_and_key_are_given(tmp_path):
     """A self-signed certificate for 127.0.0.1 made by openssl at test time."""
-    import subprocess
-    from conftest import Forayd
+    from conftest import tls_forayd
 
-    cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
-    subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
-                    "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1",
-                    "-keyout", str(key), "-out", str(cert)], check=True, capture_output=True)
-    data = tmp_path / "data"
-    data.mkdir()
-    server = Forayd(str(data), [f"--tls_cert={cert}", f"--tls_key={key}"])
+    server, cert = tls_forayd(tmp_path)
     try:
         assert "over TLS" in server.output()
         credentials = grpc.ssl_channel_credentials(root_certificates=cert.read_bytes())
