@@ -14,6 +14,7 @@ PACKAGES=(
   libprotobuf-dev        # Protocol Buffers C++ runtime
   libabsl-dev            # Abseil: status, flags, strings, synchronisation
   libeigen3-dev          # Eigen: the linear algebra of the models and planner
+  libhwy-dev             # Highway: the model's SIMD kernels, dispatched at run time (core/model)
   libmujoco-dev          # MuJoCo 2.2: the physics of the simulated contact robots (client/sim)
   libqhull-dev           # headers MuJoCo's CMake package names (/usr/include/libqhull_r)
   libsqlite3-dev         # SQLite: the embedded store

@@ -28,6 +28,7 @@
 #include "absl/strings/strip.h"
 #include "absl/time/clock.h"
 #include "absl/time/time.h"
+#include "core/model/simd_kernels.h"
 #include "foray/v1/models.grpc.pb.h"
 #include "foray/v1/monitoring.grpc.pb.h"
 #include "foray/v1/registry.grpc.pb.h"
@@ -82,6 +83,9 @@ ABSL_FLAG(double, stalled_write_timeout_s, 120.0,
           "End a session, progress watch or export whose client has not read what the server "
           "sends for this many seconds (flow control holds the write); it frees the handler "
           "thread. 0: never.");
+ABSL_FLAG(std::string, simd_target, "best",
+          "Highest SIMD target the model's kernels may use: best (the widest this CPU has) or one "
+          "of AVX3 (AVX-512), AVX2, SSE4, SSSE3, SCALAR (x86-64), NEON (ARM64).");
 ABSL_FLAG(double, shutdown_grace_s, 5.0,
           "Seconds in-flight calls get to finish after SIGINT/SIGTERM before they are cancelled.");
 
@@ -166,6 +170,13 @@ int main(int argc, char** argv) {
   sigaddset(&stop_signals, SIGINT);
   sigaddset(&stop_signals, SIGTERM);
   pthread_sigmask(SIG_BLOCK, &stop_signals, nullptr);
+
+  if (absl::Status s = foray::model::simd::LimitTarget(absl::GetFlag(FLAGS_simd_target)); !s.ok()) {
+    std::fprintf(stderr, "forayd: --simd_target: %s\n", std::string(s.message()).c_str());
+    return 2;
+  }
+  std::fprintf(stderr, "forayd: model kernels run on the %s SIMD target\n",
+               foray::model::simd::TargetName());
 
   const std::filesystem::path data_dir = absl::GetFlag(FLAGS_data_dir);
   std::error_code ec;

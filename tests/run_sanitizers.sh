@@ -21,14 +21,14 @@ export UBSAN_OPTIONS=halt_on_error=1:print_stacktrace=1
 export ASAN_OPTIONS=halt_on_error=1:detect_leaks=1:abort_on_error=1
 export TSAN_OPTIONS="halt_on_error=1 second_deadlock_stack=1 suppressions=$PWD/tests/tsan.supp"
 
-cmake -S . -B build-asan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo -DFORAY_PORTABLE=ON \
+cmake -S . -B build-asan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo \
   -DFORAY_SANITIZE="address;undefined" >/dev/null
 cmake --build build-asan --parallel "$(nproc)"
 (cd build-asan && ctest --output-on-failure --parallel "$(nproc)" \
   -R '^(server\.|client\.|reliability\.|deploy\.|interop\.|Store|PlanGate|PlanScheduler|SessionCommitter|Inbox|ConvertTest|CoverageGrid|EpisodeTracker|DatasetMirror|PlanState|RecordsTest|SpecFile|TableFiles|RuntimeConcurrency|DirectoryConcurrency|HelperPool)')
 
 ./tests/build_tsan_abseil.sh build-tsan-abseil/prefix
-cmake -S . -B build-tsan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo -DFORAY_PORTABLE=ON \
+cmake -S . -B build-tsan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo \
   -DFORAY_SANITIZE=thread \
   "-DCMAKE_EXE_LINKER_FLAGS=-Wl,--disable-new-dtags,-rpath,$PWD/build-tsan-abseil/prefix/lib" >/dev/null
 cmake --build build-tsan --parallel "$(nproc)"

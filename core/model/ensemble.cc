@@ -1,8 +1,10 @@
 #include "core/model/ensemble.h"
 
 #include <cmath>
+#include <type_traits>
 
 #include "absl/strings/str_format.h"
+#include "core/model/simd_kernels.h"
 #include "core/util/random.h"
 #include "core/util/status_macros.h"
 
@@ -66,6 +68,54 @@ void ActivateWithSlope(Activation activation, Matrix* z, Matrix* slope) {
       a = a.tanh();
       s = S(1) - a.square();
       break;
+  }
+}
+
+// The three products of a layer, all matrices column-major. In float they run on the
+// dispatched SIMD kernel (simd::Gemm), reading a column-major matrix as its transpose; in double
+// (the gradient checks) on Eigen.
+//   out (rows, n) = in (rows, k) w (k, n) + bias (n) on every row.
+template <typename Matrix, typename W, typename B>
+void LayerForward(const Matrix& in, const W& w, const B& bias, Matrix* out) {
+  const int rows = static_cast<int>(in.rows()), k = static_cast<int>(w.rows()),
+            n = static_cast<int>(w.cols());
+  out->resize(rows, n);
+  if constexpr (std::is_same_v<typename Matrix::Scalar, float>) {
+    // out^T (n, rows) = w^T (n, k) in^T (k, rows).
+    simd::Gemm(n, rows, k, w.data(), /*a_row=*/k, /*a_col=*/1, in.data(), /*b_row=*/rows,
+               /*b_col=*/1, bias.data(), out->data(), rows);
+  } else {
+    out->noalias() = in * w;
+    out->rowwise() += bias.transpose();
+  }
+}
+
+// grad_w (k, n) = in^T (k, rows) delta (rows, n).
+template <typename Matrix, typename G>
+void WeightGradient(const Matrix& in, const Matrix& delta, G* grad_w) {
+  const int rows = static_cast<int>(in.rows()), k = static_cast<int>(in.cols()),
+            n = static_cast<int>(delta.cols());
+  if constexpr (std::is_same_v<typename Matrix::Scalar, float>) {
+    // grad_w^T (n, k) = delta^T (n, rows) in (rows, k).
+    simd::Gemm(n, k, rows, delta.data(), /*a_row=*/rows, /*a_col=*/1, in.data(), /*b_row=*/1,
+               /*b_col=*/rows, nullptr, grad_w->data(), k);
+  } else {
+    grad_w->noalias() = in.transpose() * delta;
+  }
+}
+
+// back (rows, k) = delta (rows, n) w^T (n, k).
+template <typename Matrix, typename W>
+void BackPropagate(const Matrix& delta, const W& w, Matrix* back) {
+  const int rows = static_cast<int>(delta.rows()), k = static_cast<int>(w.rows()),
+            n = static_cast<int>(w.cols());
+  back->resize(rows, k);
+  if constexpr (std::is_same_v<typename Matrix::Scalar, float>) {
+    // back^T (k, rows) = w (k, n) delta^T (n, rows).
+    simd::Gemm(k, rows, n, w.data(), /*a_row=*/1, /*a_col=*/k, delta.data(), /*b_row=*/rows,
+               /*b_col=*/1, nullptr, back->data(), rows);
+  } else {
+    back->noalias() = delta * w.transpose();
   }
 }
 
@@ -204,8 +254,8 @@ void EnsembleT<Scalar>::MemberForward(int member, const Matrix& x, Matrix* mean,
   for (int l = 0; l < num_layers(); ++l) {
     const Eigen::Map<const Matrix> w(p + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
     const Eigen::Map<const Vector> bias(p + bias_offset(l), layer_fan_out(l));
-    Matrix z = h * w;
-    z.rowwise() += bias.transpose();
+    Matrix z;
+    LayerForward(h, w, bias, &z);
     if (l + 1 < num_layers()) ApplyActivation(activation_, &z);
     h.swap(z);
   }
@@ -262,9 +312,7 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
     const Eigen::Map<const Matrix> w(p + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
     const Eigen::Map<const Vector> bias(p + bias_offset(l), layer_fan_out(l));
     Matrix& z = l + 1 < layers ? ws.hidden[l] : ws.out;
-    z.resize(rows, layer_fan_out(l));
-    z.noalias() = layer_input(l) * w;
-    z.rowwise() += bias.transpose();
+    LayerForward(layer_input(l), w, bias, &z);
     if (l + 1 < layers) ActivateWithSlope(activation_, &z, &ws.slope[l]);
   }
   const int d = output_dim();
@@ -325,12 +373,11 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
   for (int l = layers - 1; l >= 0; --l) {
     Eigen::Map<Matrix> gw(grad_params + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
     Eigen::Map<Vector> gb(grad_params + bias_offset(l), layer_fan_out(l));
-    gw.noalias() = layer_input(l).transpose() * delta;
+    WeightGradient(layer_input(l), delta, &gw);
     gb = delta.colwise().sum().transpose();
     if (l > 0) {
       const Eigen::Map<const Matrix> w(p + weight_offset(l), layer_fan_in(l), layer_fan_out(l));
-      ws.back.resize(rows, layer_fan_in(l));
-      ws.back.noalias() = delta * w.transpose();
+      BackPropagate(delta, w, &ws.back);
       ws.back.array() *= ws.slope[l - 1].array();
       delta.swap(ws.back);
     }

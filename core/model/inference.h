@@ -1,6 +1,7 @@
 // PackedEnsemble: a read-only copy of an ensemble for the planner's hot path, its weights
-// packed for the SIMD kernels: re-laid row-major and padded to the SIMD width, each layer's product, bias and activation
-// fused in one pass over register tiles (AVX-512 where the build has it, Eigen otherwise).
+// packed for the SIMD kernels (simd_kernels.h): re-laid row-major and padded to the widest SIMD
+// width, each layer's product, bias and activation fused in one pass over register tiles, on the
+// best target the CPU has (chosen at run time).
 // Built once per published model version. Const methods are safe from several threads, each
 // with its own Workspace.
 //
@@ -27,9 +28,9 @@ class PackedEnsemble {
   // Per-thread scratch buffers; grow on first use and are reused afterwards.
   struct Workspace {
     Eigen::ArrayXf a, b;  // layer outputs, alternating (not zero-filled when they grow)
-    // Log-variance bounds repeated over the rows of the last call, and scratch for them;
-    // bounds_of: the id of the ensemble whose bounds they are (a workspace may outlive it).
-    Eigen::ArrayXf bound_max, bound_min, softplus;
+    // Log-variance bounds repeated over the rows of the last call; bounds_of: the id of the
+    // ensemble whose bounds they are (a workspace may outlive it).
+    Eigen::ArrayXf bound_max, bound_min;
     uint64_t bounds_of = 0;
   };
 
@@ -63,7 +64,7 @@ class PackedEnsemble {
     int fan_in = 0;       // real input width
     int fan_in_pad = 0;   // stride of the input rows
     int fan_out = 0;      // real output width
-    int fan_out_pad = 0;  // multiple of 16
+    int fan_out_pad = 0;  // multiple of simd::kPadFloats
     RowMatrix weights;    // (fan_in, fan_out_pad), zero-padded columns
     Eigen::VectorXf bias; // (fan_out_pad)
   };

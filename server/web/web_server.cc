@@ -10,6 +10,7 @@
 #include "absl/strings/str_cat.h"
 #include "absl/strings/str_format.h"
 #include "absl/strings/str_replace.h"
+#include "core/model/simd_kernels.h"
 #include "server/api/auth.h"
 #include "server/store/records.h"
 #include "server/web/dashboard_html.h"
@@ -128,6 +129,9 @@ std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanG
     add("foray_robot_training", "gauge", "1 while a training round runs for the robot.", robot,
         p.status.training ? 1.0 : 0.0);
   }
+  add("foray_simd_target_info", "gauge",
+      "The SIMD target the model's kernels run on (AVX3 is AVX-512), as the label; always 1.",
+      absl::StrFormat("target=\"%s\"", LabelValue(model::simd::TargetName())), 1.0);
   add("foray_planner_busy_cores", "gauge", "Plans computing now (at most one per core).", "",
       static_cast<double>(gate.busy()));
   add("foray_planner_cores", "gauge", "Plans that may compute at once.", "",

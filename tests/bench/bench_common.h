@@ -8,10 +8,13 @@
 #include <chrono>
 #include <cstdint>
 #include <cstdio>
+#include <cstdlib>
+#include <string>
 #include <thread>
 #include <vector>
 
 #include "Eigen/Core"
+#include "core/model/simd_kernels.h"
 #include "core/util/random.h"
 
 namespace foray::bench {
@@ -58,55 +61,40 @@ inline Timing SgemmTiming(int n, int repeats, int warmup) {
   return Time([&] { c.noalias() = a * b; }, repeats, warmup);
 }
 
+// One thread's FMA rate in GFLOP/s over `steps` steps of 12 chains, on the best SIMD target of
+// the CPU (tests/bench/fma_peak.cc; an FMA counts as two operations).
+double FmaChainsGflops(long steps);
+
 // The cores' fused multiply-add limit in single precision: `threads` threads at once, each
-// running 12 independent chains of vector FMAs (enough to cover the FMA latency of current
-// x86 cores) in registers, with the widest vectors the build targets. The best of `repeats`
-// runs of about 0.2 s, summed over the threads; GFLOP/s counting an FMA as two operations.
-// No real kernel reaches it (loads, epilogues); it bounds what any implementation can do.
+// running FmaChainsGflops for about 0.2 s; the best of `repeats` runs, summed over the threads.
 inline double FmaPeakGflops(int threads, int repeats = 5) {
-#if defined(__AVX512F__)
-  constexpr int kBytes = 64;
-#elif defined(__AVX__)
-  constexpr int kBytes = 32;
-#else
-  constexpr int kBytes = 16;
-#endif
-  typedef float Vec __attribute__((vector_size(kBytes)));
-  constexpr int kLanes = kBytes / 4;
   constexpr long kSteps = 4000000;
-  auto run = [](double* gflops) {
-    const Vec a = Vec{} + 0.999999f, b = Vec{} + 1e-7f;
-#define FORAY_CHAINS(X) X(0) X(1) X(2) X(3) X(4) X(5) X(6) X(7) X(8) X(9) X(10) X(11)
-#define FORAY_DECLARE(i) Vec c##i = Vec{} + 0.01f * i;
-#define FORAY_STEP(i) c##i = c##i * a + b;
-#define FORAY_SUM(i) sink += c##i[0];
-    FORAY_CHAINS(FORAY_DECLARE)
-    const auto start = std::chrono::steady_clock::now();
-    for (long k = 0; k < kSteps; ++k) {
-      FORAY_CHAINS(FORAY_STEP)
-      asm volatile("" : "+x"(c0), "+x"(c6));  // keeps the loop from being folded
-    }
-    const double ms = MsSince(start);
-    float sink = 0.0f;
-    FORAY_CHAINS(FORAY_SUM)
-#undef FORAY_SUM
-#undef FORAY_STEP
-#undef FORAY_DECLARE
-#undef FORAY_CHAINS
-    *gflops = sink == 12345.0f ? 0.0 : 2.0 * 12 * kLanes * kSteps / (ms * 1e6);
-  };
   double best = 0.0;
   for (int r = 0; r < repeats; ++r) {
     std::vector<double> each(threads, 0.0);
     std::vector<std::thread> pool;
-    for (int t = 1; t < threads; ++t) pool.emplace_back(run, &each[t]);
-    run(&each[0]);
+    for (int t = 1; t < threads; ++t) pool.emplace_back([&each, t] { each[t] = FmaChainsGflops(kSteps); });
+    each[0] = FmaChainsGflops(kSteps);
     for (std::thread& t : pool) t.join();
     double total = 0.0;
     for (double g : each) total += g;
     best = std::max(best, total);
   }
   return best;
+}
+
+// Caps the model's kernels at the target named by FORAY_SIMD_TARGET (unset: the CPU's best) and
+// prints the target they run on as one JSON line (name "simd_target"); false on a bad name.
+inline bool ChooseSimdTarget() {
+  const char* wanted = std::getenv("FORAY_SIMD_TARGET");
+  if (absl::Status s = model::simd::LimitTarget(wanted == nullptr ? "best" : wanted); !s.ok()) {
+    std::fprintf(stderr, "FORAY_SIMD_TARGET: %s\n", std::string(s.message()).c_str());
+    return false;
+  }
+  std::printf("{\"name\": \"simd_target\", \"impl\": \"foray\", \"target\": \"%s\"}\n",
+              model::simd::TargetName());
+  std::fflush(stdout);
+  return true;
 }
 
 // Prints the FMA peak on `threads` threads as one JSON line (name "fma_peak").

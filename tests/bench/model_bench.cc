@@ -45,6 +45,7 @@ int main(int argc, char** argv) {
     Print("sgemm_peak", t, 2.0 * n * n * n, ", \"n\": 1536, \"threads\": 1");
   }
   foray::bench::PrintFmaPeak(1);  // the cores' limit, one thread
+  if (!foray::bench::ChooseSimdTarget()) return 2;
 
   const int state_dim = 4, action_dim = 1;
   const foray::model::EnsembleOptions eopt;

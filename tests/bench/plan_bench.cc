@@ -53,6 +53,7 @@ int main(int argc, char** argv) {
   }
 
   for (int threads : {1, 2}) foray::bench::PrintFmaPeak(threads);
+  if (!foray::bench::ChooseSimdTarget()) return 2;
 
   const std::string only = argc > 2 ? argv[2] : "";
   for (const Config& c : kConfigs) {

@@ -27,6 +27,7 @@ ours = {(r["name"], r.get("threads", 1)): r for r in rows if r["impl"] == "foray
 peak = ours[("sgemm_peak", 1)]["gflops"]
 fma = ours[("fma_peak", 1)]["gflops"]
 print(f"SGEMM peak (Eigen, 1 thread, n=1536): {peak:.1f} GFLOP/s; FMA peak of one core: {fma:.1f} GFLOP/s")
+print(f"SIMD target of the model's kernels: {ours[('simd_target', 1)]['target']} (FORAY_SIMD_TARGET caps it)")
 print(f"{'figure':18} {'threads':>7} {'foray ms':>9} {'GFLOP/s/thread':>15} {'%peak':>6} {'%FMA':>5} "
       f"{'torch ms, threads/allocator':>44} {'speed-up':>9}")
 for name in ("ensemble_forward", "train_epoch"):

@@ -30,6 +30,8 @@ ours = {(r["name"], r.get("threads", 1)): r for r in rows if r["impl"] == "foray
 sgemm = ours[("sgemm_peak", 1)]
 peak = 2.0 * sgemm["n"] ** 3 / (sgemm["min_ms"] * 1e6)
 print(f"SGEMM peak (Eigen, 1 thread, n={sgemm['n']}, fastest of 8): {peak:.1f} GFLOP/s")
+print(f"SIMD target of the model's kernels: {ours[('simd_target', 1)]['target']} "
+      "(FORAY_SIMD_TARGET caps it; the FMA peak uses the CPU's best)")
 print(f"{'figure':11} {'threads':>7} {'foray ms':>9} {'model GFLOP/s/thread':>21} {'%peak':>6} "
       f"{'torch ms, threads/allocator':>44} {'speed-up':>9}")
 for name in ("plan_small", "plan_arm"):

@@ -10,7 +10,7 @@ cd "$(dirname "$0")/../.."
 SECONDS_EACH="${1:-60}"
 BUILD="${FORAY_FUZZ_BUILD_DIR:-build-fuzz}"
 CC=clang-14 CXX=clang++-14 cmake -S . -B "$BUILD" -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo \
-  -DFORAY_FUZZ=ON -DFORAY_PORTABLE=ON -DFORAY_BUILD_TESTS=OFF -DFORAY_SANITIZE="address;undefined" >/dev/null
+  -DFORAY_FUZZ=ON -DFORAY_BUILD_TESTS=OFF -DFORAY_SANITIZE="address;undefined" >/dev/null
 cmake --build "$BUILD" --parallel "$(nproc)" --target wire_fuzz spec_file_fuzz
 mkdir -p "$BUILD/findings"
 status=0

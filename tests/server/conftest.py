@@ -14,6 +14,10 @@ class Forayd:
     def __init__(self, data_dir, extra_args=()):
         self.data_dir = data_dir
         self.extra_args = list(extra_args)
+        # The baseline pass of tests/run.sh runs every service test with the model's kernels
+        # capped at one SIMD target (SCALAR: nothing beyond the x86-64 baseline).
+        if os.environ.get("FORAY_TEST_SIMD_TARGET"):
+            self.extra_args.append(f"--simd_target={os.environ['FORAY_TEST_SIMD_TARGET']}")
         self.log_path = os.path.join(data_dir, "forayd.log")
         self._start()
 

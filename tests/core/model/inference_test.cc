@@ -1,18 +1,39 @@
 // The packed ensemble (PackedEnsemble, the planner's copy) computes what the reference ensemble
 // computes (Ensemble::MemberForward, itself checked against PyTorch in torch_parity_test.cc),
-// for shapes that exercise every tile remainder: rows not a multiple of the 6-row tile, widths
-// not a multiple of 16.
+// for shapes that exercise every tile remainder: rows not a multiple of any target's tile,
+// widths not a multiple of 16. Every check runs on every SIMD target this machine can run
+// (simd::AvailableTargets: AVX-512, AVX2, SSE4, SSSE3 and the emulated fallback on an AVX-512
+// x86-64), Highway's pattern of testing each compiled target in turn.
 
 #include "core/model/inference.h"
 
+#include <cmath>
+#include <cstring>
+#include <functional>
+#include <thread>
 #include <tuple>
 #include <vector>
 
+#include "core/model/simd_kernels.h"
 #include "core/util/random.h"
 #include "gtest/gtest.h"
 
 namespace foray::model {
 namespace {
+
+// Runs `check` once per target the machine supports, then restores the CPU's best.
+template <class F>
+void ForEachTarget(F check) {
+  const std::vector<int64_t> targets = simd::AvailableTargets();
+  ASSERT_FALSE(targets.empty());
+  for (int64_t target : targets) {
+    simd::UseTargetForTest(target);
+    SCOPED_TRACE(simd::NameOfTarget(target));
+    ASSERT_EQ(simd::TargetName(), simd::NameOfTarget(target));
+    check();
+  }
+  simd::UseTargetForTest(0);
+}
 
 using Param = std::tuple<Activation, std::vector<int>, int /*state_dim*/, int /*rows*/>;
 
@@ -64,7 +85,7 @@ TEST_P(InferenceTest, MatchesReferenceForward) {
   Eigen::MatrixXf x(rows, e->input_dim());
   for (int j = 0; j < x.cols(); ++j)
     for (int i = 0; i < rows; ++i) x(i, j) = static_cast<float>(2 * rng.Normal());
-  ExpectMatchesReference(*e, x, 1e-5 * 10, /*require_finite=*/false);
+  ForEachTarget([&] { ExpectMatchesReference(*e, x, 1e-5 * 10, /*require_finite=*/false); });
 }
 
 // Pre-activations far outside [-88, 88], where the fast path's exponential clamps its argument:
@@ -83,7 +104,7 @@ TEST(InferenceExtremeTest, SiluSaturatesLikeReference) {
   for (int i = 0; i < rows; ++i) {
     for (int j = 0; j < x.cols(); ++j) x(i, j) = static_cast<float>((i - rows / 2) * (j + 1)) * 2.0f;
   }
-  ExpectMatchesReference(*e, x, 1e-4, /*require_finite=*/true);
+  ForEachTarget([&] { ExpectMatchesReference(*e, x, 1e-4, /*require_finite=*/true); });
 }
 
 // A workspace kept across model versions (as a trainer's threads keep theirs from epoch to
@@ -100,15 +121,128 @@ TEST(InferenceWorkspaceTest, ReusedAcrossModelsGivesEachModelsOwnBounds) {
   Rng rng(3);
   for (int i = 0; i < x.size(); ++i) x.data()[i] = static_cast<float>(rng.Normal());
   const int d = first->output_dim();
-  std::vector<float> mean(rows * d), used_lv(rows * d), fresh_lv(rows * d);
+  ForEachTarget([&] {
+    std::vector<float> mean(rows * d), used_lv(rows * d), fresh_lv(rows * d);
+    PackedEnsemble::Workspace used;
+    PackedEnsemble(*first).ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
+    const PackedEnsemble fast_second(second);
+    fast_second.ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
+    PackedEnsemble::Workspace fresh;
+    fast_second.ForwardMember(0, x.data(), rows, mean.data(), fresh_lv.data(), &fresh);
+    EXPECT_EQ(used_lv, fresh_lv);
+  });
+}
 
-  PackedEnsemble::Workspace used;
-  PackedEnsemble(*first).ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
-  const PackedEnsemble fast_second(second);
-  fast_second.ForwardMember(0, x.data(), rows, mean.data(), used_lv.data(), &used);
-  PackedEnsemble::Workspace fresh;
-  fast_second.ForwardMember(0, x.data(), rows, mean.data(), fresh_lv.data(), &fresh);
-  EXPECT_EQ(used_lv, fresh_lv);
+// ForwardAll splits members and blocks of rows into tasks; on each target, the numbers must
+// not depend on how the tasks are spread over threads (plans are reproducible at any thread
+// count), nor on where the output buffers lie (offset by one float: an unaligned start).
+TEST(InferenceSplitTest, EveryTargetGivesTheSameBitsUnderAnyThreadSplit) {
+  EnsembleOptions options;
+  options.ensemble_size = 3;
+  options.hidden_widths = {48, 48};
+  auto e = Ensemble::Create(5, 2, options, 9);
+  ASSERT_TRUE(e.ok());
+  const PackedEnsemble fast(*e);
+  const int rows = 2 * PackedEnsemble::kBlockRows + 77;  // three blocks per member, one ragged
+  PackedEnsemble::RowMatrix x(rows, e->input_dim());
+  Rng rng(11);
+  for (int i = 0; i < x.size(); ++i) x.data()[i] = static_cast<float>(rng.Normal());
+  const size_t n = static_cast<size_t>(e->size()) * rows * e->output_dim();
+  ForEachTarget([&] {
+    std::vector<float> mean(n), lv(n), mean2(n + 1), lv2(n + 1);
+    fast.ForwardAll(x.data(), rows, mean.data(), lv.data(), ParallelFor());
+    // Tasks in reverse order on two threads of our own.
+    const ParallelFor two = [](int tasks, const std::function<void(int)>& task) {
+      std::thread other([&] {
+        for (int i = tasks - 1; i >= 0; i -= 2) task(i);
+      });
+      for (int i = tasks - 2; i >= 0; i -= 2) task(i);
+      other.join();
+    };
+    fast.ForwardAll(x.data(), rows, mean2.data() + 1, lv2.data() + 1, two);
+    EXPECT_EQ(0, std::memcmp(mean.data(), mean2.data() + 1, n * sizeof(float)));
+    EXPECT_EQ(0, std::memcmp(lv.data(), lv2.data() + 1, n * sizeof(float)));
+  });
+}
+
+// The kernels' elementwise functions against the C library (glibc's expf and log1pf, correctly
+// rounded or within 1 ulp): SiLU z / (1 + e^-z) over [-100, 100] and the log-variance bounds'
+// softplus chain, relative 2e-6 (a few float ulps: Highway documents 1 ulp for its Exp and 2
+// for Log1p, and the reciprocal's Newton step adds about 1e-7).
+TEST(SimdKernelTest, ElementwiseFunctionsMatchTheCLibrary) {
+  const int count = 4001;
+  std::vector<float> z(count);
+  for (int i = 0; i < count; ++i) z[i] = -100.0f + 200.0f * i / (count - 1);
+  // Identity weights: y = act(x I + 0), one row of `count` inputs padded to 16.
+  const int width = (count + simd::kPadFloats - 1) / simd::kPadFloats * simd::kPadFloats;
+  ForEachTarget([&] {
+    for (int i = 0; i < count; i += 97) {
+      // One row, one input: y[c] = silu(z_i * w[c]) with w = 1 at every column.
+      std::vector<float> w(width, 1.0f), bias(width, 0.0f), y(width);
+      simd::Dense(&z[i], 1, 1, 1, w.data(), width, bias.data(), y.data(), width, simd::Act::kSilu);
+      const double expect = z[i] / (1.0 + std::exp(-static_cast<double>(z[i])));
+      EXPECT_NEAR(y[0], expect, 2e-6 * std::max(1.0, std::abs(expect))) << "silu at " << z[i];
+      EXPECT_EQ(y[0], y[width - 1]);
+    }
+    std::vector<float> v = z, hi(count, 0.5f), lo(count, -10.0f);
+    simd::BoundLogVar(v.data(), hi.data(), lo.data(), count);
+    auto softplus = [](double t) { return std::max(t, 0.0) + std::log1p(std::exp(-std::abs(t))); };
+    for (int i = 0; i < count; ++i) {
+      const double upper = 0.5 - softplus(0.5 - z[i]);
+      const double expect = -10.0 + softplus(upper + 10.0);
+      ASSERT_NEAR(v[i], expect, 2e-6 * std::max(1.0, std::abs(expect))) << "bounds at " << z[i];
+    }
+  });
+}
+
+// The training's product kernel against the definition c_ij = bias_i + sum_k a_ik b_kj, summed
+// in double: every operand layout the training uses (either operand read transposed), widths
+// with and without a partial last vector, a single row, column and step. Tolerance: 2e-6 of
+// sum_k |a_ik b_kj| (float rounding of a k-term sum grows about like sqrt(k) ulps; common
+// practice). On one target the same element comes out bit for bit whatever m and n are.
+TEST(SimdKernelTest, GemmMatchesTheDefinitionInEveryLayout) {
+  struct Shape { int m, n, k; };
+  const Shape shapes[] = {{1, 1, 1}, {7, 5, 3}, {13, 37, 64}, {64, 256, 65}, {6, 33, 1}, {5, 64, 256}};
+  Rng rng(11);
+  ForEachTarget([&] {
+    for (const Shape& s : shapes) {
+      for (int a_transposed = 0; a_transposed < 2; ++a_transposed) {
+        for (int b_transposed = 0; b_transposed < 2; ++b_transposed) {
+          SCOPED_TRACE(testing::Message() << s.m << "x" << s.n << "x" << s.k << " a^T " << a_transposed
+                                          << " b^T " << b_transposed);
+          std::vector<float> a(s.m * s.k), b(s.k * s.n), bias(s.m);
+          for (float& v : a) v = static_cast<float>(rng.Normal());
+          for (float& v : b) v = static_cast<float>(rng.Normal());
+          for (float& v : bias) v = static_cast<float>(rng.Normal());
+          const ptrdiff_t a_row = a_transposed ? 1 : s.k, a_col = a_transposed ? s.m : 1;
+          const ptrdiff_t b_row = b_transposed ? 1 : s.n, b_col = b_transposed ? s.k : 1;
+          const int ldc = s.n + 3;  // rows of c wider than n: the columns past n stay untouched
+          std::vector<float> c(s.m * ldc, 7.0f);
+          const bool with_bias = (s.m + s.n) % 2 == 0;
+          simd::Gemm(s.m, s.n, s.k, a.data(), a_row, a_col, b.data(), b_row, b_col,
+                     with_bias ? bias.data() : nullptr, c.data(), ldc);
+          for (int i = 0; i < s.m; ++i) {
+            for (int j = 0; j < s.n; ++j) {
+              double sum = with_bias ? bias[i] : 0.0, scale = 1.0;
+              for (int kk = 0; kk < s.k; ++kk) {
+                const double t = static_cast<double>(a[i * a_row + kk * a_col]) * b[kk * b_row + j * b_col];
+                sum += t;
+                scale += std::abs(t);
+              }
+              ASSERT_NEAR(c[i * ldc + j], sum, 2e-6 * scale) << "c[" << i << "][" << j << "]";
+            }
+            for (int j = s.n; j < ldc; ++j) ASSERT_EQ(c[i * ldc + j], 7.0f);
+          }
+          // The last row and the last column alone: the same bits.
+          float corner = 0.0f;
+          const int i = s.m - 1, j = s.n - 1;
+          simd::Gemm(1, 1, s.k, a.data() + i * a_row, a_row, a_col, b.data() + j * b_col, b_row,
+                     b_col, with_bias ? bias.data() + i : nullptr, &corner, 1);
+          ASSERT_EQ(corner, c[i * ldc + j]);
+        }
+      }
+    }
+  });
 }
 
 INSTANTIATE_TEST_SUITE_P(

@@ -1,0 +1,347 @@
+// Highway's per-target compilation: foreach_target.h includes this file once per target, each
+// time with HWY_NAMESPACE naming that target; the HWY_ONCE part at the end is compiled once and
+// dispatches. See simd_kernels.h for what each kernel computes.
+// Every target Highway can reach is compiled in, whatever the build's baseline (the emulated
+// fallback included, so tests and LimitTarget can run it); SVE is left out (the tiles keep arrays of vectors,
+// which SVE's sizeless types do not allow), so ARM64 runs NEON.
+#ifndef HWY_COMPILE_ALL_ATTAINABLE
+#define HWY_COMPILE_ALL_ATTAINABLE
+#endif
+#ifndef HWY_DISABLED_TARGETS
+#define HWY_DISABLED_TARGETS (HWY_SVE | HWY_SVE2 | HWY_SVE_256 | HWY_SVE2_128)
+#endif
+#undef HWY_TARGET_INCLUDE
+#define HWY_TARGET_INCLUDE "core/model/simd_kernels.cc"
+#include "hwy/foreach_target.h"  // IWYU pragma: keep (must come before highway.h)
+
+#include <algorithm>
+#include <cstddef>
+#include <cstring>
+#include <vector>
+
+#include "absl/strings/ascii.h"
+#include "absl/strings/str_cat.h"
+#include "absl/strings/str_join.h"
+
+#include "core/model/simd_kernels.h"
+#include "hwy/contrib/math/math-inl.h"
+#include "hwy/highway.h"
+
+HWY_BEFORE_NAMESPACE();
+namespace foray::model::simd {
+namespace HWY_NAMESPACE {
+namespace hn = hwy::HWY_NAMESPACE;
+
+using D = hn::ScalableTag<float>;
+using V = hn::Vec<D>;
+
+// Register tile per target: see the header for the register counts behind them.
+#if HWY_TARGET == HWY_AVX3 || HWY_TARGET == HWY_AVX3_DL || HWY_TARGET == HWY_NEON
+constexpr int kTileRows = 6;
+constexpr int kTileVectors = 4;
+#elif HWY_TARGET == HWY_SCALAR || HWY_TARGET == HWY_EMU128
+constexpr int kTileRows = 4;
+constexpr int kTileVectors = 2;
+#else
+constexpr int kTileRows = 6;
+constexpr int kTileVectors = 2;
+#endif
+
+// z * sigmoid(z). e^-z is clamped at e^88 so the denominator stays finite; the reciprocal
+// estimate (12 to 14 bits, exact on the emulated target) gets one Newton step.
+HWY_INLINE V Silu(D d, V z) {
+  const V e = hn::Exp(d, hn::Min(hn::Neg(z), hn::Set(d, 88.0f)));
+  const V den = hn::Add(hn::Set(d, 1.0f), e);
+  V r = hn::ApproximateReciprocal(den);
+  r = hn::Mul(r, hn::NegMulAdd(den, r, hn::Set(d, 2.0f)));
+  return hn::Mul(z, r);
+}
+
+template <Act A>
+HWY_INLINE V Activate(D d, V z) {
+  if constexpr (A == Act::kSilu) {
+    return Silu(d, z);
+  } else if constexpr (A == Act::kRelu) {
+    return hn::Max(z, hn::Zero(d));
+  } else if constexpr (A == Act::kTanh) {
+    return hn::Tanh(d, z);
+  } else {
+    return z;
+  }
+}
+
+// y[r][c] for R rows and NV vectors of columns: act(sum_k x[r][k] w[k][c] + b[c]).
+template <Act A, int R, int NV>
+HWY_INLINE void Tile(const float* HWY_RESTRICT x, int ldx, int k_count,
+                     const float* HWY_RESTRICT w, int ldw, const float* HWY_RESTRICT bias,
+                     float* HWY_RESTRICT y, int ldy) {
+  const D d;
+  const size_t n = hn::Lanes(d);
+  V acc[R][NV];
+  for (int v = 0; v < NV; ++v) {
+    const V b = hn::LoadU(d, bias + v * n);
+    for (int r = 0; r < R; ++r) acc[r][v] = b;
+  }
+  for (int k = 0; k < k_count; ++k) {
+    V wv[NV];
+    for (int v = 0; v < NV; ++v) wv[v] = hn::LoadU(d, w + static_cast<size_t>(k) * ldw + v * n);
+    for (int r = 0; r < R; ++r) {
+      const V xb = hn::Set(d, x[static_cast<size_t>(r) * ldx + k]);
+      for (int v = 0; v < NV; ++v) acc[r][v] = hn::MulAdd(xb, wv[v], acc[r][v]);
+    }
+  }
+  for (int r = 0; r < R; ++r) {
+    for (int v = 0; v < NV; ++v) {
+      hn::StoreU(Activate<A>(d, acc[r][v]), d, y + static_cast<size_t>(r) * ldy + v * n);
+    }
+  }
+}
+
+// A tile of R rows and `vectors` (1..NV) vectors.
+template <Act A, int R, int NV>
+HWY_INLINE void TileColumns(int vectors, const float* x, int ldx, int k_count, const float* w,
+                            int ldw, const float* bias, float* y, int ldy) {
+  if constexpr (NV > 1) {
+    if (vectors < NV) return TileColumns<A, R, NV - 1>(vectors, x, ldx, k_count, w, ldw, bias, y, ldy);
+  }
+  Tile<A, R, NV>(x, ldx, k_count, w, ldw, bias, y, ldy);
+}
+
+// The last `rows` (1..R) rows of a column block.
+template <Act A, int R>
+HWY_INLINE void TileRows(int rows, int vectors, const float* x, int ldx, int k_count,
+                         const float* w, int ldw, const float* bias, float* y, int ldy) {
+  if constexpr (R > 1) {
+    if (rows < R) return TileRows<A, R - 1>(rows, vectors, x, ldx, k_count, w, ldw, bias, y, ldy);
+  }
+  TileColumns<A, R, kTileVectors>(vectors, x, ldx, k_count, w, ldw, bias, y, ldy);
+}
+
+template <Act A>
+void DenseWith(const float* x, int ldx, int rows, int k_count, const float* w, int ldw,
+               const float* bias, float* y, int ldy) {
+  const int n = static_cast<int>(hn::Lanes(D()));
+  const int block = kTileVectors * n;
+  // Column blocks outside, rows inside: a block of weights stays in L1 across all rows.
+  for (int c0 = 0; c0 < ldw; c0 += block) {
+    const int vectors = std::min(kTileVectors, (ldw - c0) / n);
+    int r0 = 0;
+    for (; r0 + kTileRows <= rows; r0 += kTileRows) {
+      TileColumns<A, kTileRows, kTileVectors>(vectors, x + static_cast<size_t>(r0) * ldx, ldx,
+                                              k_count, w + c0, ldw, bias + c0,
+                                              y + static_cast<size_t>(r0) * ldy + c0, ldy);
+    }
+    if (r0 < rows) {
+      TileRows<A, kTileRows - 1>(rows - r0, vectors, x + static_cast<size_t>(r0) * ldx, ldx,
+                                 k_count, w + c0, ldw, bias + c0,
+                                 y + static_cast<size_t>(r0) * ldy + c0, ldy);
+    }
+  }
+}
+
+void DenseKernel(const float* x, int ldx, int rows, int k_count, const float* w, int ldw,
+                 const float* bias, float* y, int ldy, int act) {
+  switch (static_cast<Act>(act)) {
+    case Act::kNone: return DenseWith<Act::kNone>(x, ldx, rows, k_count, w, ldw, bias, y, ldy);
+    case Act::kSilu: return DenseWith<Act::kSilu>(x, ldx, rows, k_count, w, ldw, bias, y, ldy);
+    case Act::kRelu: return DenseWith<Act::kRelu>(x, ldx, rows, k_count, w, ldw, bias, y, ldy);
+    case Act::kTanh: return DenseWith<Act::kTanh>(x, ldx, rows, k_count, w, ldw, bias, y, ldy);
+  }
+}
+
+// c[i][j] for R rows and NV vectors of columns: row_bias[i] + sum_kk a(i, kk) b[kk][j], with a
+// read through strides (a broadcast per row and step) and b row-major, full vectors only.
+template <int R, int NV>
+HWY_INLINE void GemmTile(const float* HWY_RESTRICT a, ptrdiff_t a_row, ptrdiff_t a_col,
+                         int k_count, const float* HWY_RESTRICT b, size_t ldb,
+                         const float* HWY_RESTRICT row_bias, float* HWY_RESTRICT c, size_t ldc) {
+  const D d;
+  const size_t n = hn::Lanes(d);
+  V acc[R][NV];
+  for (int r = 0; r < R; ++r) {
+    const V start = row_bias != nullptr ? hn::Set(d, row_bias[r]) : hn::Zero(d);
+    for (int v = 0; v < NV; ++v) acc[r][v] = start;
+  }
+  for (int kk = 0; kk < k_count; ++kk) {
+    V bv[NV];
+    for (int v = 0; v < NV; ++v) bv[v] = hn::LoadU(d, b + static_cast<size_t>(kk) * ldb + v * n);
+    for (int r = 0; r < R; ++r) {
+      const V ab = hn::Set(d, a[r * a_row + kk * a_col]);
+      for (int v = 0; v < NV; ++v) acc[r][v] = hn::MulAdd(ab, bv[v], acc[r][v]);
+    }
+  }
+  for (int r = 0; r < R; ++r) {
+    for (int v = 0; v < NV; ++v) hn::StoreU(acc[r][v], d, c + static_cast<size_t>(r) * ldc + v * n);
+  }
+}
+
+template <int R, int NV>
+HWY_INLINE void GemmTileColumns(int vectors, const float* a, ptrdiff_t a_row, ptrdiff_t a_col,
+                                int k_count, const float* b, size_t ldb, const float* row_bias,
+                                float* c, size_t ldc) {
+  if constexpr (NV > 1) {
+    if (vectors < NV) {
+      return GemmTileColumns<R, NV - 1>(vectors, a, a_row, a_col, k_count, b, ldb, row_bias, c, ldc);
+    }
+  }
+  GemmTile<R, NV>(a, a_row, a_col, k_count, b, ldb, row_bias, c, ldc);
+}
+
+template <int R>
+HWY_INLINE void GemmTileRows(int rows, int vectors, const float* a, ptrdiff_t a_row,
+                             ptrdiff_t a_col, int k_count, const float* b, size_t ldb,
+                             const float* row_bias, float* c, size_t ldc) {
+  if constexpr (R > 1) {
+    if (rows < R) {
+      return GemmTileRows<R - 1>(rows, vectors, a, a_row, a_col, k_count, b, ldb, row_bias, c, ldc);
+    }
+  }
+  GemmTileColumns<R, kTileVectors>(vectors, a, a_row, a_col, k_count, b, ldb, row_bias, c, ldc);
+}
+
+// c = a b (+ row_bias) with b row-major (ldb) and every row of c a whole number of vectors.
+void GemmFull(int m, int n_cols, int k_count, const float* a, ptrdiff_t a_row, ptrdiff_t a_col,
+              const float* b, size_t ldb, const float* row_bias, float* c, size_t ldc) {
+  const int n = static_cast<int>(hn::Lanes(D()));
+  const int block = kTileVectors * n;
+  for (int c0 = 0; c0 < n_cols; c0 += block) {
+    const int vectors = std::min(kTileVectors, (n_cols - c0) / n);
+    int r0 = 0;
+    for (; r0 + kTileRows <= m; r0 += kTileRows) {
+      GemmTileColumns<kTileRows, kTileVectors>(
+          vectors, a + r0 * a_row, a_row, a_col, k_count, b + c0, ldb,
+          row_bias != nullptr ? row_bias + r0 : nullptr, c + static_cast<size_t>(r0) * ldc + c0, ldc);
+    }
+    if (r0 < m) {
+      GemmTileRows<kTileRows - 1>(m - r0, vectors, a + r0 * a_row, a_row, a_col, k_count, b + c0,
+                                  ldb, row_bias != nullptr ? row_bias + r0 : nullptr,
+                                  c + static_cast<size_t>(r0) * ldc + c0, ldc);
+    }
+  }
+}
+
+void GemmKernel(int m, int n_cols, int k_count, const float* a, ptrdiff_t a_row, ptrdiff_t a_col,
+                const float* b, ptrdiff_t b_row, ptrdiff_t b_col, const float* row_bias, float* c,
+                int ldc) {
+  if (m <= 0 || n_cols <= 0) return;
+  const size_t n = hn::Lanes(D());
+  const size_t whole = static_cast<size_t>(n_cols) / n * n;
+  const bool b_direct = b_col == 1 && b_row >= 0;
+  // b as it is when its rows are contiguous; otherwise packed row-major. Columns past the last
+  // whole vector go through a zero-padded copy of b and a scratch block of c.
+  thread_local std::vector<float> packed, scratch_b, scratch_c;
+  const float* b_rows = b;
+  size_t ldb = static_cast<size_t>(b_row);
+  if (!b_direct && whole > 0) {
+    packed.resize(static_cast<size_t>(k_count) * whole);
+    for (int kk = 0; kk < k_count; ++kk) {
+      for (size_t j = 0; j < whole; ++j) packed[kk * whole + j] = b[kk * b_row + j * b_col];
+    }
+    b_rows = packed.data();
+    ldb = whole;
+  }
+  if (whole > 0) {
+    GemmFull(m, static_cast<int>(whole), k_count, a, a_row, a_col, b_rows, ldb, row_bias, c,
+             static_cast<size_t>(ldc));
+  }
+  const size_t tail = static_cast<size_t>(n_cols) - whole;
+  if (tail == 0) return;
+  scratch_b.assign(static_cast<size_t>(k_count) * n, 0.0f);
+  for (int kk = 0; kk < k_count; ++kk) {
+    for (size_t j = 0; j < tail; ++j) scratch_b[kk * n + j] = b[kk * b_row + (whole + j) * b_col];
+  }
+  scratch_c.resize(static_cast<size_t>(m) * n);
+  GemmFull(m, static_cast<int>(n), k_count, a, a_row, a_col, scratch_b.data(), n, row_bias,
+           scratch_c.data(), n);
+  for (int i = 0; i < m; ++i) {
+    std::memcpy(c + static_cast<size_t>(i) * ldc + whole, scratch_c.data() + i * n,
+                tail * sizeof(float));
+  }
+}
+
+// max(x, 0) + ln(1 + e^-|x|): never overflows (e^-|x| <= 1).
+HWY_INLINE V Softplus(D d, V t) {
+  return hn::Add(hn::Max(t, hn::Zero(d)), hn::Log1p(d, hn::Exp(d, hn::Neg(hn::Abs(t)))));
+}
+
+HWY_INLINE V Bound(D d, V v, V hi, V lo) {
+  v = hn::Sub(hi, Softplus(d, hn::Sub(hi, v)));
+  return hn::Add(lo, Softplus(d, hn::Sub(v, lo)));
+}
+
+void BoundKernel(float* v, const float* hi, const float* lo, size_t count) {
+  const D d;
+  const size_t n = hn::Lanes(d);
+  size_t i = 0;
+  for (; i + n <= count; i += n) {
+    hn::StoreU(Bound(d, hn::LoadU(d, v + i), hn::LoadU(d, hi + i), hn::LoadU(d, lo + i)), d, v + i);
+  }
+  if (i == count) return;
+  // The tail through the same vector code, padded with zeros (bounds of 0 are harmless).
+  HWY_ALIGN float tv[hn::MaxLanes(d)] = {}, th[hn::MaxLanes(d)] = {}, tl[hn::MaxLanes(d)] = {};
+  const size_t left = count - i;
+  std::memcpy(tv, v + i, left * sizeof(float));
+  std::memcpy(th, hi + i, left * sizeof(float));
+  std::memcpy(tl, lo + i, left * sizeof(float));
+  hn::Store(Bound(d, hn::Load(d, tv), hn::Load(d, th), hn::Load(d, tl)), d, tv);
+  std::memcpy(v + i, tv, left * sizeof(float));
+}
+
+int64_t CurrentTarget() { return HWY_TARGET; }
+
+}  // namespace HWY_NAMESPACE
+}  // namespace foray::model::simd
+HWY_AFTER_NAMESPACE();
+
+#if HWY_ONCE
+namespace foray::model::simd {
+
+HWY_EXPORT(DenseKernel);
+HWY_EXPORT(BoundKernel);
+HWY_EXPORT(GemmKernel);
+HWY_EXPORT(CurrentTarget);
+
+void Dense(const float* x, int ldx, int rows, int k, const float* w, int ldw, const float* bias,
+           float* y, int ldy, Act act) {
+  HWY_DYNAMIC_DISPATCH(DenseKernel)(x, ldx, rows, k, w, ldw, bias, y, ldy, static_cast<int>(act));
+}
+
+void Gemm(int m, int n, int k, const float* a, ptrdiff_t a_row, ptrdiff_t a_col, const float* b,
+          ptrdiff_t b_row, ptrdiff_t b_col, const float* row_bias, float* c, int ldc) {
+  HWY_DYNAMIC_DISPATCH(GemmKernel)(m, n, k, a, a_row, a_col, b, b_row, b_col, row_bias, c, ldc);
+}
+
+void BoundLogVar(float* v, const float* hi, const float* lo, size_t n) {
+  HWY_DYNAMIC_DISPATCH(BoundKernel)(v, hi, lo, n);
+}
+
+const char* TargetName() { return hwy::TargetName(HWY_DYNAMIC_DISPATCH(CurrentTarget)()); }
+
+std::vector<int64_t> AvailableTargets() { return hwy::SupportedAndGeneratedTargets(); }
+
+std::string NameOfTarget(int64_t target) { return hwy::TargetName(target); }
+
+void UseTargetForTest(int64_t target) { hwy::SetSupportedTargetsForTest(target); }
+
+absl::Status LimitTarget(std::string_view name) {
+  const std::string given(name);
+  const std::string wanted = absl::AsciiStrToUpper(given);
+  if (wanted == "BEST") {
+    hwy::DisableTargets(0);
+    return absl::OkStatus();
+  }
+  hwy::DisableTargets(0);  // the CPU's full list, whatever an earlier cap left
+  std::vector<std::string> names;
+  for (int64_t target : hwy::SupportedAndGeneratedTargets()) {
+    names.push_back(hwy::TargetName(target));
+    // Highway numbers better targets with lower bits: disable every bit below this one.
+    if (names.back() == wanted) {
+      hwy::DisableTargets(target - 1);
+      return absl::OkStatus();
+    }
+  }
+  return absl::InvalidArgumentError(absl::StrCat("SIMD target \"", given, "\" is not one this CPU runs; choose best or one of: ", absl::StrJoin(names, ", ")));
+}
+
+}  // namespace foray::model::simd
+#endif  // HWY_ONCE

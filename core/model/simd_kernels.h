@@ -1,0 +1,76 @@
+// The model's SIMD kernels, written once with Highway and compiled for every x86-64 target from
+// SSSE3 to AVX-512 (NEON on ARM64) plus a scalar fallback; the best one the CPU has is chosen
+// at run time, so one binary runs its widest kernels on any machine. No Highway type appears
+// here: callers see plain pointers.
+//
+//   simd::Dense(x, ldx, rows, k, w, ldw, bias, y, ldy, simd::Act::kSilu);
+//   std::printf("%s\n", simd::TargetName());   // "AVX3", "AVX2", ...
+//
+// Register tiles, per target (rows x vectors of accumulators, chosen by the plan benchmark's
+// dense figures; see README's speed section for the measurements):
+//   AVX-512, NEON (32 vector registers): 6 rows x 4 vectors (24 accumulators, 4 weight vectors,
+//     1 broadcast: 29 of 32 registers).
+//   AVX2, SSE4, SSSE3 (16 registers): 6 rows x 2 vectors (12 + 2 + 1 = 15 of 16).
+//   Scalar fallback (one lane): 4 x 2.
+#ifndef FORAY_CORE_MODEL_SIMD_KERNELS_H_
+#define FORAY_CORE_MODEL_SIMD_KERNELS_H_
+
+#include <cstddef>
+#include <cstdint>
+#include <string>
+#include <string_view>
+#include <vector>
+
+#include "absl/status/status.h"
+
+namespace foray::model::simd {
+
+// Every padded row is a multiple of this many floats: the widest vector any target uses
+// (512 bits), so one layout serves every target.
+inline constexpr int kPadFloats = 16;
+
+// What a dense layer applies after x W + b.
+enum class Act { kNone, kSilu, kRelu, kTanh };
+
+// y (rows, ldy) = act(x (rows, ldx) * w (k, ldw) + bias (ldw)), all row-major; ldw a multiple of
+// kPadFloats, and y's rows at least ldw wide. Every ldw column of y is written.
+// Silu is z * sigmoid(z) with e^x from a Cody-Waite reduced polynomial (1 ulp) and the
+// reciprocal from the target's estimate refined by one Newton step (relative error about 1e-7).
+void Dense(const float* x, int ldx, int rows, int k, const float* w, int ldw, const float* bias,
+           float* y, int ldy, Act act);
+
+// c (m, n; row-major, ldc) = a (m, k) * b (k, n) [+ row_bias (m), added to every column of its
+// row; null for none]. Element (i, kk) of a is a[i * a_row + kk * a_col] and (kk, j) of b is
+// b[kk * b_row + j * b_col], so either operand may be read transposed (a column-major matrix is
+// its transpose read row-major). b is read in place when b_col is 1; otherwise it is packed once
+// per call. No width constraint: columns past the last whole vector go through a padded copy.
+// The training's products (forward, weight gradient, back-propagation) run on it. Every sum
+// runs over kk in order, so on one target a result does not depend on m, n or the operands' layout.
+void Gemm(int m, int n, int k, const float* a, ptrdiff_t a_row, ptrdiff_t a_col, const float* b,
+          ptrdiff_t b_row, ptrdiff_t b_col, const float* row_bias, float* c, int ldc);
+
+// The learned log-variance bounds in place, element by element over n values:
+//   v = hi - softplus(hi - v);  v = lo + softplus(v - lo),  softplus(x) = max(x, 0) + ln(1 + e^-|x|).
+// hi and lo hold one bound per value (the caller repeats the per-output bounds over the rows).
+// The result does not depend on where the buffers lie: every value goes through the vector code.
+void BoundLogVar(float* v, const float* hi, const float* lo, size_t n);
+
+// The target the kernels run on now (Highway's name: "AVX3" is AVX-512, "AVX2" is AVX2 with FMA,
+// "SSE4", "SSSE3", "SCALAR", "NEON").
+const char* TargetName();
+
+// Caps the kernels at the target named `name` (as TargetName spells it, any case; "best" lifts
+// the cap): from then on they run on the best target no better than it. A lab uses it to compare
+// targets or to keep a machine off a target it distrusts. InvalidArgument naming the value and
+// the choices when this CPU has no such target; nothing changes then.
+absl::Status LimitTarget(std::string_view name);
+
+// Tests: the targets compiled in and supported by this CPU, best first, and a switch to one of
+// them (0 restores the CPU's best). Not for production paths: it changes every caller's target.
+std::vector<int64_t> AvailableTargets();
+std::string NameOfTarget(int64_t target);
+void UseTargetForTest(int64_t target);
+
+}  // namespace foray::model::simd
+
+#endif  // FORAY_CORE_MODEL_SIMD_KERNELS_H_
