@@ -51,6 +51,13 @@ template <typename Matrix>
 void ActivateWithSlope(Activation activation, Matrix* z, Matrix* slope) {
   using S = typename Matrix::Scalar;
   slope->resize(z->rows(), z->cols());
+  if constexpr (std::is_same_v<S, float>) {
+    const simd::Act act = activation == Activation::kSilu   ? simd::Act::kSilu
+                          : activation == Activation::kRelu ? simd::Act::kRelu
+                                                            : simd::Act::kTanh;
+    simd::ActivateWithSlope(act, z->data(), slope->data(), static_cast<size_t>(z->size()));
+    return;
+  }
   auto a = z->array();
   auto s = slope->array();
   switch (activation) {

@@ -6,11 +6,15 @@
 //   simd::Dense(x, ldx, rows, k, w, ldw, bias, y, ldy, simd::Act::kSilu);
 //   std::printf("%s\n", simd::TargetName());   // "AVX3", "AVX2", ...
 //
-// Register tiles, per target (rows x vectors of accumulators, chosen by the plan benchmark's
-// dense figures; see README's speed section for the measurements):
+// Register tiles, per target (rows x vectors of accumulators). Chosen with the model benchmark's
+// ensemble forward (B=5, 3x64, 1,000 rows, one thread; tests/bench/run_model_bench.sh with
+// FORAY_SIMD_TARGET), on a 2-core AMD EPYC family 25 model 17 (AVX-512; its FMA peak is 117
+// GFLOP/s a core at both 256 and 512 bits), 2026-12-04:
 //   AVX-512, NEON (32 vector registers): 6 rows x 4 vectors (24 accumulators, 4 weight vectors,
-//     1 broadcast: 29 of 32 registers).
-//   AVX2, SSE4, SSSE3 (16 registers): 6 rows x 2 vectors (12 + 2 + 1 = 15 of 16).
+//     1 broadcast: 29 of 32 registers); 60-65 GFLOP/s.
+//   AVX2, SSE4, SSSE3 (16 registers): 5 rows x 2 vectors (10 + 2 + 1 = 13 of 16). Measured on
+//     AVX2: 6 x 2 (15 of 16 registers) 32 GFLOP/s, since GCC 12 spills an accumulator in the
+//     inner loop; 5 x 2 53; 4 x 2 49; 3 x 4 43; 2 x 4 43.
 //   Scalar fallback (one lane): 4 x 2.
 #ifndef FORAY_CORE_MODEL_SIMD_KERNELS_H_
 #define FORAY_CORE_MODEL_SIMD_KERNELS_H_
@@ -48,6 +52,11 @@ void Dense(const float* x, int ldx, int rows, int k, const float* w, int ldw, co
 // runs over kk in order, so on one target a result does not depend on m, n or the operands' layout.
 void Gemm(int m, int n, int k, const float* a, ptrdiff_t a_row, ptrdiff_t a_col, const float* b,
           ptrdiff_t b_row, ptrdiff_t b_col, const float* row_bias, float* c, int ldc);
+
+// In place over n values: z <- act(z), and slope <- act'(z) at the old z (what back-propagation
+// multiplies by). Silu as in Dense; relu's slope is 1 where z > 0 and 0 elsewhere; tanh's is
+// 1 - tanh(z)^2.
+void ActivateWithSlope(Act act, float* z, float* slope, size_t n);
 
 // The learned log-variance bounds in place, element by element over n values:
 //   v = hi - softplus(hi - v);  v = lo + softplus(v - lo),  softplus(x) = max(x, 0) + ln(1 + e^-|x|).

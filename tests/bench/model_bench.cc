@@ -44,8 +44,9 @@ int main(int argc, char** argv) {
     const Timing t = foray::bench::SgemmTiming(n, std::max(5, repeats / 3), /*warmup=*/3);
     Print("sgemm_peak", t, 2.0 * n * n * n, ", \"n\": 1536, \"threads\": 1");
   }
-  foray::bench::PrintFmaPeak(1);  // the cores' limit, one thread
+  // The target first: the FMA peak is measured on the widest vectors the kernels may use.
   if (!foray::bench::ChooseSimdTarget()) return 2;
+  foray::bench::PrintFmaPeak(1);  // the cores' limit, one thread
 
   const int state_dim = 4, action_dim = 1;
   const foray::model::EnsembleOptions eopt;

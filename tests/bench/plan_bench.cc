@@ -52,8 +52,9 @@ int main(int argc, char** argv) {
     std::fflush(stdout);
   }
 
-  for (int threads : {1, 2}) foray::bench::PrintFmaPeak(threads);
+  // The target first: the FMA peak is measured on the widest vectors the kernels may use.
   if (!foray::bench::ChooseSimdTarget()) return 2;
+  for (int threads : {1, 2}) foray::bench::PrintFmaPeak(threads);
 
   const std::string only = argc > 2 ? argv[2] : "";
   for (const Config& c : kConfigs) {

@@ -184,6 +184,29 @@ TEST(SimdKernelTest, ElementwiseFunctionsMatchTheCLibrary) {
       EXPECT_NEAR(y[0], expect, 2e-6 * std::max(1.0, std::abs(expect))) << "silu at " << z[i];
       EXPECT_EQ(y[0], y[width - 1]);
     }
+    // The training's activation with its slope: silu(z) and silu'(z) = s (1 + z (1 - s)),
+    // tanh and 1 - tanh^2 against glibc's tanh, relu and its 0/1 step.
+    for (simd::Act act : {simd::Act::kSilu, simd::Act::kTanh, simd::Act::kRelu}) {
+      std::vector<float> a = z, slope(count);
+      simd::ActivateWithSlope(act, a.data(), slope.data(), count);
+      for (int i = 0; i < count; ++i) {
+        const double x = z[i];
+        double value, derivative;
+        if (act == simd::Act::kSilu) {
+          const double sig = 1.0 / (1.0 + std::exp(-x));
+          value = x * sig;
+          derivative = sig * (1.0 + x * (1.0 - sig));
+        } else if (act == simd::Act::kTanh) {
+          value = std::tanh(x);
+          derivative = 1.0 - value * value;
+        } else {
+          value = x > 0 ? x : 0.0;
+          derivative = x > 0 ? 1.0 : 0.0;
+        }
+        ASSERT_NEAR(a[i], value, 2e-6 * std::max(1.0, std::abs(value))) << static_cast<int>(act) << " at " << x;
+        ASSERT_NEAR(slope[i], derivative, 4e-6) << "slope " << static_cast<int>(act) << " at " << x;
+      }
+    }
     std::vector<float> v = z, hi(count, 0.5f), lo(count, -10.0f);
     simd::BoundLogVar(v.data(), hi.data(), lo.data(), count);
     auto softplus = [](double t) { return std::max(t, 0.0) + std::log1p(std::exp(-std::abs(t))); };
