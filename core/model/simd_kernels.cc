@@ -24,13 +24,16 @@
 #include "absl/strings/str_join.h"
 
 #include "core/model/simd_kernels.h"
-#include "hwy/contrib/math/math-inl.h"
 #include "hwy/highway.h"
+// The per-target headers after highway.h.
+#include "core/util/simd_math-inl.h"
+#include "hwy/contrib/math/math-inl.h"
 
 HWY_BEFORE_NAMESPACE();
 namespace foray::model::simd {
 namespace HWY_NAMESPACE {
 namespace hn = hwy::HWY_NAMESPACE;
+using foray::simd_math::HWY_NAMESPACE::ExpClamped;
 
 using D = hn::ScalableTag<float>;
 using V = hn::Vec<D>;
@@ -50,7 +53,7 @@ constexpr int kTileVectors = 2;
 // z * sigmoid(z). e^-z is clamped at e^88 so the denominator stays finite; the reciprocal
 // estimate (12 to 14 bits, exact on the emulated target) gets one Newton step.
 HWY_INLINE V Silu(D d, V z) {
-  const V e = hn::Exp(d, hn::Min(hn::Neg(z), hn::Set(d, 88.0f)));
+  const V e = ExpClamped(d, hn::Neg(z));
   const V den = hn::Add(hn::Set(d, 1.0f), e);
   V r = hn::ApproximateReciprocal(den);
   r = hn::Mul(r, hn::NegMulAdd(den, r, hn::Set(d, 2.0f)));
@@ -267,7 +270,7 @@ HWY_INLINE void ActivateSlopeVector(D d, float* HWY_RESTRICT z, float* HWY_RESTR
   const V one = hn::Set(d, 1.0f);
   V a, s;
   if constexpr (A == Act::kSilu) {
-    const V e = hn::Exp(d, hn::Min(hn::Neg(x), hn::Set(d, 88.0f)));
+    const V e = ExpClamped(d, hn::Neg(x));
     // A correctly rounded division: 1 - s multiplies silu(z), which is large where s is 1.
     s = hn::Div(one, hn::Add(one, e));
     a = hn::Mul(x, s);
@@ -309,7 +312,7 @@ void ActivateSlopeKernel(float* z, float* slope, size_t count, int act) {
 
 // max(x, 0) + ln(1 + e^-|x|): never overflows (e^-|x| <= 1).
 HWY_INLINE V Softplus(D d, V t) {
-  return hn::Add(hn::Max(t, hn::Zero(d)), hn::Log1p(d, hn::Exp(d, hn::Neg(hn::Abs(t)))));
+  return hn::Add(hn::Max(t, hn::Zero(d)), hn::Log1p(d, ExpClamped(d, hn::Neg(hn::Abs(t)))));
 }
 
 HWY_INLINE V Bound(D d, V v, V hi, V lo) {
