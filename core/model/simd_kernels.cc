@@ -1,15 +1,8 @@
 // Highway's per-target compilation: foreach_target.h includes this file once per target, each
 // time with HWY_NAMESPACE naming that target; the HWY_ONCE part at the end is compiled once and
 // dispatches. See simd_kernels.h for what each kernel computes.
-// Every target Highway can reach is compiled in, whatever the build's baseline (the emulated
-// fallback included, so tests and LimitTarget can run it); SVE is left out (the tiles keep arrays of vectors,
-// which SVE's sizeless types do not allow), so ARM64 runs NEON.
-#ifndef HWY_COMPILE_ALL_ATTAINABLE
-#define HWY_COMPILE_ALL_ATTAINABLE
-#endif
-#ifndef HWY_DISABLED_TARGETS
-#define HWY_DISABLED_TARGETS (HWY_SVE | HWY_SVE2 | HWY_SVE_256 | HWY_SVE2_128)
-#endif
+// The targets: core/util/simd_targets.h.
+#include "core/util/simd_targets.h"  // before foreach_target.h
 #undef HWY_TARGET_INCLUDE
 #define HWY_TARGET_INCLUDE "core/model/simd_kernels.cc"
 #include "hwy/foreach_target.h"  // IWYU pragma: keep (must come before highway.h)

@@ -2,12 +2,7 @@
 // this CPU has (Highway's dynamic dispatch, as the model's kernels): 12 independent chains of
 // vector FMAs in registers, enough to cover the FMA latency of current x86 and ARM cores. No
 // real kernel reaches it (loads, epilogues); it bounds what any implementation can do.
-#ifndef HWY_COMPILE_ALL_ATTAINABLE
-#define HWY_COMPILE_ALL_ATTAINABLE
-#endif
-#ifndef HWY_DISABLED_TARGETS
-#define HWY_DISABLED_TARGETS (HWY_SVE | HWY_SVE2 | HWY_SVE_256 | HWY_SVE2_128)
-#endif
+#include "core/util/simd_targets.h"  // before foreach_target.h
 #undef HWY_TARGET_INCLUDE
 #define HWY_TARGET_INCLUDE "tests/bench/fma_peak.cc"
 #include "hwy/foreach_target.h"  // IWYU pragma: keep (must come before highway.h)

@@ -15,24 +15,16 @@
 #include <vector>
 
 #include "core/model/simd_kernels.h"
+#include "tests/testing/simd_targets.h"
 #include "core/util/random.h"
 #include "gtest/gtest.h"
 
 namespace foray::model {
 namespace {
 
-// Runs `check` once per target the machine supports, then restores the CPU's best.
 template <class F>
 void ForEachTarget(F check) {
-  const std::vector<int64_t> targets = simd::AvailableTargets();
-  ASSERT_FALSE(targets.empty());
-  for (int64_t target : targets) {
-    simd::UseTargetForTest(target);
-    SCOPED_TRACE(simd::NameOfTarget(target));
-    ASSERT_EQ(simd::TargetName(), simd::NameOfTarget(target));
-    check();
-  }
-  simd::UseTargetForTest(0);
+  testing::ForEachSimdTarget(check);
 }
 
 using Param = std::tuple<Activation, std::vector<int>, int /*state_dim*/, int /*rows*/>;
@@ -231,7 +223,7 @@ TEST(SimdKernelTest, GemmMatchesTheDefinitionInEveryLayout) {
     for (const Shape& s : shapes) {
       for (int a_transposed = 0; a_transposed < 2; ++a_transposed) {
         for (int b_transposed = 0; b_transposed < 2; ++b_transposed) {
-          SCOPED_TRACE(testing::Message() << s.m << "x" << s.n << "x" << s.k << " a^T " << a_transposed
+          SCOPED_TRACE(::testing::Message() << s.m << "x" << s.n << "x" << s.k << " a^T " << a_transposed
                                           << " b^T " << b_transposed);
           std::vector<float> a(s.m * s.k), b(s.k * s.n), bias(s.m);
           for (float& v : a) v = static_cast<float>(rng.Normal());
