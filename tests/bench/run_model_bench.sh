@@ -26,9 +26,10 @@ rows = [json.loads(line) for line in open(sys.argv[1])]
 ours = {(r["name"], r.get("threads", 1)): r for r in rows if r["impl"] == "foray"}
 peak = ours[("sgemm_peak", 1)]["gflops"]
 fma = ours[("fma_peak", 1)]["gflops"]
-print(f"SGEMM peak (Eigen, 1 thread, n=1536): {peak:.1f} GFLOP/s; FMA peak of one core: {fma:.1f} GFLOP/s")
+print(f"SGEMM (Eigen at the baseline ISA, 1 thread, n=1536): {peak:.1f} GFLOP/s; "
+      f"FMA peak of one core at the kernels' target: {fma:.1f} GFLOP/s")
 print(f"SIMD target of the model's kernels: {ours[('simd_target', 1)]['target']} (FORAY_SIMD_TARGET caps it)")
-print(f"{'figure':18} {'threads':>7} {'foray ms':>9} {'GFLOP/s/thread':>15} {'%peak':>6} {'%FMA':>5} "
+print(f"{'figure':18} {'threads':>7} {'foray ms':>9} {'GFLOP/s/thread':>15} {'%SGEMM':>6} {'%FMA':>5} "
       f"{'torch ms, threads/allocator':>44} {'speed-up':>9}")
 for name in ("ensemble_forward", "train_epoch"):
     t = {(r["threads"], r["allocator"]): r["median_ms"] for r in rows if r["impl"] == "torch" and r["name"] == name}

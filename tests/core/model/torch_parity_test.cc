@@ -1,18 +1,22 @@
 // The ensemble against PyTorch (Debian's python3-torch): the same weights give the same outputs,
 // the same NLL gradients (torch.autograd on torch.nn.functional.gaussian_nll_loss), the same
 // termination-head logits, BCE and gradients (binary_cross_entropy_with_logits with
-// pos_weight), and the trainer's steps equal torch.optim.AdamW's. The reference script is torch_reference.py beside
-// this file; it computes in float64 from float32-representable values, so the figures below
-// are the float32 error of the C++ code.
+// pos_weight), and the trainer's steps equal torch.optim.AdamW's. The reference script is
+// torch_reference.py beside this file; it computes in float64 from float32-representable values, so
+// the figures below are the float32 error of the C++ code.
 //
-// Errors are max |c++ - torch| over a block divided by max |torch| of the block.
+// Errors are max |c++ - torch| over a block divided by max |torch| of the block. The forward
+// and gradient checks run on every SIMD target the machine supports (the training's products
+// and activations and the planner's packed forward are Highway kernels dispatched at run time).
 
 #include <string>
 
 #include "core/model/ensemble.h"
+#include "core/model/inference.h"
 #include "core/model/trainer.h"
 #include "gtest/gtest.h"
 #include "tests/testing/reference.h"
+#include "tests/testing/simd_targets.h"
 
 namespace foray::model {
 namespace {
@@ -42,12 +46,14 @@ Ensemble FromReference(const Arrays& a) {
   EXPECT_TRUE(e.ok()) << e.status();
   for (int b = 0; b < e->size(); ++b) {
     for (int l = 0; l < e->num_layers(); ++l) {
-      const Eigen::MatrixXf w = a.at("w_" + std::to_string(b) + "_" + std::to_string(l)).cast<float>();
-      const Eigen::MatrixXf bias = a.at("bias_" + std::to_string(b) + "_" + std::to_string(l)).cast<float>();
+      const Eigen::MatrixXf w =
+          a.at("w_" + std::to_string(b) + "_" + std::to_string(l)).cast<float>();
+      const Eigen::MatrixXf bias =
+          a.at("bias_" + std::to_string(b) + "_" + std::to_string(l)).cast<float>();
       EXPECT_EQ(w.rows(), e->layer_fan_in(l));
       EXPECT_EQ(w.cols(), e->layer_fan_out(l));
-      Eigen::Map<Eigen::MatrixXf>(e->mutable_params().col(b).data() + e->weight_offset(l),
-                                  w.rows(), w.cols()) = w;
+      Eigen::Map<Eigen::MatrixXf>(e->mutable_params().col(b).data() + e->weight_offset(l), w.rows(),
+                                  w.cols()) = w;
       Eigen::Map<Eigen::VectorXf>(e->mutable_params().col(b).data() + e->bias_offset(l),
                                   bias.size()) = bias;
     }
@@ -86,54 +92,73 @@ TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
   Ensemble::LossOptions loss_options;
   loss_options.pos_weight = a.at("pos_weight")(0);
   loss_options.nll_beta = beta ? 0.5 : 0.0;
-  Eigen::MatrixXf probability;
-  ASSERT_TRUE(e.PredictTermination(a.at("states").cast<float>(), a.at("actions").cast<float>(),
-                                   &probability).ok());
-  std::vector<Eigen::MatrixXf> raw_means, raw_vars;
-  ASSERT_TRUE(e.Predict(a.at("states").cast<float>(), a.at("actions").cast<float>(), &raw_means,
-                        &raw_vars)
-                  .ok());
-  for (int b = 0; b < e.size(); ++b) {
-    const std::string s = std::to_string(b);
-    Eigen::MatrixXf mean, log_var, logit;
-    e.MemberForward(b, x, &mean, &log_var, &logit);
-    if (head) {
-      EXPECT_LT(RelativeError(logit.cast<double>(), a.at("logit_" + s)), 1e-5) << "member " << b;
-      EXPECT_LT(RelativeError(probability.col(b).cast<double>(), a.at("probability_" + s)), 1e-5);
-    } else {
-      EXPECT_EQ(logit.cols(), 0);
-      EXPECT_EQ(probability.col(b).cwiseAbs().maxCoeff(), 0.0f);
-    }
-    // Issue target: same outputs within 1e-5 relative.
-    EXPECT_LT(RelativeError(mean.cast<double>(), a.at("mean_" + s)), 1e-5) << "member " << b;
-    EXPECT_LT(RelativeError(log_var.cast<double>(), a.at("log_var_" + s)), 1e-5) << "member " << b;
-    EXPECT_LT(RelativeError(raw_means[b].cast<double>(), a.at("raw_mean_" + s)), 1e-5);
-    EXPECT_LT(RelativeError(raw_vars[b].cast<double>(), a.at("raw_var_" + s)), 1e-5);
+  foray::testing::ForEachSimdTarget([&] {
+    Eigen::MatrixXf probability;
+    ASSERT_TRUE(e.PredictTermination(a.at("states").cast<float>(), a.at("actions").cast<float>(),
+                                     &probability)
+                    .ok());
+    std::vector<Eigen::MatrixXf> raw_means, raw_vars;
+    ASSERT_TRUE(e.Predict(a.at("states").cast<float>(), a.at("actions").cast<float>(), &raw_means,
+                          &raw_vars)
+                    .ok());
+    for (int b = 0; b < e.size(); ++b) {
+      const std::string s = std::to_string(b);
+      Eigen::MatrixXf mean, log_var, logit;
+      e.MemberForward(b, x, &mean, &log_var, &logit);
+      if (head) {
+        EXPECT_LT(RelativeError(logit.cast<double>(), a.at("logit_" + s)), 1e-5) << "member " << b;
+        EXPECT_LT(RelativeError(probability.col(b).cast<double>(), a.at("probability_" + s)), 1e-5);
+      } else {
+        EXPECT_EQ(logit.cols(), 0);
+        EXPECT_EQ(probability.col(b).cwiseAbs().maxCoeff(), 0.0f);
+      }
+      // Issue target: same outputs within 1e-5 relative.
+      EXPECT_LT(RelativeError(mean.cast<double>(), a.at("mean_" + s)), 1e-5) << "member " << b;
+      EXPECT_LT(RelativeError(log_var.cast<double>(), a.at("log_var_" + s)), 1e-5)
+          << "member " << b;
+      EXPECT_LT(RelativeError(raw_means[b].cast<double>(), a.at("raw_mean_" + s)), 1e-5);
+      EXPECT_LT(RelativeError(raw_vars[b].cast<double>(), a.at("raw_var_" + s)), 1e-5);
 
-    Eigen::VectorXf grad(e.num_member_params());
-    Eigen::VectorXf grad_max = Eigen::VectorXf::Zero(e.output_dim());
-    Eigen::VectorXf grad_min = Eigen::VectorXf::Zero(e.output_dim());
-    float bce = -1;
-    const float loss = e.MemberLossAndGradient(b, x, y, grad.data(), &grad_max, &grad_min,
-                                               nullptr, loss_options, &bce);
-    EXPECT_NEAR(loss, a.at("loss_" + s)(0), 1e-5 * std::abs(a.at("loss_" + s)(0)));
-    if (head) EXPECT_NEAR(bce, a.at("bce_" + s)(0), 1e-5 * std::abs(a.at("bce_" + s)(0)));
-    // Issue target: gradients within 1e-4 relative, per parameter block.
-    for (int l = 0; l < e.num_layers(); ++l) {
-      const std::string sl = s + "_" + std::to_string(l);
-      const Eigen::MatrixXd gw =
-          Eigen::Map<Eigen::MatrixXf>(grad.data() + e.weight_offset(l), e.layer_fan_in(l),
-                                      e.layer_fan_out(l))
-              .cast<double>();
-      const Eigen::MatrixXd gb =
-          Eigen::Map<Eigen::VectorXf>(grad.data() + e.bias_offset(l), e.layer_fan_out(l))
-              .cast<double>();
-      EXPECT_LT(RelativeError(gw, a.at("grad_w_" + sl)), 1e-4) << "layer " << l;
-      EXPECT_LT(RelativeError(gb, a.at("grad_bias_" + sl)), 1e-4) << "layer " << l;
+      Eigen::VectorXf grad(e.num_member_params());
+      Eigen::VectorXf grad_max = Eigen::VectorXf::Zero(e.output_dim());
+      Eigen::VectorXf grad_min = Eigen::VectorXf::Zero(e.output_dim());
+      float bce = -1;
+      const float loss = e.MemberLossAndGradient(b, x, y, grad.data(), &grad_max, &grad_min,
+                                                 nullptr, loss_options, &bce);
+      EXPECT_NEAR(loss, a.at("loss_" + s)(0), 1e-5 * std::abs(a.at("loss_" + s)(0)));
+      if (head) EXPECT_NEAR(bce, a.at("bce_" + s)(0), 1e-5 * std::abs(a.at("bce_" + s)(0)));
+      // Issue target: gradients within 1e-4 relative, per parameter block.
+      for (int l = 0; l < e.num_layers(); ++l) {
+        const std::string sl = s + "_" + std::to_string(l);
+        const Eigen::MatrixXd gw =
+            Eigen::Map<Eigen::MatrixXf>(grad.data() + e.weight_offset(l), e.layer_fan_in(l),
+                                        e.layer_fan_out(l))
+                .cast<double>();
+        const Eigen::MatrixXd gb =
+            Eigen::Map<Eigen::VectorXf>(grad.data() + e.bias_offset(l), e.layer_fan_out(l))
+                .cast<double>();
+        EXPECT_LT(RelativeError(gw, a.at("grad_w_" + sl)), 1e-4) << "layer " << l;
+        EXPECT_LT(RelativeError(gb, a.at("grad_bias_" + sl)), 1e-4) << "layer " << l;
+      }
+      EXPECT_LT(RelativeError(grad_max.cast<double>(), a.at("grad_max_lv_" + s)), 1e-4);
+      EXPECT_LT(RelativeError(grad_min.cast<double>(), a.at("grad_min_lv_" + s)), 1e-4);
     }
-    EXPECT_LT(RelativeError(grad_max.cast<double>(), a.at("grad_max_lv_" + s)), 1e-4);
-    EXPECT_LT(RelativeError(grad_min.cast<double>(), a.at("grad_min_lv_" + s)), 1e-4);
-  }
+    // The planner's packed forward (simd::Dense) against the same reference.
+    const PackedEnsemble::RowMatrix x_rows = x;
+    const PackedEnsemble packed(e);
+    PackedEnsemble::Workspace ws;
+    for (int b = 0; b < e.size(); ++b) {
+      const std::string s = std::to_string(b);
+      PackedEnsemble::RowMatrix mean(x.rows(), e.output_dim()), log_var(x.rows(), e.output_dim());
+      Eigen::VectorXf logit(x.rows());
+      packed.ForwardMember(b, x_rows.data(), static_cast<int>(x.rows()), mean.data(),
+                           log_var.data(), &ws, logit.data());
+      EXPECT_LT(RelativeError(mean.cast<double>(), a.at("mean_" + s)), 1e-5) << "member " << b;
+      EXPECT_LT(RelativeError(log_var.cast<double>(), a.at("log_var_" + s)), 1e-5)
+          << "member " << b;
+      if (head) EXPECT_LT(RelativeError(logit.cast<double>(), a.at("logit_" + s)), 1e-5);
+    }
+  });
 }
 
 INSTANTIATE_TEST_SUITE_P(Activations, TorchForwardTest,
@@ -168,30 +193,32 @@ TEST(TorchAdamWTest, TrainerStepsMatchTorchAdamW) {
   options.holdout_fraction = 0;
   options.refit_normalizers = false;
   options.patience = 100;
-  auto trainer = EnsembleTrainer::Create(start, data, options);
-  ASSERT_TRUE(trainer.ok()) << trainer.status();
-  while (!(*trainer)->RunEpoch()) {
-  }
-  // The kept weights must be the last step's for the comparison to mean anything.
-  ASSERT_EQ((*trainer)->Report().best_epoch, options.max_epochs);
-  const Ensemble& after = (*trainer)->best();
-  for (int b = 0; b < after.size(); ++b) {
-    for (int l = 0; l < after.num_layers(); ++l) {
-      const std::string sl = std::to_string(b) + "_" + std::to_string(l);
-      const Eigen::MatrixXd w =
-          Eigen::Map<const Eigen::MatrixXf>(after.params().col(b).data() + after.weight_offset(l),
-                                            after.layer_fan_in(l), after.layer_fan_out(l))
-              .cast<double>();
-      const Eigen::MatrixXd bias =
-          Eigen::Map<const Eigen::VectorXf>(after.params().col(b).data() + after.bias_offset(l),
-                                            after.layer_fan_out(l))
-              .cast<double>();
-      EXPECT_LT(RelativeError(w, a.at("after_w_" + sl)), 1e-5) << sl;
-      EXPECT_LT(RelativeError(bias, a.at("after_bias_" + sl)), 1e-5) << sl;
+  foray::testing::ForEachSimdTarget([&] {
+    auto trainer = EnsembleTrainer::Create(start, data, options);
+    ASSERT_TRUE(trainer.ok()) << trainer.status();
+    while (!(*trainer)->RunEpoch()) {
     }
-  }
-  EXPECT_LT(RelativeError(after.max_log_var().cast<double>(), a.at("after_max_lv")), 1e-5);
-  EXPECT_LT(RelativeError(after.min_log_var().cast<double>(), a.at("after_min_lv")), 1e-5);
+    // The kept weights must be the last step's for the comparison to mean anything.
+    ASSERT_EQ((*trainer)->Report().best_epoch, options.max_epochs);
+    const Ensemble& after = (*trainer)->best();
+    for (int b = 0; b < after.size(); ++b) {
+      for (int l = 0; l < after.num_layers(); ++l) {
+        const std::string sl = std::to_string(b) + "_" + std::to_string(l);
+        const Eigen::MatrixXd w =
+            Eigen::Map<const Eigen::MatrixXf>(after.params().col(b).data() + after.weight_offset(l),
+                                              after.layer_fan_in(l), after.layer_fan_out(l))
+                .cast<double>();
+        const Eigen::MatrixXd bias =
+            Eigen::Map<const Eigen::VectorXf>(after.params().col(b).data() + after.bias_offset(l),
+                                              after.layer_fan_out(l))
+                .cast<double>();
+        EXPECT_LT(RelativeError(w, a.at("after_w_" + sl)), 1e-5) << sl;
+        EXPECT_LT(RelativeError(bias, a.at("after_bias_" + sl)), 1e-5) << sl;
+      }
+    }
+    EXPECT_LT(RelativeError(after.max_log_var().cast<double>(), a.at("after_max_lv")), 1e-5);
+    EXPECT_LT(RelativeError(after.min_log_var().cast<double>(), a.at("after_min_lv")), 1e-5);
+  });
 }
 
 }  // namespace
