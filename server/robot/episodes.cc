@@ -1,5 +1,7 @@
 #include "server/robot/episodes.h"
 
+#include <utility>
+
 #include "absl/time/clock.h"
 
 namespace foray::robot {
@@ -37,6 +39,7 @@ void EpisodeTracker::Add(const store::TransitionRecord& t, double success_return
   current_episode_ = t.episode;
   ++current_steps_;
   current_return_ += t.reward;
+  current_final_state_ = t.next_state;
   if (t.terminal) Close(/*terminal=*/true, success_return);
 }
 
@@ -81,6 +84,8 @@ void EpisodeTracker::Close(bool terminal, double success_return) {
   e.evaluation = evaluation_episodes_.count(current_episode_) > 0;
   e.success = current_return_ > success_return;
   e.terminal = terminal;
+  e.final_state = std::move(current_final_state_);
+  current_final_state_.clear();
   (e.evaluation ? evaluation_ : exploration_).Add(e);
   ++episodes_;
   last_ = e;

@@ -71,6 +71,7 @@ class EpisodeTracker {
   uint64_t current_episode_ = 0;
   int current_steps_ = 0;
   double current_return_ = 0.0;
+  std::vector<double> current_final_state_;  // the newest transition's next_state
   double plan_gain_sum_ = 0.0;
   int plan_gain_count_ = 0;
   uint64_t episodes_ = 0;

@@ -63,6 +63,7 @@ v1::EpisodeSummary EpisodeToWire(const EpisodeRecord& e) {
   s.set_evaluation(e.evaluation);
   s.set_success(e.success);
   s.set_terminal(e.terminal);
+  for (double v : e.final_state) s.add_final_state(v);
   return s;
 }
 
@@ -74,7 +75,8 @@ EpisodeRecord EpisodeFromWire(const v1::EpisodeSummary& s) {
           .ended_at = TimeFromWire(s.ended_at()),
           .evaluation = s.evaluation(),
           .success = s.success(),
-          .terminal = s.terminal()};
+          .terminal = s.terminal(),
+          .final_state = {s.final_state().begin(), s.final_state().end()}};
 }
 
 std::string EncodeTraining(const TrainingRecord& training) {

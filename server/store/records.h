@@ -13,6 +13,7 @@
 #include <optional>
 #include <string>
 #include <string_view>
+#include <vector>
 
 #include "absl/time/time.h"
 #include "core/model/trainer.h"
@@ -36,9 +37,10 @@ struct EpisodeRecord {
   double episode_return = 0.0;
   double information_gain = 0.0;  // nats per executed step
   absl::Time ended_at;
-  bool evaluation = false;  // its plans were evaluation plans
-  bool success = false;     // return > the robot's success_return
-  bool terminal = false;    // ended by a terminal transition (not a time limit)
+  bool evaluation = false;          // its plans were evaluation plans
+  bool success = false;             // return > the robot's success_return
+  bool terminal = false;            // ended by a terminal transition (not a time limit)
+  std::vector<double> final_state;  // the last transition's next_state, state units
 };
 
 std::string EncodeTraining(const TrainingRecord& training);

@@ -27,9 +27,15 @@ std::string JsonString(const std::string& v) {
   std::string out = "\"";
   for (char c : v) {
     switch (c) {
-      case '"': out += "\\\""; break;
-      case '\\': out += "\\\\"; break;
-      case '\n': out += "\\n"; break;
+      case '"':
+        out += "\\\"";
+        break;
+      case '\\':
+        out += "\\\\";
+        break;
+      case '\n':
+        out += "\\n";
+        break;
       default:
         if (static_cast<unsigned char>(c) < 0x20) {
           out += absl::StrFormat("\\u%04x", c);
@@ -42,6 +48,35 @@ std::string JsonString(const std::string& v) {
 }
 
 std::string Number(double v) { return std::isfinite(v) ? absl::StrFormat("%.17g", v) : "null"; }
+
+std::string NumberArray(const std::vector<double>& values) {
+  std::string out = "[";
+  for (size_t i = 0; i < values.size(); ++i)
+    absl::StrAppend(&out, i == 0 ? "" : ",", Number(values[i]));
+  return out + "]";
+}
+
+double Mean(const std::vector<double>& values) {
+  if (values.empty()) return std::nan("");
+  double sum = 0.0;
+  for (double v : values) sum += v;
+  return sum / values.size();
+}
+
+// Seconds since the Unix epoch (the dashboard's time axis), null for an unset time.
+std::string UnixSeconds(absl::Time t) {
+  return t == absl::InfinitePast() ? "null" : Number(absl::ToUnixMicros(t) * 1e-6);
+}
+
+// [{"label": ..., "unit": ...}, ...] of a spec's state or action dimensions.
+std::string DimensionsJson(const google::protobuf::RepeatedPtrField<v1::Dimension>& dims) {
+  std::string out = "[";
+  for (int i = 0; i < dims.size(); ++i) {
+    absl::StrAppend(&out, i == 0 ? "" : ", ", "{\"label\": ", JsonString(dims[i].label()),
+                    ", \"unit\": ", JsonString(dims[i].unit()), "}");
+  }
+  return out + "]";
+}
 
 double CoverageFraction(const robot::ProgressView& p) {
   if (p.coverage_counts.empty()) return 0.0;
@@ -70,8 +105,8 @@ std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanG
   };
   for (const auto& entry : directory.List(/*include_archived=*/false)) {
     const robot::ProgressView p = entry->runtime->Progress();
-    const std::string robot = absl::StrFormat("robot_id=\"%s\",name=\"%s\"", LabelValue(entry->robot_id),
-                                              LabelValue(entry->spec.name()));
+    const std::string robot = absl::StrFormat(
+        "robot_id=\"%s\",name=\"%s\"", LabelValue(entry->robot_id), LabelValue(entry->spec.name()));
     add("foray_robot_transitions_total", "counter", "Transitions stored for the robot.", robot,
         static_cast<double>(p.status.transitions));
     add("foray_robot_episodes_total", "counter", "Episodes finished by the robot.", robot,
@@ -81,7 +116,8 @@ std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanG
     add("foray_robot_plans_total", "counter", "Plans computed for the robot.", robot,
         static_cast<double>(p.plans));
     add("foray_robot_plan_deadline_misses_total", "counter",
-        "Plans that took longer than their deadline.", robot, static_cast<double>(p.deadline_misses));
+        "Plans that took longer than their deadline.", robot,
+        static_cast<double>(p.deadline_misses));
     for (const auto& [q, v] : {std::pair{"0.5", p.p50_ms}, {"0.9", p.p90_ms}, {"0.99", p.p99_ms}}) {
       add("foray_robot_plan_latency_milliseconds", "gauge",
           "Plan compute time over the last 1000 plans, by quantile.",
@@ -98,10 +134,11 @@ std::string MetricsText(const api::RobotDirectory& directory, const sched::PlanG
       add("foray_robot_holdout_nll", "gauge", "Holdout NLL of the published model, nats.", robot,
           p.model->report.holdout_nll);
       add("foray_robot_holdout_mse", "gauge",
-          "Holdout MSE of the published model, normalised units.", robot, p.model->report.holdout_mse);
+          "Holdout MSE of the published model, normalised units.", robot,
+          p.model->report.holdout_mse);
     }
-    for (const auto& [kind, tally] : {std::pair{"exploration", &p.exploration},
-                                      std::pair{"evaluation", &p.evaluation}}) {
+    for (const auto& [kind, tally] :
+         {std::pair{"exploration", &p.exploration}, std::pair{"evaluation", &p.evaluation}}) {
       const std::string labels = absl::StrCat(robot, ",kind=\"", kind, "\"");
       add("foray_robot_episodes_by_kind_total", "counter",
           "Episodes finished by the robot, by kind (exploration or evaluation plans).", labels,
@@ -156,17 +193,21 @@ std::string RobotsJson(const api::RobotDirectory& directory) {
     const robot::ProgressView p = entry->runtime->Progress();
     if (!first) out += ", ";
     first = false;
-    absl::StrAppend(&out, "{\"robot_id\": ", JsonString(entry->robot_id),
-                    ", \"name\": ", JsonString(entry->spec.name()),
-                    ", \"transitions\": ", p.status.transitions, ", \"episodes\": ", p.episodes,
-                    ", \"model_version\": ", p.status.model_version,
-                    ", \"training\": ", p.status.training ? "true" : "false",
-                    ", \"training_due\": ", p.training_due ? "true" : "false",
-                    ", \"plans_waiting\": ", p.plans_waiting,
-                    ", \"plans\": ", p.plans, ", \"plan_p50_ms\": ", Number(p.p50_ms),
-                    ", \"plan_p99_ms\": ", Number(p.p99_ms),
-                    ", \"deadline_misses\": ", p.deadline_misses,
-                    ", \"coverage_ratio\": ", Number(CoverageFraction(p)));
+    absl::StrAppend(
+        &out, "{\"robot_id\": ", JsonString(entry->robot_id),
+        ", \"name\": ", JsonString(entry->spec.name()), ", \"transitions\": ", p.status.transitions,
+        ", \"episodes\": ", p.episodes, ", \"model_version\": ", p.status.model_version,
+        ", \"training\": ", p.status.training ? "true" : "false",
+        ", \"training_due\": ", p.training_due ? "true" : "false",
+        ", \"plans_waiting\": ", p.plans_waiting, ", \"plans\": ", p.plans,
+        ", \"plan_p50_ms\": ", Number(p.p50_ms), ", \"plan_p99_ms\": ", Number(p.p99_ms),
+        ", \"deadline_misses\": ", p.deadline_misses,
+        ", \"coverage_ratio\": ", Number(CoverageFraction(p)),
+        ", \"control_period_s\": ", Number(entry->spec.control_period_s()),
+        ", \"success_return\": ",
+        Number(entry->spec.has_success_return() ? entry->spec.success_return() : 0.0),
+        ", \"state\": ", DimensionsJson(entry->spec.state()),
+        ", \"action\": ", DimensionsJson(entry->spec.action()));
     if (p.model) {
       absl::StrAppend(&out, ", \"holdout_nll\": ", Number(p.model->report.holdout_nll),
                       ", \"holdout_mse\": ", Number(p.model->report.holdout_mse));
@@ -178,15 +219,20 @@ std::string RobotsJson(const api::RobotDirectory& directory) {
                       ", \"evaluation\": ", p.last_episode->evaluation ? "true" : "false",
                       ", \"terminal\": ", p.last_episode->terminal ? "true" : "false", "}");
     }
-    for (const auto& [kind, tally] : {std::pair{"exploration", &p.exploration},
-                                      std::pair{"evaluation", &p.evaluation}}) {
+    for (const auto& [kind, tally] :
+         {std::pair{"exploration", &p.exploration}, std::pair{"evaluation", &p.evaluation}}) {
       absl::StrAppend(&out, ", \"", kind, "\": {\"episodes\": ", tally->episodes,
                       ", \"successes\": ", tally->successes, ", \"terminals\": ", tally->terminals,
                       ", \"last_return\": ", Number(tally->last_return),
                       ", \"recent_mean_return\": ", Number(tally->RecentMeanReturn()),
                       ", \"recent_success_rate\": ", Number(tally->RecentSuccessRate()), "}");
     }
-    absl::StrAppend(&out, ", \"coverage\": {\"cells\": ", p.coverage_cells, ", \"counts\": [");
+    std::string indices;
+    for (int i : p.coverage_indices) absl::StrAppend(&indices, indices.empty() ? "" : ",", i);
+    absl::StrAppend(&out, ", \"coverage\": {\"indices\": [", indices,
+                    "], \"lower\": ", NumberArray(p.coverage_lower),
+                    ", \"upper\": ", NumberArray(p.coverage_upper),
+                    ", \"cells\": ", p.coverage_cells, ", \"counts\": [");
     for (size_t i = 0; i < p.coverage_counts.size(); ++i) {
       absl::StrAppend(&out, i == 0 ? "" : ",", p.coverage_counts[i]);
     }
@@ -208,14 +254,22 @@ std::string HistoryJson(const store::Store& store, const std::string& robot_id) 
                         ", \"information_gain\": ", Number(e->information_gain),
                         ", \"evaluation\": ", e->evaluation ? "true" : "false",
                         ", \"success\": ", e->success ? "true" : "false",
-                        ", \"terminal\": ", e->terminal ? "true" : "false", "}");
+                        ", \"terminal\": ", e->terminal ? "true" : "false",
+                        ", \"ended_at\": ", UnixSeconds(e->ended_at),
+                        ", \"final_state\": ", NumberArray(e->final_state), "}");
       } else if (r.kind == store::ProgressKind::kTraining) {
         std::optional<store::TrainingRecord> t = store::DecodeTraining(r.payload);
         if (!t) continue;
-        absl::StrAppend(&trainings, trainings.empty() ? "" : ", ", "{\"model_version\": ",
-                        t->model_version, ", \"epochs\": ", t->report.epochs,
+        absl::StrAppend(&trainings, trainings.empty() ? "" : ", ",
+                        "{\"model_version\": ", t->model_version,
+                        ", \"epochs\": ", t->report.epochs,
                         ", \"holdout_nll\": ", Number(t->report.holdout_nll),
-                        ", \"holdout_mse\": ", Number(t->report.holdout_mse), "}");
+                        ", \"holdout_mse\": ", Number(t->report.holdout_mse),
+                        ", \"transitions\": ", t->report.transitions,
+                        ", \"training_seconds\": ", Number(t->training_seconds),
+                        ", \"finished_at\": ", UnixSeconds(t->finished_at),
+                        ", \"within_1sigma\": ", Number(Mean(t->report.within_1sigma)),
+                        ", \"within_2sigma\": ", Number(Mean(t->report.within_2sigma)), "}");
       }
     }
   }

@@ -88,6 +88,13 @@ def test_metrics_and_json_match_the_store():
             assert robots[0]["exploration"]["episodes"] == 2 and robots[0]["evaluation"]["episodes"] == 0
             assert robots[0]["last_episode"]["terminal"] is True
             assert sum(robots[0]["coverage"]["counts"]) == 100
+            # What the dashboard's axes name: the spec's labels and units, the grid's ranges.
+            assert robots[0]["state"] == [{"label": "x0", "unit": "m"}, {"label": "x1", "unit": "m"}]
+            assert robots[0]["action"] == [{"label": "u0", "unit": "N"}]
+            coverage = robots[0]["coverage"]
+            assert coverage["indices"] == [0, 1] and len(coverage["lower"]) == 2
+            assert all(lo < hi for lo, hi in zip(coverage["lower"], coverage["upper"]))
+            assert robots[0]["success_return"] == 0 and robots[0]["control_period_s"] == 0.05
 
             status, _, body = get(f"{base}/api/robots/{robot.robot.robot_id}/history",
                                   token="viewer-secret")
@@ -96,6 +103,15 @@ def test_metrics_and_json_match_the_store():
             assert [e["steps"] for e in history["episodes"]] == [50, 50]
             assert [e["evaluation"] for e in history["episodes"]] == [False, False]
             assert [t["model_version"] for t in history["trainings"]] == [1]
+            # Each episode's final state is its last transition's next_state.
+            sent = transitions(2, 1, 1, 100, episode_len=50)
+            for e in history["episodes"]:
+                assert e["final_state"] == list(sent[e["episode"] * 50 - 1].next_state)
+                assert e["ended_at"] > 1.7e9 and e["terminal"] is True
+            training = history["trainings"][0]
+            assert training["transitions"] == 100 and training["training_seconds"] > 0
+            assert 0 <= training["within_1sigma"] <= training["within_2sigma"] <= 1
+            assert training["finished_at"] > 1.7e9
 
             # The viewer token also reads progress over gRPC, and nothing else.
             from foray.v1 import monitoring_pb2 as mon, monitoring_pb2_grpc, session_pb2 as ses

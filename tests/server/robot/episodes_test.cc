@@ -39,11 +39,14 @@ TEST(EpisodeTrackerTest, AnEpisodeEndsAtATerminalTransitionOrANewEpisodeId) {
   EXPECT_DOUBLE_EQ(tracker.last()->episode_return, 2.0);
   EXPECT_TRUE(tracker.last()->success);  // 2.0 > 1.5
   EXPECT_FALSE(tracker.last()->terminal);
+  // The state it ended in: the next_state of its last transition (seq 2), not of seq 3.
+  EXPECT_EQ(tracker.last()->final_state, (std::vector<double>{3.0, -1.0}));
   tracker.Add(Row(4, 8, 0.5, /*terminal=*/true), 1.5);
   ASSERT_EQ(tracker.episodes(), 2u);
   EXPECT_EQ(tracker.last()->steps, 2);
   EXPECT_TRUE(tracker.last()->terminal);
   EXPECT_FALSE(tracker.last()->success);
+  EXPECT_EQ(tracker.last()->final_state, (std::vector<double>{5.0, -1.0}));
   EXPECT_EQ(tracker.exploration().episodes, 2u);
   EXPECT_EQ(tracker.exploration().terminals, 1u);
   EXPECT_EQ(tracker.exploration().successes, 1u);

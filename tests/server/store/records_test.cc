@@ -53,7 +53,8 @@ TEST(RecordsTest, EpisodeRoundTripsThroughItsWireMessage) {
                         .ended_at = absl::FromUnixSeconds(1796000000),
                         .evaluation = true,
                         .success = true,
-                        .terminal = false};
+                        .terminal = false,
+                        .final_state = {0.25, -1.5, 3.0}};
   const std::optional<EpisodeRecord> back = DecodeEpisode(EncodeEpisode(e));
   ASSERT_TRUE(back.has_value());
   EXPECT_EQ(back->episode, 9u);
@@ -64,6 +65,7 @@ TEST(RecordsTest, EpisodeRoundTripsThroughItsWireMessage) {
   EXPECT_TRUE(back->evaluation);
   EXPECT_TRUE(back->success);
   EXPECT_FALSE(back->terminal);
+  EXPECT_EQ(back->final_state, e.final_state);
   v1::EpisodeSummary wire;
   ASSERT_TRUE(wire.ParseFromString(EncodeEpisode(e)));
   EXPECT_DOUBLE_EQ(wire.return_(), 2.5);
