@@ -9,6 +9,7 @@
 #include "absl/strings/match.h"
 #include "absl/strings/str_cat.h"
 #include "absl/strings/str_format.h"
+#include "absl/strings/str_join.h"
 #include "absl/strings/str_replace.h"
 #include "core/model/simd_kernels.h"
 #include "server/api/auth.h"
@@ -50,10 +51,9 @@ std::string JsonString(const std::string& v) {
 std::string Number(double v) { return std::isfinite(v) ? absl::StrFormat("%.17g", v) : "null"; }
 
 std::string NumberArray(const std::vector<double>& values) {
-  std::string out = "[";
-  for (size_t i = 0; i < values.size(); ++i)
-    absl::StrAppend(&out, i == 0 ? "" : ",", Number(values[i]));
-  return out + "]";
+  return absl::StrCat(
+      "[", absl::StrJoin(values, ",", [](std::string* out, double v) { out->append(Number(v)); }),
+      "]");
 }
 
 double Mean(const std::vector<double>& values) {
@@ -227,16 +227,11 @@ std::string RobotsJson(const api::RobotDirectory& directory) {
                       ", \"recent_mean_return\": ", Number(tally->RecentMeanReturn()),
                       ", \"recent_success_rate\": ", Number(tally->RecentSuccessRate()), "}");
     }
-    std::string indices;
-    for (int i : p.coverage_indices) absl::StrAppend(&indices, indices.empty() ? "" : ",", i);
-    absl::StrAppend(&out, ", \"coverage\": {\"indices\": [", indices,
+    absl::StrAppend(&out, ", \"coverage\": {\"indices\": [", absl::StrJoin(p.coverage_indices, ","),
                     "], \"lower\": ", NumberArray(p.coverage_lower),
                     ", \"upper\": ", NumberArray(p.coverage_upper),
-                    ", \"cells\": ", p.coverage_cells, ", \"counts\": [");
-    for (size_t i = 0; i < p.coverage_counts.size(); ++i) {
-      absl::StrAppend(&out, i == 0 ? "" : ",", p.coverage_counts[i]);
-    }
-    out += "]}}";
+                    ", \"cells\": ", p.coverage_cells, ", \"counts\": [",
+                    absl::StrJoin(p.coverage_counts, ","), "]}}");
   }
   return out + "]}";
 }
