@@ -26,7 +26,8 @@ absl::StatusOr<PlanGate::Ticket> PlanGate::Enter(absl::Time deadline) {
   if (busy_ >= slots_) {
     if (waiting_ >= max_waiting_) {
       return absl::ResourceExhaustedError(absl::StrFormat(
-          "the planner is busy: %d plans computing and %d waiting; retry later", busy_, waiting_));
+          "the planner is busy: %d of %d cores planning and %d plans waiting; retry later", busy_,
+          slots_, waiting_));
     }
     ++waiting_;
     auto free = [this]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) { return busy_ < slots_; };
@@ -34,8 +35,9 @@ absl::StatusOr<PlanGate::Ticket> PlanGate::Enter(absl::Time deadline) {
     --waiting_;
     if (!admitted) {
       return absl::ResourceExhaustedError(absl::StrFormat(
-          "the planner is busy: no core freed up before the plan's deadline (%d plans computing)",
-          busy_));
+          "the planner is busy: no core freed up before the plan's deadline (%d of %d cores "
+          "planning)",
+          busy_, slots_));
     }
   }
   ++busy_;

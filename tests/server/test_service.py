@@ -469,6 +469,12 @@ def test_overload_answers_resource_exhausted_and_nothing_hangs(forayd):
     c.append(robot, transitions(4, 2, 1, 100, episode_len=1000))
     c.wait_model(robot.robot.robot_id, 1)
 
+    # One plan alone first: how long a plan holds the cores on this machine, under this build
+    # and this load (a sanitizer, the SCALAR baseline pass, tests running beside this one).
+    started = time.monotonic()
+    c.plan(robot, [0.0] * 4, deadline_ms=3000)
+    solo_s = time.monotonic() - started
+
     def one(_):
         try:
             plan = c.plan(robot, [0.0] * 4, deadline_ms=3000)
@@ -506,9 +512,11 @@ def test_overload_answers_resource_exhausted_and_nothing_hangs(forayd):
     refused = [r for r in results if r != "ok"]
     print(f"overload: {results.count('ok')} admitted, {len(refused)} refused")
     assert "bad" not in results
-    # Under a sanitizer (tests/run_sanitizers.sh) plans run several times slower: one may be all
-    # that meets its deadline.
-    assert results.count("ok") >= (1 if os.environ.get("FORAY_SANITIZED") == "1" else 2)
+    # The first admitted plan borrows every idle core and computes until its iterations are done
+    # or its deadline nears; the next plan gets the cores only when it ends. Two plans meet the
+    # shared 3 s deadline only if one alone took well under half of it (here under a third).
+    print(f"a plan alone took {solo_s:.2f} s")
+    assert results.count("ok") >= (2 if solo_s < 1.0 else 1)
     assert refused, "40 simultaneous heavy plans on this machine should overflow the waiting room"
     for code, details in refused:
         assert code == CODE.RESOURCE_EXHAUSTED and "busy" in details, (code, details)

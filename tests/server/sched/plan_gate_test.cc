@@ -18,7 +18,7 @@ TEST(PlanGateTest, AdmitsOnePlanPerSlotAndRefusesBeyondTheWaitingRoom) {
   EXPECT_EQ(gate.busy(), 2);
   auto c = gate.Enter(Soon());
   EXPECT_EQ(c.status().code(), absl::StatusCode::kResourceExhausted);
-  EXPECT_NE(c.status().message().find("2 plans computing and 0 waiting"), std::string::npos);
+  EXPECT_NE(c.status().message().find("2 of 2 cores planning and 0 plans waiting"), std::string::npos);
   { auto released = std::move(*a); }
   EXPECT_EQ(gate.busy(), 1);
   EXPECT_TRUE(gate.Enter(Soon()).ok());
