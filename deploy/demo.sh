@@ -60,7 +60,7 @@ echo "      explored or evaluated, its outcome (goal reached, lost, time up), th
 echo "      at the goal they are not told about), the model version and the information gain of"
 echo "      their plans. Every fourth episode evaluates. Press Ctrl-C to stop."
 "$BUILD_DIR/client/foray-sim" --address="$ADDRESS" --admin_token_file="$DATA_DIR/admin-token" \
-  --state_dir="$DATA_DIR/sim" --robots=gantry,arm,bench --episodes=0 --realtime --evaluate_every=3 &
+  --state_dir="$DATA_DIR/sim" --robots=gantry,arm,bench,table --episodes=0 --realtime --evaluate_every=3 &
 SIM_PID=$!
 if [ "$MINUTES" != "0" ]; then
   sleep "$(awk "BEGIN {print $MINUTES * 60}")" &

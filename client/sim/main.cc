@@ -34,7 +34,8 @@ ABSL_FLAG(std::string, admin_token_file, "./foray-data/admin-token",
           "File with the admin token, used once per robot to register it.");
 ABSL_FLAG(std::string, state_dir, "./foray-data/sim",
           "Where each simulated robot keeps its id and token between runs.");
-ABSL_FLAG(std::string, robots, "gantry,arm", "Comma-separated scenarios, one robot each.");
+ABSL_FLAG(std::string, robots, "gantry,arm",
+          "Comma-separated scenarios, one robot each: gantry, arm, bench, table.");
 ABSL_FLAG(std::string, name_prefix, "sim", "Robots are named PREFIX-SCENARIO-N.");
 ABSL_FLAG(int, episodes, 20, "Episodes per robot; 0 runs until Ctrl-C.");
 ABSL_FLAG(int, steps, 0, "Control steps per episode; 0: the scenario's own length.");
@@ -136,33 +137,6 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
   return spec;
 }
 
-// The action of a baseline without a model. noise: the nominal controller's action plus
-// Gaussian noise of --noise_fraction of each half range. random: an Ornstein-Uhlenbeck process
-// around the range's centre (correlation time 10 control periods, stationary standard
-// deviation half the half range), so the robot wanders over its whole range as random pushing
-// would. Both are then clipped to the rate limit and the bounds.
-std::vector<double> BaselineAction(const Scenario& sim, const std::vector<foray::sim::ActionRange>& ranges,
-                                   const Eigen::VectorXd& state, const std::vector<double>& previous,
-                                   bool random, std::mt19937_64& rng) {
-  static const double kCorrelation = std::exp(-1.0 / 10.0);
-  std::normal_distribution<double> normal(0.0, 1.0);
-  const Eigen::VectorXd nominal = sim.Nominal(state);
-  std::vector<double> action(ranges.size());
-  for (size_t j = 0; j < ranges.size(); ++j) {
-    const foray::sim::ActionRange& r = ranges[j];
-    const double half = 0.5 * (r.max - r.min), centre = 0.5 * (r.max + r.min);
-    if (random) {
-      action[j] = centre + kCorrelation * (previous[j] - centre) +
-                  std::sqrt(1.0 - kCorrelation * kCorrelation) * 0.5 * half * normal(rng);
-    } else {
-      action[j] = nominal[j] + absl::GetFlag(FLAGS_noise_fraction) * half * normal(rng);
-    }
-    if (r.max_step > 0) action[j] = std::clamp(action[j], previous[j] - r.max_step, previous[j] + r.max_step);
-    action[j] = std::clamp(action[j], r.min, r.max);
-  }
-  return action;
-}
-
 // Runs the episodes of one robot; returns false on an error that stops it.
 bool RunRobot(const std::string& kind, int index) {
   // One seed per robot and run, for its simulation and (in its spec) its plans and training.
@@ -254,7 +228,10 @@ bool RunRobot(const std::string& kind, int index) {
       const std::vector<double> now(state.data(), state.data() + state.size());
       std::vector<double> action;
       if (no_model) {
-        action = BaselineAction(sim, ranges, state, previous, random_baseline, rng);
+        action = foray::sim::BaselineAction(sim, state, previous,
+                                            random_baseline ? foray::sim::Baseline::kRandom
+                                                            : foray::sim::Baseline::kNoise,
+                                            absl::GetFlag(FLAGS_noise_fraction), rng);
       } else {
         foray::client::Decision decision = session.Act(now, previous, deadline, wait, choices);
         ++plans;
@@ -349,8 +326,9 @@ bool RunRobot(const std::string& kind, int index) {
 
 int main(int argc, char** argv) {
   absl::SetProgramUsageMessage(absl::StrCat(
-      "Simulated robots (an overhead gantry, a two-link arm, a paddle pushing a puck along a bench on\n"
-      "MuJoCo) that learn through forayd.\n\n",
+      "Simulated robots (an overhead gantry, a two-link arm; on MuJoCo a paddle striking a puck along\n"
+      "a bench and a rod on a two-axis stage pushing a puck over a table) that learn through\n"
+      "forayd.\n\n",
       kCaution, "\n\nUsage: foray-sim [flags]"));
   absl::ParseCommandLine(argc, argv);
   std::signal(SIGINT, OnSignal);

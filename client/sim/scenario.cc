@@ -131,12 +131,40 @@ class ArmScenario final : public Scenario {
 
 }  // namespace
 
+std::vector<double> BaselineAction(const Scenario& sim, const Eigen::VectorXd& state,
+                                   const std::vector<double>& previous, Baseline kind,
+                                   double noise_fraction, std::mt19937_64& rng) {
+  static const double kCorrelation = std::exp(-1.0 / 10.0);
+  std::normal_distribution<double> normal(0.0, 1.0);
+  const std::vector<ActionRange> ranges = sim.action_ranges();
+  const Eigen::VectorXd nominal = sim.Nominal(state);
+  std::vector<double> action(ranges.size());
+  for (size_t j = 0; j < ranges.size(); ++j) {
+    const ActionRange& r = ranges[j];
+    const double half = 0.5 * (r.max - r.min), centre = 0.5 * (r.max + r.min);
+    if (kind == Baseline::kRandom) {
+      action[j] = centre + kCorrelation * (previous[j] - centre) +
+                  std::sqrt(1.0 - kCorrelation * kCorrelation) * 0.5 * half * normal(rng);
+    } else {
+      action[j] = nominal[j] + noise_fraction * half * normal(rng);
+    }
+    if (r.max_step > 0) {
+      action[j] = std::clamp(action[j], previous[j] - r.max_step, previous[j] + r.max_step);
+    }
+    action[j] = std::clamp(action[j], r.min, r.max);
+  }
+  return action;
+}
+
 absl::StatusOr<std::unique_ptr<Scenario>> MakeScenario(const std::string& kind, uint64_t seed) {
   if (kind == "gantry") return std::unique_ptr<Scenario>(new GantryScenario(seed));
   if (kind == "arm") return std::unique_ptr<Scenario>(new ArmScenario(seed));
   if (kind == "bench") return MakeBenchScenario(seed);
-  return absl::InvalidArgumentError(absl::StrFormat(
-      "unknown robot \"%s\"; the simulated robots are \"gantry\", \"arm\" and \"bench\"", kind));
+  if (kind == "table") return MakeTableScenario(seed);
+  return absl::InvalidArgumentError(
+      absl::StrFormat("unknown robot \"%s\"; the simulated robots are \"gantry\", \"arm\", "
+                      "\"bench\" and \"table\"",
+                      kind));
 }
 
 }  // namespace foray::sim

@@ -54,16 +54,28 @@ class Scenario {
   virtual double Reward(const Eigen::VectorXd& state) const = 0;
   // Whether `state` is irrecoverable (the episode ends there: an object lost, a fall). The
   // gantry and the arm have no such states.
-  virtual bool Terminal(const Eigen::VectorXd& state) const { return false; }
+  virtual bool Terminal(const Eigen::VectorXd& /*state*/) const { return false; }
   // A description of the zone, for the terminal.
   virtual std::string ZoneDescription() const = 0;
 };
 
-// "gantry", "arm" (our own RK4 physics) or "bench" (MuJoCo: a paddle pushes a puck, which can be
-// lost off the open end of the bench); InvalidArgument for another name, NotFound or
-// InvalidArgument naming the file when bench's MJCF model is missing or malformed.
+// The action of a baseline without a model, given the state and the previous action. kNoise:
+// the scenario's nominal action plus Gaussian noise of `noise_fraction` of each half range.
+// kRandom: an Ornstein-Uhlenbeck process around the range's centre (correlation time 10 control
+// periods, stationary standard deviation half the half range), so the robot wanders over its
+// whole range as random pushing would. Both are then clipped to the rate limit and the bounds.
+enum class Baseline { kNoise, kRandom };
+std::vector<double> BaselineAction(const Scenario& sim, const Eigen::VectorXd& state,
+                                   const std::vector<double>& previous, Baseline kind,
+                                   double noise_fraction, std::mt19937_64& rng);
+
+// "gantry", "arm" (our own RK4 physics), "bench" (MuJoCo: a paddle strikes a puck, which can be
+// lost off the open end of the bench) or "table" (MuJoCo: a rod on a two-axis stage pushes a
+// puck, which can be lost off any edge of the table); InvalidArgument for another name, NotFound
+// or InvalidArgument naming the file when a MuJoCo robot's MJCF model is missing or malformed.
 absl::StatusOr<std::unique_ptr<Scenario>> MakeScenario(const std::string& kind, uint64_t seed);
 absl::StatusOr<std::unique_ptr<Scenario>> MakeBenchScenario(uint64_t seed);
+absl::StatusOr<std::unique_ptr<Scenario>> MakeTableScenario(uint64_t seed);
 
 }  // namespace foray::sim
 

@@ -10,6 +10,8 @@ import grpc
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "server"))
 from conftest import forayd  # noqa: F401,E402  (the fixture)
+from foray.v1 import registry_pb2 as reg  # noqa: E402
+from foray.v1 import registry_pb2_grpc  # noqa: E402
 
 
 # Under the sanitizers a plan takes about a second (one CEM iteration always runs, whatever the
@@ -110,3 +112,23 @@ def test_bench_robot_records_lost_pucks_as_terminal(forayd):  # noqa: F811
         db.close()
     assert terminals == len(lost)  # one terminal transition per lost puck, none for a time limit
     assert episodes == 6
+
+
+def test_table_robot_runs_and_records_its_eight_dimensional_states(forayd):  # noqa: F811
+    # The table robot (MuJoCo, a rod on a two-axis stage pushing a puck) through forayd: its
+    # spec carries the state and action labels with units, and every transition the 8-dimensional
+    # state; a lost puck is one terminal transition.
+    result = run_sim(forayd, "--robots=table", "--episodes=3", "--min_transitions=100000", "--steps=60",
+                     "--name_prefix=tab")
+    assert result.returncode == 0, result.stdout + result.stderr
+    lines = [l for l in result.stdout.splitlines() if l.startswith("tab-table-1 ") and " episode " in l]
+    assert len(lines) == 3, result.stdout
+    assert "within 0.05 m of (0.15, 0.15) m" in result.stdout  # the hidden goal, said at registration
+    channel = grpc.insecure_channel(forayd.address)
+    robots = registry_pb2_grpc.RobotRegistryStub(channel).ListRobots(
+        reg.ListRobotsRequest(), metadata=[("authorization", f"Bearer {forayd.admin_token}")]).robots
+    table = [r for r in robots if r.spec.name == "tab-table-1"][0].spec
+    assert [d.label for d in table.state] == ["rod_x", "rod_y", "rod_velocity_x", "rod_velocity_y",
+                                              "puck_x", "puck_y", "puck_velocity_x", "puck_velocity_y"]
+    assert [d.unit for d in table.state] == ["m"] * 2 + ["m/s"] * 2 + ["m"] * 2 + ["m/s"] * 2
+    assert [(a.min, a.max) for a in table.action_limits] == [(-0.8, 0.8), (-0.8, 0.8)]

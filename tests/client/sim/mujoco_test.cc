@@ -2,8 +2,11 @@
 // MuJoCo's contacts are soft (a spring-damper constraint whose normal force settles within a
 // few milliseconds, solref 0.02 s by default), so the checks allow a few percent where contact
 // forces decide the motion; momentum exchange between two bodies is exact up to rounding.
+#include <algorithm>
 #include <cmath>
 #include <cstdio>
+#include <cstring>
+#include <random>
 #include <string>
 #include <vector>
 
@@ -143,6 +146,144 @@ TEST(MujocoSceneTest, BenchPuckIsLostOffTheOpenEndAndRestsWhenLeftAlone) {
     lost = bench.Terminal(s);
   }
   EXPECT_TRUE(lost) << "puck at " << s[2] << " m";
+}
+
+// The table robot: the same seed and actions give the same trajectory bit for bit.
+TEST(MujocoSceneTest, TableIsDeterministicForASeed) {
+  auto run = [] {
+    auto scenario = MakeScenario("table", 11);
+    EXPECT_TRUE(scenario.ok()) << scenario.status();
+    std::vector<double> trace;
+    Eigen::VectorXd s = (*scenario)->Reset();
+    for (int t = 0; t < 120; ++t) {
+      s = (*scenario)->Step(
+          Eigen::Vector2d(0.3 * std::sin(0.1 * t) + 0.1, 0.2 * std::cos(0.13 * t)));
+      trace.insert(trace.end(), s.data(), s.data() + s.size());
+    }
+    return trace;
+  };
+  const std::vector<double> first = run(), second = run();
+  ASSERT_EQ(first.size(), second.size());
+  EXPECT_EQ(0, std::memcmp(first.data(), second.data(), first.size() * sizeof(double)));
+}
+
+// Left alone the puck stays where it started (no reward); driven straight along +x the rod
+// pushes it ahead of itself and off the open edge at 0.25 m (lost, terminal) before the stage's
+// travel ends at 0.28 m.
+TEST(MujocoSceneTest, TablePuckRestsWhenLeftAloneAndIsLostOffAnEdge) {
+  auto scenario = MakeScenario("table", 5);
+  ASSERT_TRUE(scenario.ok()) << scenario.status();
+  Scenario& table = **scenario;
+  Eigen::VectorXd s = table.Reset();
+  const Eigen::Vector2d start = s.segment<2>(4);
+  for (int t = 0; t < 20; ++t) s = table.Step(Eigen::Vector2d::Zero());
+  EXPECT_LT((s.segment<2>(4) - start).norm(), 1e-3);
+  EXPECT_FALSE(table.Terminal(s));
+  EXPECT_EQ(table.Reward(s), 0.0);
+  // Line the rod up behind the puck's centre first, then drive through it, keeping the rod on
+  // the puck's line (a round rod pushes a round puck sideways off it otherwise).
+  bool lost = false;
+  Eigen::Vector2d command = Eigen::Vector2d::Zero();
+  for (int t = 0; t < 160 && !lost; ++t) {
+    const double dy = std::clamp(4.0 * (s[5] - s[1]), -0.4, 0.4);
+    const Eigen::Vector2d want(t < 30 ? 0.0 : 0.3, dy);
+    command += (want - command).cwiseMax(-0.1).cwiseMin(0.1);  // the robot's rate limit
+    s = table.Step(command);
+    lost = table.Terminal(s);
+  }
+  EXPECT_TRUE(lost) << "puck at " << s[4] << ", " << s[5] << " m";
+}
+
+// A hand-written pusher (not the planner) that steers the puck to the hidden goal: the goal can
+// be reached and held within one episode under the robot's speed and acceleration limits.
+// Behind the puck on the line from the goal through it, then push along that line, slowing as
+// the puck nears the goal; back off once it is there.
+Eigen::Vector2d ScriptedPush(const Eigen::VectorXd& s, const Eigen::Vector2d& goal) {
+  const Eigen::Vector2d rod = s.segment<2>(0), puck = s.segment<2>(4);
+  const Eigen::Vector2d to_goal = goal - puck;
+  const double remaining = to_goal.norm();
+  const Eigen::Vector2d d = to_goal / std::max(remaining, 1e-9);
+  const Eigen::Vector2d behind = puck - d * 0.045;  // the rod touching the puck from behind
+  Eigen::Vector2d v;
+  if (remaining < 0.015) {
+    v = -d * 0.1;  // leave it there
+  } else if ((rod - behind).norm() > 0.015 || (rod - puck).dot(d) > -0.03) {
+    // Approach a point further behind first, so that the rod does not strike the puck sideways.
+    const Eigen::Vector2d staging = puck - d * 0.08;
+    const Eigen::Vector2d target =
+        (rod - staging).norm() > 0.02 && (rod - puck).dot(d) > -0.06 ? staging : behind;
+    v = 3.0 * (target - rod);
+  } else {
+    const Eigen::Vector2d lateral = (behind - rod) - d * d.dot(behind - rod);
+    v = d * std::min(0.25, 1.5 * remaining) + 3.0 * lateral;
+  }
+  return v.cwiseMax(-0.4).cwiseMin(0.4);
+}
+
+Eigen::Vector2d RateLimited(const Eigen::Vector2d& want, const Eigen::Vector2d& previous,
+                            double step) {
+  return previous + (want - previous).cwiseMax(-step).cwiseMin(step);
+}
+
+TEST(MujocoSceneTest, TableGoalIsReachableByAScriptedPusher) {
+  int reached = 0;
+  for (uint64_t seed = 1; seed <= 5; ++seed) {
+    auto scenario = MakeScenario("table", seed);
+    ASSERT_TRUE(scenario.ok()) << scenario.status();
+    Scenario& table = **scenario;
+    Eigen::VectorXd s = table.Reset();
+    Eigen::Vector2d previous = Eigen::Vector2d::Zero();
+    double ret = 0.0;
+    bool lost = false;
+    for (int t = 0; t < table.episode_steps() && !lost; ++t) {
+      previous = RateLimited(ScriptedPush(s, {0.15, 0.15}), previous, 0.1);
+      s = table.Step(previous);
+      ret += table.Reward(s);
+      lost = table.Terminal(s);
+    }
+    std::printf("seed %d: return %g, puck at (%.3f, %.3f) m%s\n", static_cast<int>(seed), ret, s[4],
+                s[5], lost ? ", lost" : "");
+    reached += ret > 0 && !lost ? 1 : 0;
+  }
+  EXPECT_EQ(reached, 5);
+}
+
+// The design check of the table robot (client/sim/table_scenario.cc), kept: random pushing (the
+// benchmark's "random" baseline, an Ornstein-Uhlenbeck velocity command over the whole range)
+// reaches the hidden goal in at most 3 of 10 seeds of 24 episodes, and at least a quarter of
+// its episodes that move the puck more than 5 cm lose it. A scenario where random pushing
+// succeeds, or where careless pushing costs nothing, cannot show what exploration is for.
+TEST(MujocoSceneTest, TableRandomPushingRarelyReachesTheGoalAndOftenLosesThePuck) {
+  int seeds_found = 0, episodes = 0, moved = 0, lost = 0;
+  for (uint64_t seed = 1; seed <= 10; ++seed) {
+    auto scenario = MakeScenario("table", seed * 1000 + 1);
+    ASSERT_TRUE(scenario.ok()) << scenario.status();
+    Scenario& table = **scenario;
+    std::mt19937_64 rng(seed * 7919 + 1);
+    bool found = false;
+    for (int e = 0; e < 24; ++e, ++episodes) {
+      Eigen::VectorXd s = table.Reset();
+      const Eigen::Vector2d start = s.segment<2>(4);
+      std::vector<double> previous(2, 0.0);
+      double farthest = 0.0;
+      bool this_lost = false;
+      for (int t = 0; t < table.episode_steps() && !this_lost; ++t) {
+        previous = BaselineAction(table, s, previous, Baseline::kRandom, 0.3, rng);
+        s = table.Step(Eigen::Map<const Eigen::VectorXd>(previous.data(), 2));
+        farthest = std::max(farthest, (s.segment<2>(4) - start).norm());
+        found = found || table.Reward(s) > 0;
+        this_lost = table.Terminal(s);
+      }
+      moved += farthest > 0.05 ? 1 : 0;
+      lost += this_lost ? 1 : 0;
+    }
+    seeds_found += found ? 1 : 0;
+  }
+  std::printf("random pushing: goal reached in %d of 10 seeds; of %d episodes %d moved the puck "
+              "more than 5 cm, %d lost it\n",
+              seeds_found, episodes, moved, lost);
+  EXPECT_LE(seeds_found, 3);
+  EXPECT_GE(lost * 4, moved);
 }
 
 TEST(MujocoErrorTest, MissingAndMalformedModelsAreNamed) {
