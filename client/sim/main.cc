@@ -90,6 +90,9 @@ void Say(const std::string& line) {
   std::fflush(stdout);
 }
 
+// CEM iterations of every plan (fewer when the deadline comes first; the report counts those).
+constexpr int kPlanIterations = 3;
+
 // `seed`: the robot's own random streams (its plans and training).
 v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed) {
   v1::RobotSpec spec;
@@ -124,7 +127,7 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
                                                                        : s.plan_horizon());
   spec.mutable_planner()->set_population(150);
   spec.mutable_planner()->set_elites(15);
-  spec.mutable_planner()->set_iterations(3);
+  spec.mutable_planner()->set_iterations(kPlanIterations);
   spec.mutable_objective()->set_reward_weight(absl::GetFlag(FLAGS_reward_weight));
   spec.mutable_objective()->set_information_weight(
       absl::GetFlag(FLAGS_strategy) == "reward" ? 0.0 : absl::GetFlag(FLAGS_information_weight));
@@ -220,7 +223,9 @@ bool RunRobot(const std::string& kind, int index) {
     Eigen::VectorXd state = sim.Reset();
     std::vector<double> previous(action_dim, 0.0);
     double episode_return = 0.0, plan_ms = 0.0, gain = 0.0;
-    int first_reward = -1, from_prior = 0, plans = 0, held = 0;
+    // Plans from a model, and those of them whose deadline came before their iterations were
+    // done (the plan's work then depends on the machine's speed).
+    int first_reward = -1, from_prior = 0, plans = 0, held = 0, model_plans = 0, cut_short = 0;
     const auto episode_start = std::chrono::steady_clock::now();
     uint64_t model_version = 0;
     for (int t = 0; t < steps && !g_stop; ++t) {
@@ -240,6 +245,10 @@ bool RunRobot(const std::string& kind, int index) {
           plan_ms += decision.plan.compute_ms();
           gain += decision.plan.steps(0).information_gain();
           from_prior += decision.plan.from_prior() ? 1 : 0;
+          if (!decision.plan.from_prior()) {
+            ++model_plans;
+            cut_short += decision.plan.iterations() < kPlanIterations ? 1 : 0;
+          }
           model_version = decision.plan.model_version();
           known_model = std::max(known_model, model_version);
         } else if (held++ == 0) {
@@ -284,11 +293,12 @@ bool RunRobot(const std::string& kind, int index) {
           "{\"robot\": \"%s\", \"robot_id\": \"%s\", \"scenario\": \"%s\", \"strategy\": \"%s\", "
           "\"episode\": %d, \"evaluation\": %s, \"outcome\": \"%s\", \"return\": %g, "
           "\"first_reward_step\": %d, \"model_version\": %d, "
-          "\"plans\": %d, \"plan_ms\": %g, \"information_gain\": %g, \"seconds\": %g}\n",
+          "\"plans\": %d, \"plan_ms\": %g, \"information_gain\": %g, \"seconds\": %g, "
+          "\"model_plans\": %d, \"plans_cut_short\": %d}\n",
           name, id->robot_id, kind, absl::GetFlag(FLAGS_strategy), episode_id,
           evaluation ? "true" : "false", outcome, episode_return,
           first_reward, model_version, plans, plans > 0 ? plan_ms / plans : 0.0,
-          plans > 0 ? gain / plans : 0.0, episode_s);
+          plans > 0 ? gain / plans : 0.0, episode_s, model_plans, cut_short);
     }
     if (absl::GetFlag(FLAGS_train_each_episode) && !no_model && !g_stop) {
       if (absl::Status s = session.Flush(absl::Minutes(1)); !s.ok()) {

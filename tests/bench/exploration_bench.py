@@ -18,7 +18,9 @@ episode of first reward (the hidden goal discovered), the state-space coverage a
 exploration episode (fraction of occupied cells of a 20x20 grid over the robot's two coverage
 dimensions, read from the SQLite store), returns, objects lost (episodes that ended in a
 terminal state), the evaluation success per round, the final model's holdout error, wall time
-and plans. Writes exploration_bench.json, prints a summary table, and draws PNG plots with
+and plans, and how many model plans their deadline cut short of their CEM iterations (give a
+deadline long enough for none, and the planners do the same work on any machine: foray-sim
+waits for each plan, the simulation's clock is its own). Writes exploration_bench.json, prints a summary table, and draws PNG plots with
 matplotlib (mean and min..max over seeds).
 
     /usr/bin/python3 tests/bench/exploration_bench.py --build build --out build/bench/exploration
@@ -155,6 +157,8 @@ def run_one(args, scenario, strategy, seed):
         "holdout_mse": training.holdout_mse if training else None,
         "holdout_nll": training.holdout_nll if training else None,
         "plans": sum(e["plans"] for e in episodes),
+        "model_plans": sum(e.get("model_plans", 0) for e in episodes),
+        "plans_cut_short": sum(e.get("plans_cut_short", 0) for e in episodes),
         "plan_ms": float(np.mean([e["plan_ms"] for e in episodes if e["plans"] > 0])) if any(
             e["plans"] > 0 for e in episodes) else 0.0,
         "wall_s": wall,
@@ -180,6 +184,10 @@ def summarise(runs):
                 "final_evaluation_success": float(np.mean(final)) if final else None,
                 "lost_total": int(sum(r["lost"] for r in mine)),
                 "wall_s_mean": float(np.mean([r["wall_s"] for r in mine])),
+                # Model plans whose deadline came before their CEM iterations were done: where
+                # this is not 0 the planners' work depends on the machine's speed.
+                "plans_cut_short_fraction": (sum(r.get("plans_cut_short", 0) for r in mine) /
+                                             max(1, sum(r.get("model_plans", 0) for r in mine))),
             })
     return rows
 
@@ -188,13 +196,13 @@ def print_table(rows, episodes, steps):
     print(f"budget: {episodes} episodes (exploration and evaluation) of "
           f"{steps or 'the scenario own number of'} steps per run")
     print(f"{'scenario':8} {'strategy':8} {'found':>7} {'median ep':>9} {'coverage':>9} "
-          f"{'4 of last 5':>11} {'eval. success':>13} {'lost':>5} {'wall s':>7}")
+          f"{'4 of last 5':>11} {'eval. success':>13} {'lost':>5} {'wall s':>7} {'cut short':>9}")
     for r in rows:
         med = f"{r['median_first_episode']:.1f}" if r["median_first_episode"] else "-"
         ev = f"{100 * r['final_evaluation_success']:.0f}%" if r["final_evaluation_success"] is not None else "-"
         print(f"{r['scenario']:8} {r['strategy']:8} {r['discovered']:>3}/{r['runs']:<3} {med:>9} "
               f"{r['final_coverage_mean']:9.3f} {r['reached_in_4_of_last_5']:>11} {ev:>13} "
-              f"{r['lost_total']:>5} {r['wall_s_mean']:7.1f}")
+              f"{r['lost_total']:>5} {r['wall_s_mean']:7.1f} {100 * r['plans_cut_short_fraction']:8.1f}%")
 
 
 def plot(runs, out_dir):
