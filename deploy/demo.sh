@@ -1,8 +1,8 @@
 #!/usr/bin/env bash
 # Starts a local Foray: installs what is missing, builds, runs forayd on the embedded default
-# (SQLite under ./foray-data) on 127.0.0.1:50151 and three simulated robots (foray-sim: an
-# overhead gantry, a two-link arm, and a paddle that pushes a puck along a bench on MuJoCo) that
-# learn through it, until Ctrl-C (data is kept).
+# (SQLite under ./foray-data) on 127.0.0.1:50151 and four simulated robots (foray-sim: an
+# overhead gantry, a two-link arm, and on MuJoCo a paddle that strikes a puck along a bench and
+# a rod that pushes a puck over a table) that learn through it, until Ctrl-C (data is kept).
 #
 #   ./deploy/demo.sh               # until Ctrl-C
 #   ./deploy/demo.sh --minutes 5   # stop by itself after five minutes
@@ -55,7 +55,7 @@ echo
 echo "demo: forayd is serving gRPC on $ADDRESS with data in $DATA_DIR."
 echo "demo: the admin token (for registering robots) is in $DATA_DIR/admin-token."
 echo "demo: dashboard at http://127.0.0.1:$HTTP_PORT/ (metrics at /metrics)."
-echo "demo: three simulated robots now learn in real time; a line per episode shows whether it"
+echo "demo: four simulated robots now learn in real time; a line per episode shows whether it"
 echo "      explored or evaluated, its outcome (goal reached, lost, time up), the return (steps"
 echo "      at the goal they are not told about), the model version and the information gain of"
 echo "      their plans. Every fourth episode evaluates. Press Ctrl-C to stop."
