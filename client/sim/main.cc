@@ -60,7 +60,9 @@ ABSL_FLAG(std::string, strategy, "explore",
 ABSL_FLAG(double, noise_fraction, 0.3,
           "noise strategy: standard deviation of the noise, fraction of each action's half range.");
 ABSL_FLAG(bool, train_each_episode, false,
-          "After each episode, wait for a training round on everything sent so far (benchmarks).");
+          "After each episode, wait for a training round on everything sent so far, and train at "
+          "no other time (benchmarks: a run is repeatable for its seed; --min_transitions and "
+          "--train_every are then not used).");
 ABSL_FLAG(std::string, report, "", "Append one JSON line per episode to this file.");
 ABSL_FLAG(int, min_transitions, 200, "Transitions before the first model (at registration).");
 ABSL_FLAG(int, train_every, 500, "Retrain after this many new transitions (at registration).");
@@ -92,6 +94,8 @@ void Say(const std::string& line) {
 
 // CEM iterations of every plan (fewer when the deadline comes first; the report counts those).
 constexpr int kPlanIterations = 3;
+// A transition count no robot reaches: training by count off.
+constexpr uint32_t kNeverByCount = 1000000000;
 
 // `seed`: the robot's own random streams (its plans and training).
 v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed) {
@@ -117,8 +121,18 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
   spec.set_control_period_s(s.control_period_s());
   spec.mutable_model()->add_hidden_widths(64);
   spec.mutable_model()->add_hidden_widths(64);
-  spec.mutable_training()->set_min_transitions(absl::GetFlag(FLAGS_min_transitions));
-  spec.mutable_training()->set_every_n_transitions(absl::GetFlag(FLAGS_train_every));
+  if (absl::GetFlag(FLAGS_train_each_episode)) {
+    // Only the rounds asked for after each episode: the server's own rounds (the first model
+    // once min_transitions arrived, at an episode's end, every n transitions) would start
+    // while the next episode plans, and which model a plan saw would depend on timing. So a
+    // run is repeatable for its seed.
+    spec.mutable_training()->set_min_transitions(kNeverByCount);
+    spec.mutable_training()->set_every_n_transitions(kNeverByCount);
+    spec.mutable_training()->set_no_train_at_episode_end(true);
+  } else {
+    spec.mutable_training()->set_min_transitions(absl::GetFlag(FLAGS_min_transitions));
+    spec.mutable_training()->set_every_n_transitions(absl::GetFlag(FLAGS_train_every));
+  }
   spec.mutable_training()->set_max_epochs(20);
   if (absl::GetFlag(FLAGS_nll_beta) != 0.0) {
     spec.mutable_training()->set_nll_beta(absl::GetFlag(FLAGS_nll_beta));
