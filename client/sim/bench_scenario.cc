@@ -13,7 +13,6 @@
 // slides off the end.
 #include <algorithm>
 #include <cmath>
-#include <cstdio>
 #include <random>
 
 #include "absl/strings/str_format.h"
@@ -61,12 +60,12 @@ class BenchScenario final : public Scenario {
     std::uniform_real_distribution<double> start(0.10, 0.25);
     // The puck body sits at 0.15 m in the model; its slide joint is the offset from there.
     world_->data()->qpos[puck_x_] = start(rng_) - 0.15;
-    if (absl::Status s = world_->Forward(); !s.ok()) Fail(s);
+    if (absl::Status s = world_->Forward(); !s.ok()) AbortSimulation(kind(), s);
     return State();
   }
   Eigen::VectorXd Step(const Eigen::VectorXd& action) override {
     world_->data()->ctrl[0] = std::clamp(action[0], -1.2, 1.2);
-    if (absl::Status s = world_->Step(kPhysicsSteps); !s.ok()) Fail(s);
+    if (absl::Status s = world_->Step(kPhysicsSteps); !s.ok()) AbortSimulation(kind(), s);
     return State();
   }
   Eigen::VectorXd Nominal(const Eigen::VectorXd& s) const override {
@@ -90,12 +89,6 @@ class BenchScenario final : public Scenario {
     s << d->qpos[carriage_q_], d->qvel[carriage_v_], 0.15 + d->qpos[puck_x_], d->qvel[puck_v_];
     return s;
   }
-  // A simulation error is a bug in the model or the scenario, never a robot's input.
-  [[noreturn]] static void Fail(const absl::Status& s) {
-    std::fprintf(stderr, "bench simulation: %s\n", std::string(s.message()).c_str());
-    std::abort();
-  }
-
   const std::unique_ptr<MujocoWorld> world_;
   std::mt19937_64 rng_;
   const int carriage_q_, carriage_v_, puck_x_, puck_z_, puck_v_;
@@ -104,9 +97,7 @@ class BenchScenario final : public Scenario {
 }  // namespace
 
 absl::StatusOr<std::unique_ptr<Scenario>> MakeBenchScenario(uint64_t seed) {
-  absl::StatusOr<std::string> path = FindModelFile("bench.xml");
-  if (!path.ok()) return path.status();
-  absl::StatusOr<std::unique_ptr<MujocoWorld>> world = MujocoWorld::Load(*path);
+  absl::StatusOr<std::unique_ptr<MujocoWorld>> world = LoadModelFile("bench.xml");
   if (!world.ok()) return world.status();
   return std::unique_ptr<Scenario>(new BenchScenario(*std::move(world), seed));
 }

@@ -203,7 +203,6 @@ bool RunRobot(const std::string& kind, int index) {
     if (in >> kept) episode_id = std::max(episode_id, kept);
   }
   const int action_dim = static_cast<int>(sim.action_dims().size());
-  const std::vector<foray::sim::ActionRange> ranges = sim.action_ranges();
   const bool random_baseline = absl::GetFlag(FLAGS_strategy) == "random";
   const bool no_model = random_baseline || absl::GetFlag(FLAGS_strategy) == "noise";
   const bool realtime = absl::GetFlag(FLAGS_realtime);

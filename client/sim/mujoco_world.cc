@@ -84,6 +84,17 @@ absl::StatusOr<std::string> FindModelFile(const std::string& name) {
                                              name, absl::StrJoin(looked, ", ")));
 }
 
+absl::StatusOr<std::unique_ptr<MujocoWorld>> LoadModelFile(const std::string& name) {
+  absl::StatusOr<std::string> path = FindModelFile(name);
+  if (!path.ok()) return path.status();
+  return MujocoWorld::Load(*path);
+}
+
+void AbortSimulation(const std::string& robot, const absl::Status& error) {
+  std::fprintf(stderr, "%s simulation: %s\n", robot.c_str(), std::string(error.message()).c_str());
+  std::abort();
+}
+
 MujocoWorld::MujocoWorld(mjModel* model, std::string name)
     : name_(std::move(name)), model_(model), data_(mj_makeData(model)) {}
 

@@ -16,6 +16,7 @@
 #include <memory>
 #include <string>
 
+#include "absl/status/status.h"
 #include "absl/status/statusor.h"
 #include "mujoco/mujoco.h"
 
@@ -65,6 +66,13 @@ class MujocoWorld {
   mjModel* const model_;
   mjData* const data_;
 };
+
+// FindModelFile(name), then MujocoWorld::Load on it: a simulated robot's world.
+absl::StatusOr<std::unique_ptr<MujocoWorld>> LoadModelFile(const std::string& name);
+
+// For a scenario whose step failed: a simulation error there is a bug in its model or code,
+// never a robot's input. Prints "<robot> simulation: <message>" and aborts.
+[[noreturn]] void AbortSimulation(const std::string& robot, const absl::Status& error);
 
 }  // namespace foray::sim
 

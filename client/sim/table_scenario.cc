@@ -22,7 +22,6 @@
 // then this one), never against a planner.
 #include <algorithm>
 #include <cmath>
-#include <cstdio>
 #include <random>
 
 #include "absl/strings/str_format.h"
@@ -81,13 +80,13 @@ class TableScenario final : public Scenario {
     std::uniform_real_distribution<double> jitter(-kPuckJitter, kPuckJitter);
     world_->data()->qpos[puck_x_q_] = kPuckStartX + jitter(rng_);
     world_->data()->qpos[puck_y_q_] = jitter(rng_);
-    if (absl::Status s = world_->Forward(); !s.ok()) Fail(s);
+    if (absl::Status s = world_->Forward(); !s.ok()) AbortSimulation(kind(), s);
     return State();
   }
   Eigen::VectorXd Step(const Eigen::VectorXd& action) override {
     world_->data()->ctrl[0] = std::clamp(action[0], -kSpeed, kSpeed);
     world_->data()->ctrl[1] = std::clamp(action[1], -kSpeed, kSpeed);
-    if (absl::Status s = world_->Step(kPhysicsSteps); !s.ok()) Fail(s);
+    if (absl::Status s = world_->Step(kPhysicsSteps); !s.ok()) AbortSimulation(kind(), s);
     return State();
   }
   Eigen::VectorXd Nominal(const Eigen::VectorXd& s) const override {
@@ -118,12 +117,6 @@ class TableScenario final : public Scenario {
         d->qvel[puck_y_v_];
     return s;
   }
-  // A simulation error is a bug in the model or the scenario, never a robot's input.
-  [[noreturn]] static void Fail(const absl::Status& s) {
-    std::fprintf(stderr, "table simulation: %s\n", std::string(s.message()).c_str());
-    std::abort();
-  }
-
   const std::unique_ptr<MujocoWorld> world_;
   std::mt19937_64 rng_;
   const int stage_x_q_, stage_y_q_, stage_x_v_, stage_y_v_;
@@ -133,9 +126,7 @@ class TableScenario final : public Scenario {
 }  // namespace
 
 absl::StatusOr<std::unique_ptr<Scenario>> MakeTableScenario(uint64_t seed) {
-  absl::StatusOr<std::string> path = FindModelFile("table.xml");
-  if (!path.ok()) return path.status();
-  absl::StatusOr<std::unique_ptr<MujocoWorld>> world = MujocoWorld::Load(*path);
+  absl::StatusOr<std::unique_ptr<MujocoWorld>> world = LoadModelFile("table.xml");
   if (!world.ok()) return world.status();
   return std::unique_ptr<Scenario>(new TableScenario(*std::move(world), seed));
 }

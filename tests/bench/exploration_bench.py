@@ -11,18 +11,18 @@ loopback, under four strategies, for several seeds each:
 
 Every run starts with an empty data directory and a fresh forayd; the model is retrained on
 everything sent after each episode and at no other time (foray-sim --train_each_episode), so
-a run is repeatable for its seed. After every K exploration
-episodes (--evaluate_every), E evaluation episodes (--evaluations) plan reward only on the
-current model: their success rate (return > 0) over the run is the learning curve of the task.
-The baselines have no model, so they have no evaluation. Per run it records the exploration
+a run is repeatable for its seed. After every K exploration episodes (--evaluate_every), E
+evaluation episodes (--evaluations) plan reward only on the current model: their success rate
+(return > 0) over the run is the learning curve of the task. The baselines have no model, so
+they have no evaluation. Per run it records the exploration
 episode of first reward (the hidden goal discovered), the state-space coverage after each
 exploration episode (fraction of occupied cells of a 20x20 grid over the robot's two coverage
 dimensions, read from the SQLite store), returns, objects lost (episodes that ended in a
 terminal state), the evaluation success per round, the final model's holdout error, wall time
 and plans, and how many model plans their deadline cut short of their CEM iterations (give a
 deadline long enough for none, and the planners do the same work on any machine: foray-sim
-waits for each plan, the simulation's clock is its own). Writes exploration_bench.json, prints a summary table, and draws PNG plots with
-matplotlib (mean and min..max over seeds).
+waits for each plan, the simulation's clock is its own). Writes exploration_bench.json, prints
+a summary table, and draws PNG plots with matplotlib (mean and min..max over seeds).
 
     /usr/bin/python3 tests/bench/exploration_bench.py --build build --out build/bench/exploration
 """
@@ -160,8 +160,8 @@ def run_one(args, scenario, strategy, seed):
         "holdout_mse": training.holdout_mse if training else None,
         "holdout_nll": training.holdout_nll if training else None,
         "plans": sum(e["plans"] for e in episodes),
-        "model_plans": sum(e.get("model_plans", 0) for e in episodes),
-        "plans_cut_short": sum(e.get("plans_cut_short", 0) for e in episodes),
+        "model_plans": sum(e["model_plans"] for e in episodes),
+        "plans_cut_short": sum(e["plans_cut_short"] for e in episodes),
         "plan_ms": float(np.mean([e["plan_ms"] for e in episodes if e["plans"] > 0])) if any(
             e["plans"] > 0 for e in episodes) else 0.0,
         "wall_s": wall,
@@ -189,8 +189,8 @@ def summarise(runs):
                 "wall_s_mean": float(np.mean([r["wall_s"] for r in mine])),
                 # Model plans whose deadline came before their CEM iterations were done: where
                 # this is not 0 the planners' work depends on the machine's speed.
-                "plans_cut_short_fraction": (sum(r.get("plans_cut_short", 0) for r in mine) /
-                                             max(1, sum(r.get("model_plans", 0) for r in mine))),
+                "plans_cut_short_fraction": (sum(r["plans_cut_short"] for r in mine) /
+                                             max(1, sum(r["model_plans"] for r in mine))),
             })
     return rows
 

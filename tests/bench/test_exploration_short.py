@@ -4,6 +4,7 @@ episodes), the exploring planner against the noise baseline. The exploring plann
 coverage must beat the noise baseline's, and it must discover the goal in at least as many seeds
 (the claims the full benchmark measures; see exploration_bench.py)."""
 
+import argparse
 import os
 import sys
 import tempfile
@@ -34,7 +35,6 @@ def test_exploring_planner_covers_more_than_the_noise_baseline():
 def test_a_seed_gives_the_same_run_twice():
     """Learning claims compare seeds: one seed run twice (fresh server and data each time) must
     store the same transitions bit for bit, with plans never cut short by their deadline."""
-    import argparse
     # The table robot: its first model used to be trained by the server while the first episode
     # went on (once 100 transitions had arrived), and this seed then gave two different runs.
     args = argparse.Namespace(build=os.environ["FORAY_BUILD_DIR"], episodes=3, steps=0,

@@ -6,6 +6,7 @@
 #include <cmath>
 #include <cstdio>
 #include <cstring>
+#include <functional>
 #include <random>
 #include <string>
 #include <vector>
@@ -110,22 +111,31 @@ TEST(MujocoPhysicsTest, ImpactConservesMomentum) {
   EXPECT_NEAR(2.0 * d->qvel[a] + 0.5 * d->qvel[b], before, 1e-9 * before);
 }
 
-// The same seed and actions give the same trajectory bit for bit.
-TEST(MujocoSceneTest, BenchIsDeterministicForASeed) {
-  auto run = [] {
-    auto scenario = MakeScenario("bench", 7);
-    EXPECT_TRUE(scenario.ok()) << scenario.status();
-    std::vector<double> trace;
-    Eigen::VectorXd s = (*scenario)->Reset();
-    for (int t = 0; t < 80; ++t) {
-      s = (*scenario)->Step(Eigen::VectorXd::Constant(1, 0.9 * std::sin(0.2 * t) + 0.3));
-      trace.insert(trace.end(), s.data(), s.data() + s.size());
-    }
-    return trace;
-  };
-  const std::vector<double> first = run(), second = run();
+// The states of a fresh `kind` robot (seed `seed`), from its Reset, under actions(t), t < steps.
+std::vector<double> Trace(const std::string& kind, uint64_t seed, int steps,
+                          const std::function<Eigen::VectorXd(int)>& actions) {
+  auto scenario = MakeScenario(kind, seed);
+  EXPECT_TRUE(scenario.ok()) << scenario.status();
+  if (!scenario.ok()) return {};
+  std::vector<double> trace;
+  (*scenario)->Reset();
+  for (int t = 0; t < steps; ++t) {
+    const Eigen::VectorXd s = (*scenario)->Step(actions(t));
+    trace.insert(trace.end(), s.data(), s.data() + s.size());
+  }
+  return trace;
+}
+
+// Bit for bit the same: memcmp, so that -0.0 and 0.0 or two NaNs would differ too.
+void ExpectSameBits(const std::vector<double>& first, const std::vector<double>& second) {
   ASSERT_EQ(first.size(), second.size());
   EXPECT_EQ(0, std::memcmp(first.data(), second.data(), first.size() * sizeof(double)));
+}
+
+// The same seed and actions give the same trajectory bit for bit.
+TEST(MujocoSceneTest, BenchIsDeterministicForASeed) {
+  auto actions = [](int t) { return Eigen::VectorXd::Constant(1, 0.9 * std::sin(0.2 * t) + 0.3); };
+  ExpectSameBits(Trace("bench", 7, 80, actions), Trace("bench", 7, 80, actions));
 }
 
 // Striking the puck hard from close by sends it off the open end (lost, terminal); holding the
@@ -150,21 +160,10 @@ TEST(MujocoSceneTest, BenchPuckIsLostOffTheOpenEndAndRestsWhenLeftAlone) {
 
 // The table robot: the same seed and actions give the same trajectory bit for bit.
 TEST(MujocoSceneTest, TableIsDeterministicForASeed) {
-  auto run = [] {
-    auto scenario = MakeScenario("table", 11);
-    EXPECT_TRUE(scenario.ok()) << scenario.status();
-    std::vector<double> trace;
-    Eigen::VectorXd s = (*scenario)->Reset();
-    for (int t = 0; t < 120; ++t) {
-      s = (*scenario)->Step(
-          Eigen::Vector2d(0.3 * std::sin(0.1 * t) + 0.1, 0.2 * std::cos(0.13 * t)));
-      trace.insert(trace.end(), s.data(), s.data() + s.size());
-    }
-    return trace;
+  auto actions = [](int t) -> Eigen::VectorXd {
+    return Eigen::Vector2d(0.3 * std::sin(0.1 * t) + 0.1, 0.2 * std::cos(0.13 * t));
   };
-  const std::vector<double> first = run(), second = run();
-  ASSERT_EQ(first.size(), second.size());
-  EXPECT_EQ(0, std::memcmp(first.data(), second.data(), first.size() * sizeof(double)));
+  ExpectSameBits(Trace("table", 11, 120, actions), Trace("table", 11, 120, actions));
 }
 
 // Left alone the puck stays where it started (no reward); driven straight along +x the rod
