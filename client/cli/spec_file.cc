@@ -154,8 +154,8 @@ absl::Status FillDimensions(const json& list, const std::string& path, bool with
   }
   for (size_t i = 0; i < list.size(); ++i) {
     const std::string at = absl::StrCat(path, "[", i, "]");
-    std::vector<std::string> known = {"label", "unit"};
-    if (with_limits) known.insert(known.end(), {"min", "max", "max_step"});
+    std::vector<std::string> known = {"label", "unit", "min", "max"};
+    if (with_limits) known.push_back("max_step");
     if (absl::Status s = OnlyKeys(list[i], at, known); !s.ok()) return s;
     if (!list[i].contains("label")) return Bad(at, "needs a \"label\"");
     v1::Dimension* dim = with_limits ? spec->add_action() : spec->add_state();
@@ -167,7 +167,26 @@ absl::Status FillDimensions(const json& list, const std::string& path, bool with
       if (!unit.ok()) return unit.status();
       dim->set_unit(*unit);
     }
-    if (!with_limits) continue;
+    if (!with_limits) {
+      // A state's optional "min" and "max": a stop it cannot pass (spec.state_limits).
+      if (!list[i].contains("min") && !list[i].contains("max")) continue;
+      v1::StateLimit* limit = spec->add_state_limits();
+      limit->set_index(static_cast<uint32_t>(i));
+      if (list[i].contains("min")) {
+        absl::StatusOr<double> lo = Number(list[i]["min"], at + ".min");
+        if (!lo.ok()) return lo.status();
+        limit->set_min(*lo);
+      }
+      if (list[i].contains("max")) {
+        absl::StatusOr<double> hi = Number(list[i]["max"], at + ".max");
+        if (!hi.ok()) return hi.status();
+        if (limit->has_min() && !(*hi >= limit->min())) {
+          return Bad(at + ".max", absl::StrFormat("%g is below min %g", *hi, limit->min()));
+        }
+        limit->set_max(*hi);
+      }
+      continue;
+    }
     if (!list[i].contains("min") || !list[i].contains("max")) {
       return Bad(at, "an action needs \"min\" and \"max\" (its limits, in its unit)");
     }

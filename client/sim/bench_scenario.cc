@@ -44,6 +44,8 @@ class BenchScenario final : public Scenario {
   }
   std::vector<Dim> action_dims() const override { return {{"carriage_velocity_command", "m/s"}}; }
   std::vector<ActionRange> action_ranges() const override { return {{-1.2, 1.2, 0.3}}; }
+  // The carriage's travel (the joint's range in bench.xml).
+  std::vector<StateRange> state_ranges() const override { return {{0, 0.0, 0.65}}; }
   double control_period_s() const override { return kPhysicsSteps * world_->model()->opt.timestep; }
   int episode_steps() const override { return 160; }
   // 1.5 s: from the start, the carriage needs about 0.9 s to carry the puck to the end of its

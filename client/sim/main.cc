@@ -63,6 +63,9 @@ ABSL_FLAG(bool, train_each_episode, false,
           "After each episode, wait for a training round on everything sent so far, and train at "
           "no other time (benchmarks: a run is repeatable for its seed; --min_transitions and "
           "--train_every are then not used).");
+ABSL_FLAG(bool, state_limits, true,
+          "Tell the server the robot's travel stops (spec.state_limits), so plans hold predicted "
+          "states inside them.");
 ABSL_FLAG(std::string, report, "", "Append one JSON line per episode to this file.");
 ABSL_FLAG(int, min_transitions, 200, "Transitions before the first model (at registration).");
 ABSL_FLAG(int, train_every, 500, "Retrain after this many new transitions (at registration).");
@@ -75,6 +78,7 @@ ABSL_FLAG(int, evaluation_episodes, 1, "Evaluation episodes in each evaluation r
 namespace {
 
 using foray::sim::Scenario;
+using foray::sim::StateRange;
 namespace v1 = foray::v1;
 
 constexpr char kCaution[] =
@@ -117,6 +121,14 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
     limit->set_min(r.min);
     limit->set_max(r.max);
     limit->set_max_step(r.max_step);
+  }
+  if (absl::GetFlag(FLAGS_state_limits)) {
+    for (const StateRange& r : s.state_ranges()) {
+      v1::StateLimit* limit = spec.add_state_limits();
+      limit->set_index(r.index);
+      if (std::isfinite(r.min)) limit->set_min(r.min);
+      if (std::isfinite(r.max)) limit->set_max(r.max);
+    }
   }
   spec.set_control_period_s(s.control_period_s());
   spec.mutable_model()->add_hidden_widths(64);

@@ -33,6 +33,8 @@ class GantryScenario final : public Scenario {
   }
   std::vector<Dim> action_dims() const override { return {{"cart_force", "N"}}; }
   std::vector<ActionRange> action_ranges() const override { return {{-10.0, 10.0, 4.0}}; }
+  // The rail's end stops, which stop the cart dead (Step).
+  std::vector<StateRange> state_ranges() const override { return {{0, -kRailEnd, kRailEnd}}; }
   double control_period_s() const override { return 0.05; }
   int episode_steps() const override { return 100; }
   std::vector<int> coverage_indices() const override { return {0, 2}; }
@@ -95,6 +97,7 @@ class ArmScenario final : public Scenario {
   }
   double control_period_s() const override { return 0.05; }
   int episode_steps() const override { return 100; }
+  // No state ranges: the joint limits are springs (ArmParams) that a fast swing overruns.
   std::vector<int> coverage_indices() const override { return {0, 1}; }
   std::vector<double> coverage_lower() const override { return {params_.q1_min, params_.q2_min}; }
   std::vector<double> coverage_upper() const override { return {params_.q1_max, params_.q2_max}; }

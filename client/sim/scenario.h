@@ -27,6 +27,12 @@ struct ActionRange {
   double min, max, max_step;  // action units; max_step per control period, 0: none
 };
 
+// A range a state dimension cannot leave (a hard travel stop), in the dimension's unit.
+struct StateRange {
+  int index;
+  double min, max;
+};
+
 class Scenario {
  public:
   virtual ~Scenario() = default;
@@ -39,6 +45,9 @@ class Scenario {
   // Planning horizon in control steps: long enough to see an action's consequence on the
   // reward (the robot's own time scale, derived from its physics, not from planner results).
   virtual int plan_horizon() const { return 15; }
+  // The hard stops of the robot's own travel, as a lab would put them in the spec (empty: none
+  // guaranteed; soft limits that the robot can be pushed past are not listed).
+  virtual std::vector<StateRange> state_ranges() const { return {}; }
   // Two state indices for the coverage map, and their ranges.
   virtual std::vector<int> coverage_indices() const = 0;
   virtual std::vector<double> coverage_lower() const = 0;

@@ -33,6 +33,7 @@ namespace {
 
 constexpr double kGoalX = 0.15, kGoalY = 0.15, kGoalRadius = 0.05, kAtRest = 0.02;  // m, m/s
 constexpr double kEdge = 0.25;                                                      // m
+constexpr double kTravel = 0.28;        // m: the stage's travel from the centre, each axis
 constexpr double kStageStartX = -0.20;  // m: the stage_x body's position in the model
 constexpr double kPuckStartX = -0.05, kPuckJitter = 0.03;  // m
 constexpr double kSpeed = 0.8, kSpeedStep = 0.2;           // m/s, m/s per period
@@ -64,6 +65,10 @@ class TableScenario final : public Scenario {
   }
   std::vector<ActionRange> action_ranges() const override {
     return {{-kSpeed, kSpeed, kSpeedStep}, {-kSpeed, kSpeed, kSpeedStep}};
+  }
+  // The stage's travel on each axis (the joints' ranges in table.xml).
+  std::vector<StateRange> state_ranges() const override {
+    return {{0, -kTravel, kTravel}, {1, -kTravel, kTravel}};
   }
   double control_period_s() const override { return kPhysicsSteps * world_->model()->opt.timestep; }
   int episode_steps() const override { return 160; }

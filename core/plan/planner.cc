@@ -36,6 +36,9 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& re
   const PlanContext& context = request.context;
   if (absl::Status s = options.Validate(); !s.ok()) return s;
   if (absl::Status s = objective.Validate(model.state_dim(), model.action_dim()); !s.ok()) return s;
+  if (absl::Status s = options.rollout.state_bounds.Validate(model.state_dim()); !s.ok()) {
+    return s;
+  }
   if (limits.dim() != model.action_dim()) {
     return absl::InvalidArgumentError(absl::StrFormat(
         "limits have %d action values, the model has %d", limits.dim(), model.action_dim()));

@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <chrono>
 #include <cmath>
+#include <limits>
 
 #include "absl/strings/str_format.h"
 #include "core/util/random.h"
@@ -99,6 +100,25 @@ void LinearRolloutModel::Evaluate(const float* states, const float* actions, int
   delta.rowwise() += c_.transpose();
 }
 
+absl::Status StateBounds::Validate(int state_dim) const {
+  if (!given()) return absl::OkStatus();
+  if (lower.size() != state_dim || upper.size() != state_dim) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("state bounds have %d lower and %d upper values, the state has %d",
+                        lower.size(), upper.size(), state_dim));
+  }
+  for (int k = 0; k < state_dim; ++k) {
+    const float lo = lower[k], hi = upper[k];
+    if (std::isnan(lo) || std::isnan(hi) || lo == std::numeric_limits<float>::infinity() ||
+        hi == -std::numeric_limits<float>::infinity() || !(lo <= hi)) {
+      return absl::InvalidArgumentError(absl::StrFormat(
+          "state bound %d is [%g, %g]; needs lower <= upper, each finite or unbounded on its side",
+          k, lo, hi));
+    }
+  }
+  return absl::OkStatus();
+}
+
 absl::Status RolloutOptions::Validate() const {
   if (horizon < 1 || horizon > CemOptions::kMaxHorizon) {
     return absl::InvalidArgumentError(
@@ -125,6 +145,16 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
   const std::ptrdiff_t seq_stride = static_cast<std::ptrdiff_t>(horizon) * ad;
   const bool learned_reward = objective.known_reward.kind == explore::KnownReward::Kind::kLearned;
   const bool want_information = objective.information_weight != 0.0 || trace != nullptr;
+  const StateBounds& bounds = options.state_bounds;
+  FORAY_CHECK(bounds.Validate(sd).ok(), "ScoreSequences: state bounds do not fit the model");
+  std::vector<int> bounded_dims;  // the dimensions with a finite bound on either side
+  if (bounds.given()) {
+    for (int k = 0; k < sd; ++k) {
+      if (std::isfinite(bounds.lower[k]) || std::isfinite(bounds.upper[k]))
+        bounded_dims.push_back(k);
+    }
+  }
+  const bool bounded = !bounded_dims.empty();
 
   // Draws shared by every candidate: member choice and standard-normal noise per (t, p).
   Rng rng(seed);
@@ -197,6 +227,22 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
       stats->model_seconds += SecondsSince(start);
       stats->model_flops += model.FlopsPerMemberRow() * evaluated * nb;
     }
+    if (bounded) {
+      // Every member's mean next state held inside the bounds (in model units: robot next
+      // state = s + mean * scale + offset), where the information gain and the sampling see it.
+      for (int b = 0; b < nb; ++b) {
+        for (int e = 0; e < evaluated; ++e) {
+          const float* s = &ws->states[static_cast<size_t>(shared ? e * particles : e) * sd];
+          float* mu = pred.mean.data() + (static_cast<std::ptrdiff_t>(b) * evaluated + e) * od;
+          for (int k : bounded_dims) {
+            const float base = s[k] + pred.offset[k];
+            const float next = base + mu[k] * pred.scale[k];
+            const float held = std::clamp(next, bounds.lower[k], bounds.upper[k]);
+            if (held != next) mu[k] = (held - base) / pred.scale[k];
+          }
+        }
+      }
+    }
     if (want_information) {
       start = Clock::now();
       explore::Information(objective.estimator,
@@ -222,6 +268,7 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
       for (int k = 0; k < sd; ++k) {
         s[k] += (mu[k] + std::exp(0.5f * lv[k]) * eps[k]) * pred.scale[k] + pred.offset[k];
       }
+      for (int k : bounded_dims) s[k] = std::clamp(s[k], bounds.lower[k], bounds.upper[k]);
       if (learned_reward) ws->reward[r] = mu[sd] * pred.scale[sd] + pred.offset[sd];
       if (!known_termination && !pred.term_logit.empty()) {
         const float z = pred.term_logit[static_cast<size_t>(m) * evaluated + source];

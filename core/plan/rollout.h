@@ -149,11 +149,27 @@ class LinearRolloutModel final : public RolloutModel {
   const Eigen::VectorXf c_;
 };
 
+// Ranges the robot's state cannot leave (travel stops, joint limits), per state dimension, in
+// robot units; -inf or +inf where a side is unbounded. A rollout holds every member's predicted
+// mean next state inside them before it computes the information gain, and every sampled
+// particle state after: a predicted observation past a stop is one at the stop. Without them a
+// model extrapolates past a stop it has seen only from inside (it cannot know that the motion
+// ends there), its members disagree about how far, and the information gain pays the planner
+// to push against the stop; held there, members that differ only beyond it agree.
+struct StateBounds {
+  Eigen::VectorXf lower, upper;  // both empty (no bounds) or state_dim values each
+
+  bool given() const { return lower.size() > 0 || upper.size() > 0; }
+  // Sizes state_dim, no NaN, lower <= upper, and every bound finite or the infinity of its side.
+  absl::Status Validate(int state_dim) const;
+};
+
 // The rollouts' settings. Validate() refuses a value outside the range given beside it.
 struct RolloutOptions {
   int horizon = 20;    // steps; 1..CemOptions::kMaxHorizon
   int particles = 5;   // particles per candidate; 1..kMaxParticles
   Propagation propagation = Propagation::kTsInf;  // kTsInf or kTs1
+  StateBounds state_bounds;  // none by default; checked against the model's state by Plan
   static constexpr int kMaxParticles = 1000;
   absl::Status Validate() const;
 };

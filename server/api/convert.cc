@@ -34,6 +34,46 @@ absl::Status CheckVector(const google::protobuf::RepeatedField<double>& values, 
   return absl::OkStatus();
 }
 
+// spec.state_limits as the rollouts' bounds (none when the list is empty), rounded outward to
+// float so that every state within the spec's (double) limits stays untouched.
+absl::Status StateBoundsFromSpec(const v1::RobotSpec& spec, plan::StateBounds* bounds) {
+  if (spec.state_limits().empty()) return absl::OkStatus();
+  const int dim = spec.state_size();
+  constexpr float kInf = std::numeric_limits<float>::infinity();
+  bounds->lower = Eigen::VectorXf::Constant(dim, -kInf);
+  bounds->upper = Eigen::VectorXf::Constant(dim, kInf);
+  std::vector<int> given_at(dim, -1);
+  for (int i = 0; i < spec.state_limits_size(); ++i) {
+    const v1::StateLimit& l = spec.state_limits(i);
+    if (static_cast<int>(l.index()) >= dim) {
+      return Invalid(absl::StrFormat("spec.state_limits[%d].index is %d, the state has %d values",
+                                     i, l.index(), dim));
+    }
+    const int k = static_cast<int>(l.index());
+    if (given_at[k] >= 0) {
+      return Invalid(absl::StrFormat(
+          "spec.state_limits[%d] and [%d] both limit state %d (%s); give one entry per dimension",
+          given_at[k], i, k, spec.state(k).label()));
+    }
+    given_at[k] = i;
+    if (!l.has_min() && !l.has_max()) {
+      return Invalid(absl::StrFormat("spec.state_limits[%d] (state %d, %s) has neither min nor max",
+                                     i, k, spec.state(k).label()));
+    }
+    if ((l.has_min() && !std::isfinite(l.min())) || (l.has_max() && !std::isfinite(l.max())) ||
+        (l.has_min() && l.has_max() && !(l.min() <= l.max()))) {
+      return Invalid(absl::StrFormat(
+          "spec.state_limits[%d] (state %d, %s) has min %s and max %s; each given one must be "
+          "finite, with min <= max",
+          i, k, spec.state(k).label(), l.has_min() ? absl::StrFormat("%g", l.min()) : "(none)",
+          l.has_max() ? absl::StrFormat("%g", l.max()) : "(none)"));
+    }
+    if (l.has_min()) bounds->lower[k] = FloatAtMost(l.min());
+    if (l.has_max()) bounds->upper[k] = FloatAtLeast(l.max());
+  }
+  return absl::OkStatus();
+}
+
 }  // namespace
 
 float FloatAtLeast(double x) {
@@ -243,6 +283,9 @@ absl::StatusOr<robot::RobotConfig> ConfigFromSpec(const v1::RobotSpec& spec) {
 
   if (absl::Status st = ApplyPlannerSettings(spec.planner(), &c.planner); !st.ok()) {
     return Invalid(absl::StrCat("spec.", st.message()));
+  }
+  if (absl::Status st = StateBoundsFromSpec(spec, &c.planner.rollout.state_bounds); !st.ok()) {
+    return st;
   }
   if (absl::Status st = ApplyObjectiveSettings(spec.objective(), c.state_dim, c.action_dim,
                                                &c.objective);

@@ -118,6 +118,12 @@ def test_spec_files_read_the_same_in_python_and_in_the_cli(tmp_path):
     spec = load_spec(os.path.join(REPO, "deploy", "examples", "crane.json"))
     assert spec.name == "crane-1" and len(spec.action_limits) == len(spec.action) == 1
     assert spec.model.activation == spec.model.ACTIVATION_SILU
+    # The rail's stops: state 0's "min" and "max" (spec.state_limits).
+    assert [(l.index, l.min, l.max) for l in spec.state_limits] == [(0, 0.0, 2.0)]
+    with pytest.raises(ValueError, match=r"state\[0\].max: 0 is below min 1"):
+        spec_from_dict(dict(SPEC, state=[{"label": "x", "min": 1, "max": 0}]))
+    with pytest.raises(ValueError, match=r"state\[0\].max_step: unknown key"):
+        spec_from_dict(dict(SPEC, state=[{"label": "x", "max_step": 1}]))
 
 
 def test_robot_loop_example_runs(forayd, tmp_path):  # noqa: F811

@@ -55,8 +55,16 @@ def spec_from_dict(d):
     out = {"name": d["name"], "control_period_s": d["control_period_s"],
            **({"success_return": d["success_return"]} if "success_return" in d else {}),
            **({"seed": _seed(d["seed"])} if "seed" in d else {}),
-           "state": [{k: v for k, v in s.items()} for s in d["state"]],
-           "action": [], "action_limits": []}
+           "state": [], "state_limits": [], "action": [], "action_limits": []}
+    for i, s in enumerate(d["state"]):
+        extra = set(s) - {"label", "unit", "min", "max"}
+        if extra:
+            raise ValueError(f"state[{i}].{sorted(extra)[0]}: unknown key")
+        out["state"].append({k: s[k] for k in ("label", "unit") if k in s})
+        if "min" in s or "max" in s:  # a stop the state cannot pass (spec.state_limits)
+            if "min" in s and "max" in s and not s["max"] >= s["min"]:
+                raise ValueError(f"state[{i}].max: {s['max']} is below min {s['min']}")
+            out["state_limits"].append({"index": i, **{k: s[k] for k in ("min", "max") if k in s}})
     for i, a in enumerate(d["action"]):
         extra = set(a) - {"label", "unit", "min", "max", "max_step"}
         if extra:

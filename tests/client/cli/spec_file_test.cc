@@ -13,7 +13,7 @@ namespace {
 
 constexpr char kFull[] = R"({
   "name": "crane-2", "control_period_s": 0.05,
-  "state": [{"label": "x", "unit": "m"}, {"label": "swing", "unit": "rad"}],
+  "state": [{"label": "x", "unit": "m"}, {"label": "swing", "unit": "rad", "max": 1.2}],
   "action": [{"label": "force", "unit": "N", "min": -20, "max": 20, "max_step": 4}],
   "model": {"ensemble_size": 7, "hidden_widths": [128, 64], "activation": "tanh"},
   "training": {"min_transitions": 300, "no_train_at_episode_end": true, "learning_rate": 0.002},
@@ -33,6 +33,10 @@ TEST(SpecFileTest, EveryPartReachesTheSpec) {
   EXPECT_EQ(spec->name(), "crane-2");
   ASSERT_EQ(spec->state_size(), 2);
   EXPECT_EQ(spec->state(1).unit(), "rad");
+  ASSERT_EQ(spec->state_limits_size(), 1);  // only the state that has one
+  EXPECT_EQ(spec->state_limits(0).index(), 1u);
+  EXPECT_FALSE(spec->state_limits(0).has_min());
+  EXPECT_EQ(spec->state_limits(0).max(), 1.2);
   ASSERT_EQ(spec->action_limits_size(), 1);
   EXPECT_EQ(spec->action_limits(0).min(), -20);
   EXPECT_EQ(spec->action_limits(0).max_step(), 4);
@@ -88,6 +92,12 @@ TEST(SpecFileTest, MistakesAreNamedWithTheirValues) {
                 "action: [] must be a non-empty list");
   ExpectRefused(R"({"name": "c", "control_period_s": 1, "state": [{"label": "x"}], "action": [{"label": "f"}]})",
                 "action[0]: an action needs \"min\" and \"max\"");
+  ExpectRefused(R"({"name": "c", "control_period_s": 1, "state": [{"label": "x", "min": 1, "max": 0}],
+                 "action": [{"label": "f", "min": -1, "max": 1}]})",
+                "state[0].max: 0 is below min 1");
+  ExpectRefused(R"({"name": "c", "control_period_s": 1, "state": [{"label": "x", "max_step": 1}],
+                 "action": [{"label": "f", "min": -1, "max": 1}]})",
+                "state[0].max_step: unknown key");
   ExpectRefused(R"({"control_period_s": 1})", "name: required key is missing");
   ExpectRefused("[1, 2]", "is not an object");
   ExpectRefused("{\"name\": ", "not valid JSON");

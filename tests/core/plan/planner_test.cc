@@ -372,6 +372,16 @@ TEST(PlannerTest, BadInputNamesTheFieldAndValues) {
                       .options = bad});
   EXPECT_NE(plan.status().message().find("particles is 0"), std::string::npos);
 
+  bad = options;
+  bad.rollout.state_bounds.lower = Eigen::VectorXf::Zero(3);
+  bad.rollout.state_bounds.upper = Eigen::VectorXf::Ones(3);
+  plan = Plan(model, {.state = Eigen::VectorXf::Zero(2),
+                      .limits = UnitHalfBox(),
+                      .objective = objective,
+                      .options = bad});
+  EXPECT_NE(plan.status().message().find("3 lower and 3 upper values, the state has 2"),
+            std::string::npos);
+
   explore::ObjectiveOptions wrong_target;
   wrong_target.known_reward.kind = explore::KnownReward::Kind::kQuadratic;
   wrong_target.known_reward.target = {1.0};

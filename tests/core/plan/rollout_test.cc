@@ -4,6 +4,7 @@
 #include "core/plan/rollout.h"
 
 #include <cmath>
+#include <utility>
 #include <vector>
 
 #include "core/model/ensemble.h"
@@ -249,6 +250,79 @@ TEST(RolloutTest, ObservationNoiseFloorsTheVariancesOfTheInformationTerm) {
   EXPECT_NEAR(score, 2 * (std::log(2.0) - std::log(1.0 + std::exp(-2.0))), 1e-5);
   objective.observation_noise = 1.5;
   EXPECT_FALSE(objective.Validate(1, 1).ok());
+}
+
+TEST(RolloutTest, StateBoundsHoldEveryParticleAtTheStop) {
+  // s' = s + a (exact) against a stop at 1.0: the reference is the stop's definition,
+  // s_{t+1} = min(s_t + a_t, 1.0), stepped by hand; the lower side is unbounded.
+  const LinearRolloutModel model(Eigen::MatrixXf::Identity(1, 1), Eigen::MatrixXf::Ones(1, 1),
+                                 Eigen::VectorXf::Zero(1));
+  explore::ObjectiveOptions objective = RewardOnly();
+  RolloutOptions options;
+  options.horizon = 5;
+  options.particles = 3;
+  options.state_bounds.lower = Eigen::VectorXf::Constant(1, -INFINITY);
+  options.state_bounds.upper = Eigen::VectorXf::Constant(1, 1.0f);
+  const float initial = 0.2f;
+  const std::vector<float> sequence = {0.5f, 0.5f, 0.5f, -0.5f, -2.0f};
+  float score = 0.0f;
+  RolloutWorkspace ws;
+  RolloutTrace trace;
+  ScoreSequences(model, objective, options, &initial, sequence.data(), 1, 3, &score, &ws, &trace);
+  double s = initial;
+  for (int t = 0; t < options.horizon; ++t) {
+    s = std::min(s + sequence[t], 1.0);
+    EXPECT_NEAR(trace.state_mean(t, 0), s, 1e-6) << "step " << t;
+  }
+  EXPECT_NEAR(trace.state_mean(4, 0), -1.5, 1e-6);  // unbounded below
+}
+
+TEST(RolloutTest, MembersThatDifferOnlyPastAStopAgreeAtIt) {
+  // Two members predicting the delta a - 1 and a + 1 with unit variance, one step from 0, with
+  // a stop at 0 above. Pairwise KL bound (Kolchinsky & Tracey 2017) for two equal-variance
+  // Gaussians whose means differ by d: I = ln 2 - ln(1 + exp(-d^2 / 2)).
+  //   a = +2: both predict past the stop (1 and 3), held at 0: d = 0, I = 0;
+  //   a = 0: one inside (-1), one past (+1, held at 0): d = 1;
+  //   a = -2: both inside (-3, -1): d = 2, as without the stop.
+  const OffsetMembersModel model(1, 1, {-1.0f, 1.0f}, 1.0f);
+  explore::ObjectiveOptions objective = PairwiseKlInformationOnly();
+  objective.observation_noise = 0.0;
+  RolloutOptions options;
+  options.horizon = 1;
+  options.particles = 2;
+  const float initial = 0.0f;
+  auto bound = [](double d) { return std::log(2.0) - std::log(1.0 + std::exp(-d * d / 2.0)); };
+  RolloutWorkspace ws;
+  for (const auto& [action, d] :
+       std::vector<std::pair<float, double>>{{2.0f, 0.0}, {0.0f, 1.0}, {-2.0f, 2.0}}) {
+    options.state_bounds.lower = Eigen::VectorXf::Constant(1, -INFINITY);
+    options.state_bounds.upper = Eigen::VectorXf::Constant(1, 0.0f);
+    float held = 0.0f, free = 0.0f;
+    ScoreSequences(model, objective, options, &initial, &action, 1, 3, &held, &ws);
+    EXPECT_NEAR(held, bound(d), 1e-6) << "action " << action;
+    options.state_bounds = StateBounds();
+    ScoreSequences(model, objective, options, &initial, &action, 1, 3, &free, &ws);
+    EXPECT_NEAR(free, bound(2.0), 1e-6) << "action " << action;
+  }
+}
+
+TEST(RolloutTest, StateBoundsValidateNamesTheDimension) {
+  StateBounds bounds;
+  EXPECT_TRUE(bounds.Validate(3).ok());  // none given
+  bounds.lower = Eigen::VectorXf::Constant(2, -1.0f);
+  bounds.upper = Eigen::VectorXf::Constant(2, 1.0f);
+  EXPECT_NE(bounds.Validate(3).message().find("2 lower and 2 upper values, the state has 3"),
+            std::string::npos);
+  EXPECT_TRUE(bounds.Validate(2).ok());
+  bounds.lower[1] = 2.0f;
+  EXPECT_NE(bounds.Validate(2).message().find("state bound 1 is [2, 1]"), std::string::npos);
+  bounds.lower[1] = INFINITY;
+  bounds.upper[1] = INFINITY;
+  EXPECT_FALSE(bounds.Validate(2).ok());
+  bounds.lower[1] = NAN;
+  EXPECT_FALSE(bounds.Validate(2).ok());
+  bounds.lower[1] = -INFINITY;
+  EXPECT_TRUE(bounds.Validate(2).ok());
 }
 
 TEST(RolloutTest, EnsembleModelGivesPredictInRobotUnits) {

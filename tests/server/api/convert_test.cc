@@ -112,6 +112,28 @@ TEST(ConvertTest, ConfigFromSpecRefusesEachBadFieldByName) {
       {"coverage cells",
        [](v1::RobotSpec* s) { s->set_coverage_cells(201); },
        {"spec.coverage_cells", "201"}},
+      {"state limit index",
+       [](v1::RobotSpec* s) { s->add_state_limits()->set_index(2); },
+       {"spec.state_limits[0].index", "2", "2 values"}},
+      {"state limit twice",
+       [](v1::RobotSpec* s) {
+         s->add_state_limits()->set_min(0.0);
+         s->add_state_limits()->set_max(1.0);
+       },
+       {"spec.state_limits[0] and [1]", "state 0", "position"}},
+      {"state limit without a side",
+       [](v1::RobotSpec* s) { s->add_state_limits()->set_index(1); },
+       {"spec.state_limits[0]", "velocity", "neither min nor max"}},
+      {"state limit min > max",
+       [](v1::RobotSpec* s) {
+         v1::StateLimit* l = s->add_state_limits();
+         l->set_min(1.0);
+         l->set_max(-1.0);
+       },
+       {"spec.state_limits[0]", "min 1", "max -1"}},
+      {"state limit infinite",
+       [](v1::RobotSpec* s) { s->add_state_limits()->set_max(INFINITY); },
+       {"spec.state_limits[0]", "max inf"}},
   };
   for (const SpecCase& c : cases) {
     v1::RobotSpec spec = ValidSpec();
@@ -134,6 +156,30 @@ TEST(ConvertTest, ConfigFromSpecFillsTheDocumentedDefaultsAndRoundsLimitsInward)
   EXPECT_EQ(config->planner.cem.seed, 1u);  // documented in types.proto: absent means 1
   EXPECT_EQ(config->training.seed, 1u);
   EXPECT_EQ(config->training.nll_beta, 0.0);
+}
+
+TEST(ConvertTest, StateLimitsBecomeTheRolloutsBoundsRoundedOutward) {
+  v1::RobotSpec spec = ValidSpec();
+  absl::StatusOr<robot::RobotConfig> config = ConfigFromSpec(spec);
+  ASSERT_TRUE(config.ok()) << config.status();
+  EXPECT_FALSE(config->planner.rollout.state_bounds.given());  // none listed, none applied
+  v1::StateLimit* limit = spec.add_state_limits();
+  limit->set_index(0);
+  limit->set_min(-0.1);  // not a float: rounded down, so a state at -0.1 is inside
+  limit->set_max(0.3);   // rounded up
+  spec.add_state_limits()->set_index(1);
+  spec.mutable_state_limits(1)->set_max(2.0);
+  config = ConfigFromSpec(spec);
+  ASSERT_TRUE(config.ok()) << config.status();
+  const plan::StateBounds& bounds = config->planner.rollout.state_bounds;
+  ASSERT_EQ(bounds.lower.size(), 2);
+  ASSERT_EQ(bounds.upper.size(), 2);
+  EXPECT_LE(static_cast<double>(bounds.lower[0]), -0.1);
+  EXPECT_GT(static_cast<double>(bounds.lower[0]), -0.1 - 1e-7);
+  EXPECT_GE(static_cast<double>(bounds.upper[0]), 0.3);
+  EXPECT_EQ(bounds.lower[1], -INFINITY);  // the side not given is unbounded
+  EXPECT_EQ(bounds.upper[1], 2.0f);
+  EXPECT_TRUE(bounds.Validate(2).ok());
 }
 
 TEST(ConvertTest, TheSpecsSeedSeedsThePlansAndTheTraining) {
