@@ -430,7 +430,7 @@ typename EnsembleT<Scalar>::Matrix EnsembleT<Scalar>::NormalizedInput(
     const Matrix& states, const Matrix& actions) const {
   Matrix x(states.rows(), input_dim());
   x << states, actions;
-  return input_normalizer_.Apply(x);
+  return input_normalizer_.Apply(x).cwiseMax(Scalar(-kInputClip)).cwiseMin(Scalar(kInputClip));
 }
 
 template <typename Scalar>

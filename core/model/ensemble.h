@@ -2,7 +2,8 @@
 // A const ensemble may be evaluated from several threads at once; changing it is not
 // thread-safe (training works on its own copy and publishes the result).
 //
-// Member b maps a normalised input x = norm([state, action]) to a diagonal Gaussian over the
+// Member b maps a normalised input x = clip(norm([state, action]), +-kInputClip) to a diagonal
+// Gaussian over the
 // normalised target y = norm([next_state - state, reward]) (Chua et al. 2018, "Deep
 // Reinforcement Learning in a Handful of Trials using Probabilistic Dynamics Models"):
 //   h_0 = x,  h_l = act(h_{l-1} W_l + b_l)  for the hidden layers,
@@ -51,6 +52,15 @@ struct EnsembleOptions {
 template <typename Scalar>
 class EnsembleT {
  public:
+  // Normalised inputs are clipped to +-kInputClip standard deviations of the training data, in
+  // training and in every prediction. A dimension that barely varied in the data (an object at
+  // rest: a few distinct positions) has a tiny standard deviation, and a new value of it lands
+  // hundreds of them away; unclipped, the members extrapolate without bound there, and a
+  // rollout that feeds such predictions back grows to infinity within a horizon. Clipping
+  // observations at a multiple of their running standard deviation is common practice in
+  // reinforcement learning (10 is a usual choice); it bounds what a member can output.
+  static constexpr float kInputClip = 10.0f;
+
   // Matrices are column-major; a "row per sample" matrix has one sample per row.
   using Matrix = Eigen::Matrix<Scalar, Eigen::Dynamic, Eigen::Dynamic>;
   using Vector = Eigen::Matrix<Scalar, Eigen::Dynamic, 1>;

@@ -166,7 +166,10 @@ absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
     FORAY_RETURN_IF_ERROR(model.mutable_input_normalizer().Fit(train_in));
     FORAY_RETURN_IF_ERROR(model.mutable_output_normalizer().Fit(train_out));
   }
-  t->x_ = model.input_normalizer().Apply(inputs);
+  t->x_ = model.input_normalizer()
+              .Apply(inputs)
+              .cwiseMax(-Ensemble::kInputClip)
+              .cwiseMin(Ensemble::kInputClip);
   const Eigen::MatrixXf y = model.output_normalizer().Apply(targets);
   const std::vector<int>& eval_rows = holdout > 0 ? t->holdout_rows_ : t->train_rows_;
   const int n_eval = static_cast<int>(eval_rows.size());
@@ -389,6 +392,7 @@ TrainingReport EnsembleTrainer::Report() const {
   for (Eigen::Index k = 0; k < d; ++k) {
     r.within_1sigma.push_back((err.col(k) <= sigma.col(k)).cast<double>().mean());
     r.within_2sigma.push_back((err.col(k) <= 2.0 * sigma.col(k)).cast<double>().mean());
+    r.holdout_rmse.push_back(std::sqrt(err.col(k).square().mean()));
   }
   return r;
 }

@@ -108,6 +108,9 @@ struct TrainingReport {
   // ensemble's predicted 1-sigma and 2-sigma intervals (moment-matched mixture Gaussian).
   std::vector<double> within_1sigma;
   std::vector<double> within_2sigma;
+  // Per output dimension: root mean square error of the ensemble mean on the holdout,
+  // normalised units (what the model does not fit, of each dimension's spread).
+  std::vector<double> holdout_rmse;
 };
 
 class EnsembleTrainer {

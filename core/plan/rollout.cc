@@ -59,10 +59,13 @@ void EnsembleRolloutModel::Evaluate(const float* states, const float* actions, i
     const float* s = states + static_cast<std::ptrdiff_t>(r) * state_dim_;
     const float* a = actions + static_cast<std::ptrdiff_t>(r) * action_dim_;
     float* xr = x + static_cast<std::ptrdiff_t>(r) * in_dim;
-    for (int k = 0; k < state_dim_; ++k) xr[k] = (s[k] - input_mean_[k]) * input_inv_std_[k];
+    constexpr float kClip = model::Ensemble::kInputClip;
+    for (int k = 0; k < state_dim_; ++k) {
+      xr[k] = std::clamp((s[k] - input_mean_[k]) * input_inv_std_[k], -kClip, kClip);
+    }
     for (int j = 0; j < action_dim_; ++j) {
       const int k = state_dim_ + j;
-      xr[k] = (a[j] - input_mean_[k]) * input_inv_std_[k];
+      xr[k] = std::clamp((a[j] - input_mean_[k]) * input_inv_std_[k], -kClip, kClip);
     }
   }
   for (int b = 0; b < nb; ++b) {

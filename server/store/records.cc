@@ -27,6 +27,7 @@ v1::TrainingReport TrainingToWire(const TrainingRecord& training) {
   r.set_holdout_mse(report.holdout_mse);
   for (double v : report.within_1sigma) r.add_within_1sigma(v);
   for (double v : report.within_2sigma) r.add_within_2sigma(v);
+  for (double v : report.holdout_rmse) r.add_holdout_rmse(v);
   r.set_terminal_transitions(static_cast<uint64_t>(report.terminal_rows));
   r.set_terminal_weight(report.terminal_pos_weight);
   r.set_holdout_termination_bce(report.holdout_termination_bce);
@@ -45,6 +46,7 @@ TrainingRecord TrainingFromWire(const v1::TrainingReport& r) {
   out.report.holdout_mse = r.holdout_mse();
   out.report.within_1sigma.assign(r.within_1sigma().begin(), r.within_1sigma().end());
   out.report.within_2sigma.assign(r.within_2sigma().begin(), r.within_2sigma().end());
+  out.report.holdout_rmse.assign(r.holdout_rmse().begin(), r.holdout_rmse().end());
   out.report.terminal_rows = static_cast<int>(r.terminal_transitions());
   out.report.terminal_pos_weight = r.terminal_weight();
   out.report.holdout_termination_bce = r.holdout_termination_bce();

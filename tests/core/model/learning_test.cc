@@ -93,6 +93,12 @@ TEST_F(HeteroscedasticTest, ReportIsConsistent) {
   EXPECT_EQ(report_->train_rows + report_->holdout_rows, 6000);
   EXPECT_TRUE(std::isfinite(report_->holdout_nll));
   EXPECT_EQ(report_->within_1sigma.size(), 2u);
+  // Per dimension RMSE of the same errors: their squares average to the holdout MSE.
+  ASSERT_EQ(report_->holdout_rmse.size(), 2u);
+  const double mean_square = (report_->holdout_rmse[0] * report_->holdout_rmse[0] +
+                              report_->holdout_rmse[1] * report_->holdout_rmse[1]) /
+                             2.0;
+  EXPECT_NEAR(mean_square, report_->holdout_mse, 1e-9 + 1e-9 * report_->holdout_mse);
 }
 
 TEST(TrainerTest, DeterministicUnderSeed) {

@@ -325,6 +325,36 @@ TEST(RolloutTest, StateBoundsValidateNamesTheDimension) {
   EXPECT_TRUE(bounds.Validate(2).ok());
 }
 
+TEST(RolloutTest, InputsFarOutsideTheDataArePredictedAsAtTheClip) {
+  // State 0 barely varied in the data (std 1e-4 around 0.2): a new value 0.03 away is 300 of
+  // its standard deviations out. By the model's definition (ensemble.h) the input is clipped at
+  // kInputClip of them, so the prediction there equals the one at 0.2 + 10 * 1e-4, through
+  // Ensemble::Predict and through the rollouts' packed model alike, and stays finite.
+  auto e = model::Ensemble::Create(2, 1, model::EnsembleOptions{}, 5);
+  ASSERT_TRUE(e.ok()) << e.status();
+  e->mutable_input_normalizer().mutable_mean()[0] = 0.2f;
+  e->mutable_input_normalizer().mutable_std()[0] = 1e-4f;
+  Eigen::MatrixXf far(1, 2), at_clip(1, 2), action(1, 1);
+  far << 0.23f, 0.5f;
+  at_clip << 0.2f + model::Ensemble::kInputClip * 1e-4f, 0.5f;
+  action << 0.1f;
+  std::vector<Eigen::MatrixXf> far_mean, far_var, clip_mean, clip_var;
+  ASSERT_TRUE(e->Predict(far, action, &far_mean, &far_var).ok());
+  ASSERT_TRUE(e->Predict(at_clip, action, &clip_mean, &clip_var).ok());
+  const EnsembleRolloutModel rollout_model(*e);
+  MemberPredictions far_pred, clip_pred;
+  rollout_model.Evaluate(far.data(), action.data(), 1, &far_pred);
+  rollout_model.Evaluate(at_clip.data(), action.data(), 1, &clip_pred);
+  for (size_t b = 0; b < far_mean.size(); ++b) {
+    EXPECT_TRUE(far_mean[b].allFinite() && far_var[b].allFinite());
+    EXPECT_NEAR((far_mean[b] - clip_mean[b]).cwiseAbs().maxCoeff(), 0.0f, 1e-5f) << "member " << b;
+  }
+  for (size_t i = 0; i < far_pred.mean.size(); ++i) {
+    EXPECT_NEAR(far_pred.mean[i], clip_pred.mean[i], 1e-5f);
+    EXPECT_NEAR(far_pred.log_var[i], clip_pred.log_var[i], 1e-5f);
+  }
+}
+
 TEST(RolloutTest, EnsembleModelGivesPredictInRobotUnits) {
   // The rollout model's (mean * scale + offset, exp(log_var) * scale^2) must equal
   // Ensemble::Predict, the reference forward in robot units, for every member.
