@@ -10,7 +10,7 @@ template <typename Scalar>
 Normalizer<Scalar>::Normalizer(int dim) : mean_(Vector::Zero(dim)), std_(Vector::Ones(dim)) {}
 
 template <typename Scalar>
-absl::Status Normalizer<Scalar>::Fit(const Matrix& rows) {
+absl::Status Normalizer<Scalar>::Fit(const Matrix& rows, Scalar constant_std) {
   if (rows.cols() != dim()) {
     return absl::InvalidArgumentError(absl::StrFormat(
         "normaliser fit: data has %d columns, normaliser has %d", rows.cols(), dim()));
@@ -26,7 +26,7 @@ absl::Status Normalizer<Scalar>::Fit(const Matrix& rows) {
   for (int k = 0; k < dim(); ++k) {
     mean_(k) = static_cast<Scalar>(mean(k));
     const double s = std::sqrt(var(k));
-    std_(k) = s < static_cast<double>(kMinStd) ? Scalar(1) : static_cast<Scalar>(s);
+    std_(k) = s < static_cast<double>(kMinStd) ? constant_std : static_cast<Scalar>(s);
   }
   return absl::OkStatus();
 }

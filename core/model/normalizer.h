@@ -24,10 +24,12 @@ class Normalizer {
   explicit Normalizer(int dim);
 
   // Sets mean and std from `rows` (n, dim), a row per sample; std is the population standard
-  // deviation. A dimension whose std is below kMinStd (constant data) gets std 1, so that it
-  // passes through unscaled instead of blowing up. Returns InvalidArgument on a column-count
-  // mismatch or n == 0.
-  absl::Status Fit(const Matrix& rows);
+  // deviation. A dimension whose std is below kMinStd (constant data) gets `constant_std`
+  // instead: 1 (the default) passes an input through unscaled instead of blowing it up; for a
+  // predicted quantity, kMinStd keeps what is denormalised (mean * std + mean, variance *
+  // std^2) at the constant the data showed. Returns InvalidArgument on a column-count mismatch
+  // or n == 0.
+  absl::Status Fit(const Matrix& rows, Scalar constant_std = Scalar(1));
 
   // z = (x - mean) / std, row-wise. x: (n, dim).
   Matrix Apply(const Matrix& x) const;

@@ -164,7 +164,12 @@ absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
     const Eigen::MatrixXf train_out =
         GatherRows(targets, t->train_rows_.data(), static_cast<int>(t->train_rows_.size()));
     FORAY_RETURN_IF_ERROR(model.mutable_input_normalizer().Fit(train_in));
-    FORAY_RETURN_IF_ERROR(model.mutable_output_normalizer().Fit(train_out));
+    // A target that never changed in the data (an object that has never moved, a reward never
+    // earned) is predicted as that constant, with no spread: with a scale of 1 its members'
+    // untrained variances (about 1 in robot units: +-1 m per step for a puck at rest) made
+    // every rollout scatter it.
+    FORAY_RETURN_IF_ERROR(
+        model.mutable_output_normalizer().Fit(train_out, Normalizer<float>::kMinStd));
   }
   t->x_ = model.input_normalizer()
               .Apply(inputs)

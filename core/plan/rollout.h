@@ -81,13 +81,27 @@ struct MemberPredictions {
   // noise 0: StateDeltaSet(). The floored log-variances go to `scratch`, which the set borrows.
   explore::GaussianSet<float> ObservationSet(float noise, std::vector<float>* scratch) const {
     explore::GaussianSet<float> set = StateDeltaSet();
-    if (noise <= 0.0f) return set;
-    const float floor = 2.0f * std::log(noise);
+    // A dimension whose change never varied in the data has a scale of at most the normaliser's
+    // kMinStd (model::Normalizer): its predictions sit at that constant in robot units, and
+    // what its members say in model units is sub-resolution; it is measured as carrying no
+    // information (a variance far above any disagreement).
+    constexpr float kUnmeasured = 60.0f;
+    bool constant = false;
+    for (int k = 0; k < output_dim - 1; ++k) constant |= scale[k] <= kConstantScale;
+    if (noise <= 0.0f && !constant) return set;
+    std::vector<float> floor(output_dim, noise > 0.0f ? 2.0f * std::log(noise) : -INFINITY);
+    for (int k = 0; k < output_dim - 1; ++k) {
+      if (scale[k] <= kConstantScale) floor[k] = kUnmeasured;
+    }
     scratch->resize(log_var.size());
-    for (size_t i = 0; i < log_var.size(); ++i) (*scratch)[i] = std::max(log_var[i], floor);
+    for (size_t i = 0; i < log_var.size(); ++i) {
+      (*scratch)[i] = std::max(log_var[i], floor[i % output_dim]);
+    }
     set.log_var = scratch->data();
     return set;
   }
+  // Scales up to this are those of constant targets (model::Normalizer::kMinStd).
+  static constexpr float kConstantScale = model::Normalizer<float>::kMinStd;
 };
 
 // What a rollout needs from a dynamics-and-reward model.

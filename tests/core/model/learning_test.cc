@@ -101,6 +101,45 @@ TEST_F(HeteroscedasticTest, ReportIsConsistent) {
   EXPECT_NEAR(mean_square, report_->holdout_mse, 1e-9 + 1e-9 * report_->holdout_mse);
 }
 
+TEST(TrainerTest, ATargetThatNeverChangedIsPredictedUnchanged) {
+  // State 1 (an object at rest at 0.3) never moves in the data, and no reward is ever earned;
+  // state 0 moves by the action. Whatever the members make of it, the prediction of a
+  // quantity the data showed constant is that constant, without spread: delta 0 and variance
+  // below (1e-6)^2 * exp(max log-variance), also at inputs the data never had.
+  Rng rng(4);
+  TransitionData d;
+  const int n = 400;
+  d.states.resize(n, 2);
+  d.actions.resize(n, 1);
+  d.next_states.resize(n, 2);
+  d.rewards = Eigen::VectorXf::Zero(n);
+  for (int i = 0; i < n; ++i) {
+    d.states(i, 0) = static_cast<float>(rng.Uniform());
+    d.states(i, 1) = 0.3f;
+    d.actions(i, 0) = static_cast<float>(2.0 * rng.Uniform() - 1.0);
+    d.next_states(i, 0) = d.states(i, 0) + 0.1f * d.actions(i, 0);
+    d.next_states(i, 1) = 0.3f;
+  }
+  TrainingOptions options;
+  options.max_epochs = 5;
+  auto start = Ensemble::Create(2, 1, EnsembleOptions{}, 2);
+  ASSERT_TRUE(start.ok());
+  auto trained = TrainEnsemble(*start, d, options);
+  ASSERT_TRUE(trained.ok()) << trained.status();
+  Eigen::MatrixXf states(2, 2), actions(2, 1);
+  states << 0.5f, 0.3f, 3.0f, 0.25f;  // a state from the data's range, and one far outside it
+  actions << 0.2f, -1.0f;
+  std::vector<Eigen::MatrixXf> means, variances;
+  ASSERT_TRUE(trained->first.Predict(states, actions, &means, &variances).ok());
+  for (size_t b = 0; b < means.size(); ++b) {
+    for (int r = 0; r < 2; ++r) {
+      EXPECT_NEAR(means[b](r, 1), 0.0f, 1e-5f) << "member " << b << " row " << r;
+      EXPECT_LT(variances[b](r, 1), 1e-10f) << "member " << b << " row " << r;
+      EXPECT_NEAR(means[b](r, 2), 0.0f, 1e-5f) << "reward, member " << b;
+    }
+  }
+}
+
 TEST(TrainerTest, DeterministicUnderSeed) {
   TrainingOptions options;
   options.max_epochs = 3;

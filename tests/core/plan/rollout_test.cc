@@ -325,6 +325,34 @@ TEST(RolloutTest, StateBoundsValidateNamesTheDimension) {
   EXPECT_TRUE(bounds.Validate(2).ok());
 }
 
+TEST(RolloutTest, ADimensionThatNeverChangedCarriesNoInformation) {
+  // Two members, two state dimensions. Dimension 1 has unit scale and means 2 apart with unit
+  // variances: the pairwise KL bound (Kolchinsky & Tracey 2017) ln 2 - ln(1 + exp(-2)).
+  // Dimension 0 has the scale of a constant target (its change never varied in the data) and
+  // means 1 apart in model units, 1e-6 in robot units: it adds nothing.
+  MemberPredictions pred;
+  pred.members = 2;
+  pred.rows = 1;
+  pred.output_dim = 3;
+  pred.mean = {0.0f, -1.0f, 0.0f, 1.0f, 1.0f, 0.0f};
+  pred.log_var.assign(6, 0.0f);
+  pred.scale = Eigen::Vector3f(model::Normalizer<float>::kMinStd, 1.0f, 1.0f);
+  pred.offset = Eigen::Vector3f::Zero();
+  std::vector<float> scratch;
+  for (float noise : {0.0f, 0.05f}) {
+    float information = 0.0f;
+    explore::Information(explore::Estimator::kPairwiseKl, pred.ObservationSet(noise, &scratch),
+                         &information, 0, 1);
+    EXPECT_NEAR(information, std::log(2.0) - std::log(1.0 + std::exp(-2.0)), 1e-5)
+        << "noise " << noise;
+  }
+  pred.scale[0] = 1.0f;  // the same members on a dimension that varied: both count
+  float information = 0.0f;
+  explore::Information(explore::Estimator::kPairwiseKl, pred.ObservationSet(0.0f, &scratch),
+                       &information, 0, 1);
+  EXPECT_NEAR(information, std::log(2.0) - std::log(1.0 + std::exp(-2.5)), 1e-5);
+}
+
 TEST(RolloutTest, InputsFarOutsideTheDataArePredictedAsAtTheClip) {
   // State 0 barely varied in the data (std 1e-4 around 0.2): a new value 0.03 away is 300 of
   // its standard deviations out. By the model's definition (ensemble.h) the input is clipped at
