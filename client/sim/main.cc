@@ -10,6 +10,7 @@
 #include <cstdio>
 #include <filesystem>
 #include <fstream>
+#include <iterator>
 #include <memory>
 #include <mutex>
 #include <random>
@@ -69,6 +70,8 @@ ABSL_FLAG(bool, state_limits, true,
 ABSL_FLAG(int, max_epochs, 20, "Upper bound on epochs per training round (at registration).");
 ABSL_FLAG(int, patience, 0,
           "Epochs without holdout improvement before a round stops; 0: the server's default.");
+ABSL_FLAG(std::string, tls_ca, "",
+          "forayd's certificate (PEM): connect over TLS (forayd --tls_cert). Empty: plaintext.");
 ABSL_FLAG(std::string, report, "", "Append one JSON line per episode to this file.");
 ABSL_FLAG(int, min_transitions, 200, "Transitions before the first model (at registration).");
 ABSL_FLAG(int, train_every, 500, "Retrain after this many new transitions (at registration).");
@@ -103,6 +106,9 @@ void Say(const std::string& line) {
 constexpr int kPlanIterations = 3;
 // A transition count no robot reaches: training by count off.
 constexpr uint32_t kNeverByCount = 1000000000;
+// How every channel connects: plaintext, or TLS checked against --tls_ca (set once in main,
+// before the robots' threads start).
+std::shared_ptr<grpc::ChannelCredentials> g_credentials = grpc::InsecureChannelCredentials();
 
 // `seed`: the robot's own random streams (its plans and training).
 v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed) {
@@ -187,7 +193,7 @@ bool RunRobot(const std::string& kind, int index) {
   std::filesystem::create_directories(state_dir, ignored);
   bool registered = false;
   absl::StatusOr<foray::client::Identity> id = foray::client::RobotSession::LoadOrRegister(
-      (state_dir / (name + ".token")).string(), absl::GetFlag(FLAGS_address), nullptr,
+      (state_dir / (name + ".token")).string(), absl::GetFlag(FLAGS_address), g_credentials,
       absl::GetFlag(FLAGS_admin_token_file), SpecFor(sim, name, seed), &registered);
   if (!id.ok()) {
     Say(absl::StrFormat("%s: %s", name, id.status().message()));
@@ -202,6 +208,7 @@ bool RunRobot(const std::string& kind, int index) {
   options.identity = *id;
   options.safe_action.kind = foray::client::SafeAction::Kind::kLastAction;
   options.client_name = "foray-sim/0.1";
+  options.credentials = g_credentials;
   foray::client::RobotSession session(options);
   if (absl::Status s = session.WaitConnected(absl::Seconds(30)); !s.ok()) {
     Say(absl::StrFormat("%s: %s (delete %s to register anew)", name, s.message(),
@@ -229,8 +236,8 @@ bool RunRobot(const std::string& kind, int index) {
   const absl::Duration wait =
       realtime ? std::max(deadline, absl::Seconds(sim.control_period_s())) : deadline + absl::Seconds(10);
   std::mt19937_64 rng(absl::GetFlag(FLAGS_seed) * 7919 + index);
-  auto models = v1::Models::NewStub(
-      grpc::CreateChannel(absl::GetFlag(FLAGS_address), grpc::InsecureChannelCredentials()));
+  auto models =
+      v1::Models::NewStub(grpc::CreateChannel(absl::GetFlag(FLAGS_address), g_credentials));
 
   const int evaluate_every = absl::GetFlag(FLAGS_evaluate_every);
   const int round_size = std::max(1, absl::GetFlag(FLAGS_evaluation_episodes));
@@ -377,7 +384,7 @@ int main(int argc, char** argv) {
 
   const std::vector<std::string> kinds = absl::StrSplit(absl::GetFlag(FLAGS_robots), ',', absl::SkipEmpty());
   if (kinds.empty()) {
-    std::fprintf(stderr, "foray-sim: --robots is empty; name gantry, arm and/or bench\n");
+    std::fprintf(stderr, "foray-sim: --robots is empty; name gantry, arm, bench and/or table\n");
     return 2;
   }
   const std::string strategy = absl::GetFlag(FLAGS_strategy);
@@ -385,6 +392,18 @@ int main(int argc, char** argv) {
     std::fprintf(stderr, "foray-sim: --strategy is \"%s\"; use explore, reward, noise or random\n",
                  strategy.c_str());
     return 2;
+  }
+  if (const std::string ca_path = absl::GetFlag(FLAGS_tls_ca); !ca_path.empty()) {
+    std::ifstream in(ca_path, std::ios::binary);
+    std::string pem((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+    if (pem.find("-----BEGIN CERTIFICATE-----") == std::string::npos) {
+      std::fprintf(stderr, "foray-sim: --tls_ca \"%s\" %s\n", ca_path.c_str(),
+                   pem.empty() ? "cannot be read" : "holds no PEM certificate");
+      return 2;
+    }
+    grpc::SslCredentialsOptions tls;
+    tls.pem_root_certs = std::move(pem);
+    g_credentials = grpc::SslCredentials(tls);
   }
   for (const std::string& kind : kinds) {
     absl::StatusOr<std::unique_ptr<Scenario>> scenario = foray::sim::MakeScenario(kind, 0);

@@ -132,3 +132,27 @@ def test_table_robot_runs_and_records_its_eight_dimensional_states(forayd):  # n
                                               "puck_x", "puck_y", "puck_velocity_x", "puck_velocity_y"]
     assert [d.unit for d in table.state] == ["m"] * 2 + ["m/s"] * 2 + ["m"] * 2 + ["m/s"] * 2
     assert [(a.min, a.max) for a in table.action_limits] == [(-0.8, 0.8), (-0.8, 0.8)]
+    # The stage's travel stops, given as state limits (plans hold predicted states inside them).
+    assert [(l.index, l.min, l.max) for l in table.state_limits] == [(0, -0.28, 0.28), (1, -0.28, 0.28)]
+
+
+def test_sim_over_tls(tmp_path):
+    # A TLS-only forayd with an openssl certificate made at test time (as the CLI's TLS test):
+    # with --tls_ca foray-sim registers, streams and plans over TLS; without it the plaintext
+    # channel is refused; a CA file that is not PEM is a usage error naming the file.
+    from conftest import tls_forayd
+
+    server, cert = tls_forayd(tmp_path)
+    try:
+        secure = run_sim(server, f"--tls_ca={cert}", "--robots=gantry", "--episodes=1", "--steps=20",
+                         "--name_prefix=tls")
+        assert secure.returncode == 0, secure.stdout + secure.stderr
+        assert "tls-gantry-1 exploration episode 1" in secure.stdout
+        plain = run_sim(server, "--robots=gantry", "--episodes=1", "--steps=5", "--name_prefix=plain")
+        assert plain.returncode == 1, plain.stdout + plain.stderr
+        not_pem = tmp_path / "ca.txt"
+        not_pem.write_text("not a certificate\n")
+        bad = run_sim(server, f"--tls_ca={not_pem}", "--robots=gantry", "--episodes=1")
+        assert bad.returncode == 2 and str(not_pem) in bad.stderr and "no PEM" in bad.stderr
+    finally:
+        assert server.stop() == 0
