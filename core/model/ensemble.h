@@ -3,9 +3,9 @@
 // thread-safe (training works on its own copy and publishes the result).
 //
 // Member b maps a normalised input x = clip(norm([state, action]), +-kInputClip) to a diagonal
-// Gaussian over the
-// normalised target y = norm([next_state - state, reward]) (Chua et al. 2018, "Deep
-// Reinforcement Learning in a Handful of Trials using Probabilistic Dynamics Models"):
+// Gaussian over the normalised target y = norm([next_state - state, reward]) (Chua et al.
+// 2018, "Deep Reinforcement Learning in a Handful of Trials using Probabilistic Dynamics
+// Models"):
 //   h_0 = x,  h_l = act(h_{l-1} W_l + b_l)  for the hidden layers,
 //   [mu, raw, z] = h_L W_out + b_out,        mu and raw each (output_dim), z one column,
 //   lv = max_lv - softplus(max_lv - raw),  lv = min_lv + softplus(lv - min_lv),

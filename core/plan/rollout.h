@@ -78,24 +78,26 @@ struct MemberPredictions {
   // floor of max(var, noise^2), within a factor 2 of the sum var + noise^2). Without it, where
   // the data are deterministic (a part at rest, a joint at its stop) the predicted variances
   // collapse and sub-resolution disagreements between members look like nats of information.
-  // noise 0: StateDeltaSet(). The floored log-variances go to `scratch`, which the set borrows.
+  // A dimension whose change never varied in the data has a scale of at most the normaliser's
+  // kMinStd (model::Normalizer): its predictions sit at that constant in robot units, and what
+  // its members say in model units is sub-resolution; it is measured as carrying no information
+  // (a variance far above any disagreement). With noise 0 and no such dimension:
+  // StateDeltaSet(). The floored log-variances go to `scratch`, which the set borrows.
   explore::GaussianSet<float> ObservationSet(float noise, std::vector<float>* scratch) const {
     explore::GaussianSet<float> set = StateDeltaSet();
-    // A dimension whose change never varied in the data has a scale of at most the normaliser's
-    // kMinStd (model::Normalizer): its predictions sit at that constant in robot units, and
-    // what its members say in model units is sub-resolution; it is measured as carrying no
-    // information (a variance far above any disagreement).
     constexpr float kUnmeasured = 60.0f;
+    const int dim = output_dim - 1;  // the state dimensions; the reward's output is not read
     bool constant = false;
-    for (int k = 0; k < output_dim - 1; ++k) constant |= scale[k] <= kConstantScale;
+    for (int k = 0; k < dim; ++k) constant |= scale[k] <= kConstantScale;
     if (noise <= 0.0f && !constant) return set;
-    std::vector<float> floor(output_dim, noise > 0.0f ? 2.0f * std::log(noise) : -INFINITY);
-    for (int k = 0; k < output_dim - 1; ++k) {
-      if (scale[k] <= kConstantScale) floor[k] = kUnmeasured;
-    }
+    const float floor = noise > 0.0f ? 2.0f * std::log(noise) : -INFINITY;
     scratch->resize(log_var.size());
-    for (size_t i = 0; i < log_var.size(); ++i) {
-      (*scratch)[i] = std::max(log_var[i], floor[i % output_dim]);
+    for (size_t at = 0; at < log_var.size(); at += output_dim) {  // one member's row
+      for (int k = 0; k < dim; ++k) {
+        const float lowest = scale[k] <= kConstantScale ? kUnmeasured : floor;
+        (*scratch)[at + k] = std::max(log_var[at + k], lowest);
+      }
+      (*scratch)[at + dim] = log_var[at + dim];
     }
     set.log_var = scratch->data();
     return set;
