@@ -68,6 +68,8 @@ ABSL_FLAG(bool, state_limits, true,
           "Tell the server the robot's travel stops (spec.state_limits), so plans hold predicted "
           "states inside them.");
 ABSL_FLAG(int, max_epochs, 20, "Upper bound on epochs per training round (at registration).");
+ABSL_FLAG(int, min_epoch_steps, 0,
+          "Fewest minibatch steps in a training epoch (at registration); 0: the server's default.");
 ABSL_FLAG(int, patience, 0,
           "Epochs without holdout improvement before a round stops; 0: the server's default.");
 ABSL_FLAG(std::string, tls_ca, "",
@@ -155,6 +157,8 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
     spec.mutable_training()->set_every_n_transitions(absl::GetFlag(FLAGS_train_every));
   }
   spec.mutable_training()->set_max_epochs(absl::GetFlag(FLAGS_max_epochs));
+  if (absl::GetFlag(FLAGS_min_epoch_steps) > 0)
+    spec.mutable_training()->set_min_epoch_steps(absl::GetFlag(FLAGS_min_epoch_steps));
   if (absl::GetFlag(FLAGS_patience) > 0)
     spec.mutable_training()->set_patience(absl::GetFlag(FLAGS_patience));
   if (absl::GetFlag(FLAGS_nll_beta) != 0.0) {

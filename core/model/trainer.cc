@@ -83,6 +83,10 @@ absl::Status TrainingOptions::Validate() const {
     return absl::InvalidArgumentError(
         absl::StrFormat("max_epochs is %d, expected 1..10000", max_epochs));
   }
+  if (min_epoch_steps < 1 || min_epoch_steps > 100000) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("min_epoch_steps is %d, expected 1..100000", min_epoch_steps));
+  }
   if (!(learning_rate > 0 && learning_rate < 1)) {
     return absl::InvalidArgumentError(
         absl::StrFormat("learning_rate is %g, expected in (0, 1)", learning_rate));
@@ -159,17 +163,17 @@ absl::StatusOr<std::unique_ptr<EnsembleTrainer>> EnsembleTrainer::Create(
   std::sort(t->train_rows_.begin(), t->train_rows_.end());
 
   if (options.refit_normalizers) {
-    const Eigen::MatrixXf train_in =
-        GatherRows(inputs, t->train_rows_.data(), static_cast<int>(t->train_rows_.size()));
-    const Eigen::MatrixXf train_out =
-        GatherRows(targets, t->train_rows_.data(), static_cast<int>(t->train_rows_.size()));
-    FORAY_RETURN_IF_ERROR(model.mutable_input_normalizer().Fit(train_in));
+    // Fitted on every row, the holdout's too (their spreads only; no target is fitted): fitted
+    // on the training rows alone, a target whose first change lands in the holdout (the first
+    // reward, an object's first move) would be scored there at the constant's scale kMinStd,
+    // and the holdout error of that round would read as millions of nats.
+    FORAY_RETURN_IF_ERROR(model.mutable_input_normalizer().Fit(inputs));
     // A target that never changed in the data (an object that has never moved, a reward never
     // earned) is predicted as that constant, with no spread: with a scale of 1 its members'
     // untrained variances (about 1 in robot units: +-1 m per step for a puck at rest) made
     // every rollout scatter it.
     FORAY_RETURN_IF_ERROR(
-        model.mutable_output_normalizer().Fit(train_out, Normalizer<float>::kMinStd));
+        model.mutable_output_normalizer().Fit(targets, Normalizer<float>::kMinStd));
   }
   t->x_ = model.input_normalizer()
               .Apply(inputs)
@@ -301,14 +305,10 @@ void EnsembleTrainer::AdamStep() {
 bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
   if (done_) return true;
   const int members = current_.size();
-  for (std::vector<int>& rows : member_rows_) {
-    for (int i = static_cast<int>(rows.size()) - 1; i > 0; --i) {
-      std::swap(rows[i], rows[rng_.UniformInt(static_cast<uint64_t>(i) + 1)]);
-    }
-  }
   const int rows_per_member = static_cast<int>(member_rows_[0].size());
   const int batch = options_.batch_size;
-  const int steps = (rows_per_member + batch - 1) / batch;
+  const int pass_steps = (rows_per_member + batch - 1) / batch;
+  const int passes = std::max(1, (options_.min_epoch_steps + pass_steps - 1) / pass_steps);
   const float penalty = static_cast<float>(options_.log_var_bound_penalty);
   const Eigen::Index d = current_.output_dim();
   member_steps_.resize(members);
@@ -316,31 +316,39 @@ bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
                                    .pos_weight = pos_weight_,
                                    .nll_beta = options_.nll_beta};
   double nll_sum = 0;
-  for (int s = 0; s < steps; ++s) {
-    const int begin = s * batch;
-    const int count = std::min(batch, rows_per_member - begin);
-    // Members are independent within a step: each writes its own gradient column and parts.
-    RunTasks(parallel, members, [&](int b) {
-      MemberStep& m = member_steps_[b];
-      const int* rows = member_rows_[b].data() + begin;
-      GatherRowsInto(x_, rows, count, &m.x);
-      GatherRowsInto(y_, rows, count, &m.y);
-      m.grad_max.setZero(d);
-      m.grad_min.setZero(d);
-      m.nll = current_.MemberLossAndGradient(b, m.x, m.y, grad_.col(b).data(), &m.grad_max,
-                                             &m.grad_min, &m.workspace, loss, &m.bce);
-    });
-    grad_max_.setZero();
-    grad_min_.setZero();
-    for (const MemberStep& m : member_steps_) {
-      grad_max_ += m.grad_max;
-      grad_min_ += m.grad_min;
-      nll_sum += m.nll;
+  for (int pass = 0; pass < passes; ++pass) {
+    for (std::vector<int>& rows : member_rows_) {
+      for (int i = static_cast<int>(rows.size()) - 1; i > 0; --i) {
+        std::swap(rows[i], rows[rng_.UniformInt(static_cast<uint64_t>(i) + 1)]);
+      }
     }
-    grad_max_.array() += penalty;
-    grad_min_.array() -= penalty;
-    AdamStep();
+    for (int s = 0; s < pass_steps; ++s) {
+      const int begin = s * batch;
+      const int count = std::min(batch, rows_per_member - begin);
+      // Members are independent within a step: each writes its own gradient column and parts.
+      RunTasks(parallel, members, [&](int b) {
+        MemberStep& m = member_steps_[b];
+        const int* rows = member_rows_[b].data() + begin;
+        GatherRowsInto(x_, rows, count, &m.x);
+        GatherRowsInto(y_, rows, count, &m.y);
+        m.grad_max.setZero(d);
+        m.grad_min.setZero(d);
+        m.nll = current_.MemberLossAndGradient(b, m.x, m.y, grad_.col(b).data(), &m.grad_max,
+                                               &m.grad_min, &m.workspace, loss, &m.bce);
+      });
+      grad_max_.setZero();
+      grad_min_.setZero();
+      for (const MemberStep& m : member_steps_) {
+        grad_max_ += m.grad_max;
+        grad_min_ += m.grad_min;
+        nll_sum += m.nll;
+      }
+      grad_max_.array() += penalty;
+      grad_min_.array() -= penalty;
+      AdamStep();
+    }
   }
+  const int steps = passes * pass_steps;
   last_train_nll_ = nll_sum / (static_cast<double>(steps) * members);
   ++epoch_;
 

@@ -47,8 +47,14 @@ struct TransitionData {
 struct TrainingOptions {
   // Rows per minibatch, per member. Range 1..65536.
   int batch_size = 256;
-  // Epochs at most; an epoch is one pass over each member's bootstrap resample. Range 1..10000.
+  // Epochs at most; an epoch is one pass over each member's bootstrap resample, or as many
+  // whole passes as reach min_epoch_steps minibatch steps. Range 1..10000.
   int max_epochs = 50;
+  // Fewest minibatch steps (Adam updates) in an epoch: with few transitions a pass is a step or
+  // two, and max_epochs and patience would stop training after a few dozen updates. Passes
+  // over the resample repeat (each reshuffled) until this many steps have run; 1 is one pass.
+  // Range 1..100000.
+  int min_epoch_steps = 1;
   // AdamW step size and decoupled weight decay (Kingma & Ba 2015; Loshchilov & Hutter 2019),
   // per step. The decay applies to weights and biases, not to the log-variance bounds.
   double learning_rate = 1e-3;

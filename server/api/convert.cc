@@ -270,6 +270,7 @@ absl::StatusOr<robot::RobotConfig> ConfigFromSpec(const v1::RobotSpec& spec) {
   if (t.weight_decay() != 0) c.training.weight_decay = t.weight_decay();
   if (t.batch_size() != 0) c.training.batch_size = static_cast<int>(t.batch_size());
   if (t.max_epochs() != 0) c.training.max_epochs = static_cast<int>(t.max_epochs());
+  if (t.min_epoch_steps() != 0) c.training.min_epoch_steps = static_cast<int>(t.min_epoch_steps());
   if (t.holdout_fraction() != 0) c.training.holdout_fraction = t.holdout_fraction();
   if (t.patience() != 0) c.training.patience = static_cast<int>(t.patience());
   if (t.has_nll_beta()) c.training.nll_beta = t.nll_beta();

@@ -114,7 +114,7 @@ def run_one(args, scenario, strategy, seed):
                  f"--deadline_ms={args.deadline_ms}", f"--report={report_path}",
                  f"--evaluate_every={args.evaluate_every}", f"--evaluation_episodes={args.evaluations}",
                  f"--terminal_value={args.terminal_value}", f"--horizon={args.horizon}",
-                 f"--nll_beta={args.nll_beta}",
+                 f"--nll_beta={args.nll_beta}", f"--min_epoch_steps={args.min_epoch_steps}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
             if result.returncode != 0:
@@ -275,6 +275,9 @@ def main(argv=None):
                         help="the robots' objective value of a terminal state (foray-sim --terminal_value)")
     parser.add_argument("--nll_beta", type=float, default=0.0,
                         help="beta of the models' beta-NLL training loss (foray-sim --nll_beta); 0: plain NLL")
+    parser.add_argument("--min_epoch_steps", type=int, default=0,
+                        help="fewest minibatch steps in a training epoch (foray-sim --min_epoch_steps); "
+                             "0: the server's default")
     parser.add_argument("--no-plots", action="store_true")
     args = parser.parse_args(argv)
     os.makedirs(args.out, exist_ok=True)

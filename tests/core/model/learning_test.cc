@@ -140,6 +140,62 @@ TEST(TrainerTest, ATargetThatNeverChangedIsPredictedUnchanged) {
   }
 }
 
+// A target that changed in a single transition: wherever the holdout split puts that row, the
+// output scale is the standard deviation over all rows (numpy.std's population formula, ddof 0:
+// one change of c among n rows has std c sqrt(n - 1) / n), and the holdout NLL stays a few nats.
+// Fitted on the training rows alone, the seeds that hold the change out scored it at the
+// constant's scale 1e-6: an NLL around 1e11.
+TEST(TrainerTest, ATargetsFirstChangeInTheHoldoutIsScoredAtTheDataScale) {
+  const int n = 20;
+  TransitionData d;
+  d.states = Eigen::MatrixXf::Zero(n, 1);
+  d.actions.resize(n, 1);
+  d.next_states = Eigen::MatrixXf::Zero(n, 1);
+  d.rewards = Eigen::VectorXf::Zero(n);
+  for (int i = 0; i < n; ++i) d.actions(i, 0) = static_cast<float>(i) / n;
+  d.rewards[7] = 1.0f;  // the first reward
+  const double expected_scale = std::sqrt(n - 1.0) / n;
+  for (uint64_t seed = 1; seed <= 8; ++seed) {
+    TrainingOptions options;
+    options.holdout_fraction = 0.5;
+    options.max_epochs = 2;
+    options.seed = seed;
+    auto start = Ensemble::Create(1, 1, EnsembleOptions{}, 3);
+    auto trained = TrainEnsemble(*start, d, options);
+    ASSERT_TRUE(trained.ok()) << trained.status();
+    EXPECT_NEAR(trained->first.output_normalizer().std()[1], expected_scale, 1e-6)
+        << "seed " << seed;
+    EXPECT_LT(trained->second.holdout_nll, 20.0) << "seed " << seed;
+  }
+}
+
+// min_epoch_steps: with one minibatch per pass, an epoch of at least three steps is three
+// passes, each reshuffled: the same Adam updates as three epochs of one pass, bit for bit.
+TEST(TrainerTest, AnEpochRunsWholePassesUpToItsFewestSteps) {
+  const TransitionData data = Heteroscedastic(200, 6);
+  auto run = [&](int min_epoch_steps, int epochs) {
+    TrainingOptions options;
+    options.batch_size = 256;  // the whole resample in one step
+    options.min_epoch_steps = min_epoch_steps;
+    options.max_epochs = epochs;
+    options.patience = 100;
+    options.holdout_fraction = 0;  // early stopping on the training rows, which each step improves
+    auto start = Ensemble::Create(1, 1, EnsembleOptions{}, 1);
+    auto trained = TrainEnsemble(*start, data, options);
+    EXPECT_TRUE(trained.ok()) << trained.status();
+    return *std::move(trained);
+  };
+  const auto one_epoch = run(3, 1);
+  const auto three_epochs = run(1, 3);
+  EXPECT_EQ(one_epoch.second.best_epoch, 1);
+  EXPECT_EQ(three_epochs.second.best_epoch, 3);
+  EXPECT_EQ(one_epoch.first.params(), three_epochs.first.params());
+  EXPECT_NE(one_epoch.first.params(), run(1, 1).first.params());
+  TrainingOptions bad;
+  bad.min_epoch_steps = 0;
+  EXPECT_EQ(bad.Validate().message(), "min_epoch_steps is 0, expected 1..100000");
+}
+
 TEST(TrainerTest, DeterministicUnderSeed) {
   TrainingOptions options;
   options.max_epochs = 3;

@@ -74,6 +74,9 @@ TEST(ConvertTest, ConfigFromSpecRefusesEachBadFieldByName) {
       {"nll_beta",
        [](v1::RobotSpec* s) { s->mutable_training()->set_nll_beta(1.5); },
        {"spec.training: nll_beta", "1.5", "[0, 1]"}},
+      {"min_epoch_steps",
+       [](v1::RobotSpec* s) { s->mutable_training()->set_min_epoch_steps(200000); },
+       {"spec.training: min_epoch_steps", "200000", "1..100000"}},
       {"horizon",
        [](v1::RobotSpec* s) { s->mutable_planner()->set_horizon(501); },
        {"spec.planner: horizon", "501", "1..500"}},
@@ -156,6 +159,9 @@ TEST(ConvertTest, ConfigFromSpecFillsTheDocumentedDefaultsAndRoundsLimitsInward)
   EXPECT_EQ(config->planner.cem.seed, 1u);  // documented in types.proto: absent means 1
   EXPECT_EQ(config->training.seed, 1u);
   EXPECT_EQ(config->training.nll_beta, 0.0);
+  EXPECT_EQ(config->training.min_epoch_steps, 1);  // documented in types.proto
+  spec.mutable_training()->set_min_epoch_steps(20);
+  EXPECT_EQ(ConfigFromSpec(spec)->training.min_epoch_steps, 20);
 }
 
 TEST(ConvertTest, StateLimitsBecomeTheRolloutsBoundsRoundedOutward) {
