@@ -258,7 +258,8 @@ def plot(runs, out_dir):
         plt.close(fig)
 
 
-def main(argv=None):
+def parse_args(argv=None):
+    """The benchmark's settings; tests take their defaults from here."""
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--build", default="build")
     parser.add_argument("--out", default="build/bench/exploration")
@@ -279,7 +280,11 @@ def main(argv=None):
                         help="fewest minibatch steps in a training epoch (foray-sim --min_epoch_steps); "
                              "0: the server's default")
     parser.add_argument("--no-plots", action="store_true")
-    args = parser.parse_args(argv)
+    return parser.parse_args(argv)
+
+
+def main(argv=None):
+    args = parse_args(argv)
     os.makedirs(args.out, exist_ok=True)
     runs = []
     for scenario in args.scenarios.split(","):

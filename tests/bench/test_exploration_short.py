@@ -4,7 +4,6 @@ episodes), the exploring planner against the noise baseline. The exploring plann
 coverage must beat the noise baseline's, and it must discover the goal in at least as many seeds
 (the claims the full benchmark measures; see exploration_bench.py)."""
 
-import argparse
 import os
 import sys
 import tempfile
@@ -37,9 +36,9 @@ def test_a_seed_gives_the_same_run_twice():
     store the same transitions bit for bit, with plans never cut short by their deadline."""
     # The table robot: its first model used to be trained by the server while the first episode
     # went on (once 100 transitions had arrived), and this seed then gave two different runs.
-    args = argparse.Namespace(build=os.environ["FORAY_BUILD_DIR"], episodes=3, steps=0,
-                              deadline_ms=5000, evaluate_every=3, evaluations=1, terminal_value=-10.0,
-                              horizon=0, nll_beta=0.5)
+    args = exploration_bench.parse_args([
+        "--build", os.environ["FORAY_BUILD_DIR"], "--episodes", "3", "--deadline_ms", "5000",
+        "--evaluate_every", "3", "--evaluations", "1", "--terminal_value", "-10", "--nll_beta", "0.5"])
     first = exploration_bench.run_one(args, "table", "explore", 1)
     second = exploration_bench.run_one(args, "table", "explore", 1)
     assert first["plans_cut_short"] == 0 and second["plans_cut_short"] == 0
