@@ -159,9 +159,9 @@ TEST(ConvertTest, ConfigFromSpecFillsTheDocumentedDefaultsAndRoundsLimitsInward)
   EXPECT_EQ(config->planner.cem.seed, 1u);  // documented in types.proto: absent means 1
   EXPECT_EQ(config->training.seed, 1u);
   EXPECT_EQ(config->training.nll_beta, 0.0);
-  EXPECT_EQ(config->training.min_epoch_steps, 1);  // documented in types.proto
-  spec.mutable_training()->set_min_epoch_steps(20);
-  EXPECT_EQ(ConfigFromSpec(spec)->training.min_epoch_steps, 20);
+  EXPECT_EQ(config->training.min_epoch_steps, 20);  // documented in types.proto
+  spec.mutable_training()->set_min_epoch_steps(1);
+  EXPECT_EQ(ConfigFromSpec(spec)->training.min_epoch_steps, 1);
 }
 
 TEST(ConvertTest, StateLimitsBecomeTheRolloutsBoundsRoundedOutward) {
