@@ -29,6 +29,13 @@ def test_exploring_planner_covers_more_than_the_noise_baseline():
     assert all([k for k, _ in r["evaluation_rounds"]] == [2, 4] for r in explore), explore
     assert all(len(r["coverage"]) == 4 for r in explore) and all(len(r["coverage"]) == 6 for r in noise)
     assert all(not r["evaluation_rounds"] for r in noise)
+    # One evaluation episode a round: two outcomes per exploring run, none for the baseline.
+    for r in explore:
+        assert len(r["evaluation_outcomes"]) == 2 == len(r["evaluation_returns"]), r
+        assert set(r["evaluation_outcomes"]) <= {"goal reached", "lost", "time up"}, r
+        assert [rate for _, rate in r["evaluation_rounds"]] == [
+            1.0 if x > 0 else 0.0 for x in r["evaluation_returns"]], r
+    assert all(not r["evaluation_outcomes"] for r in noise)
 
 
 def test_a_seed_gives_the_same_run_twice():
