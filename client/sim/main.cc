@@ -45,7 +45,9 @@ ABSL_FLAG(uint64_t, seed, 1,
           "spec's seed) derive from it.");
 ABSL_FLAG(bool, realtime, false, "Pace each step to the control period instead of running flat out.");
 ABSL_FLAG(double, deadline_ms, 100.0, "Planning time per step, milliseconds.");
-ABSL_FLAG(double, nll_beta, 0.0, "beta of the models' beta-NLL training loss; 0: the plain NLL.");
+ABSL_FLAG(double, nll_beta, -1.0,
+          "beta of the models' beta-NLL training loss; 0: the plain NLL; negative: the server's "
+          "default (0.5).");
 ABSL_FLAG(int, horizon, 0,
           "Planning horizon in control steps (at registration); 0: the scenario's own (15 for "
           "gantry and arm, 30 for bench, whose strike takes 1.5 s to play out).");
@@ -161,7 +163,7 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
     spec.mutable_training()->set_min_epoch_steps(absl::GetFlag(FLAGS_min_epoch_steps));
   if (absl::GetFlag(FLAGS_patience) > 0)
     spec.mutable_training()->set_patience(absl::GetFlag(FLAGS_patience));
-  if (absl::GetFlag(FLAGS_nll_beta) != 0.0) {
+  if (absl::GetFlag(FLAGS_nll_beta) >= 0.0) {
     spec.mutable_training()->set_nll_beta(absl::GetFlag(FLAGS_nll_beta));
   }
   spec.mutable_planner()->set_horizon(absl::GetFlag(FLAGS_horizon) > 0 ? absl::GetFlag(FLAGS_horizon)

@@ -281,8 +281,9 @@ def parse_args(argv=None):
     parser.add_argument("--evaluations", type=int, default=2, help="E: evaluation episodes per round")
     parser.add_argument("--terminal_value", type=float, default=0.0,
                         help="the robots' objective value of a terminal state (foray-sim --terminal_value)")
-    parser.add_argument("--nll_beta", type=float, default=0.0,
-                        help="beta of the models' beta-NLL training loss (foray-sim --nll_beta); 0: plain NLL")
+    parser.add_argument("--nll_beta", type=float, default=-1.0,
+                        help="beta of the models' beta-NLL training loss (foray-sim --nll_beta); 0: plain NLL; "
+                             "negative: the server's default")
     parser.add_argument("--min_epoch_steps", type=int, default=0,
                         help="fewest minibatch steps in a training epoch (foray-sim --min_epoch_steps); "
                              "0: the server's default")

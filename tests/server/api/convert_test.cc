@@ -158,7 +158,10 @@ TEST(ConvertTest, ConfigFromSpecFillsTheDocumentedDefaultsAndRoundsLimitsInward)
   EXPECT_EQ(config->coverage_indices, (std::vector<int>{0, 1}));
   EXPECT_EQ(config->planner.cem.seed, 1u);  // documented in types.proto: absent means 1
   EXPECT_EQ(config->training.seed, 1u);
-  EXPECT_EQ(config->training.nll_beta, 0.0);
+  EXPECT_EQ(config->training.nll_beta, 0.5);   // documented in types.proto
+  spec.mutable_training()->set_nll_beta(0.0);  // present: the plain NLL
+  EXPECT_EQ(ConfigFromSpec(spec)->training.nll_beta, 0.0);
+  spec.mutable_training()->clear_nll_beta();
   EXPECT_EQ(config->training.min_epoch_steps, 20);  // documented in types.proto
   spec.mutable_training()->set_min_epoch_steps(1);
   EXPECT_EQ(ConfigFromSpec(spec)->training.min_epoch_steps, 1);
