@@ -252,6 +252,7 @@ absl::StatusOr<v1::Plan> RobotSession::RequestPlan(const std::vector<double>& st
   request.set_evaluate(choices.evaluate);
   request.set_episode(choices.episode);
   if (choices.objective.has_value()) *request.mutable_objective() = *choices.objective;
+  if (choices.planner.has_value()) *request.mutable_planner() = *choices.planner;
   waiters_[id];
   auto done = [this, id]() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_) {
     return stopping_ || waiters_.at(id).done;

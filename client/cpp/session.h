@@ -121,6 +121,9 @@ struct PlanChoices {
   // Overrides of the robot's objective for this plan only (weights, discount, terminal_value,
   // known reward or termination); absent: the robot's settings.
   std::optional<foray::v1::ObjectiveSettings> objective;
+  // Overrides of the robot's planner settings for this plan only (fields left at 0 keep the
+  // robot's); absent: the robot's settings.
+  std::optional<foray::v1::PlannerSettings> planner;
 };
 
 // What the control loop applies this period.

@@ -48,6 +48,8 @@ ABSL_FLAG(double, deadline_ms, 100.0, "Planning time per step, milliseconds.");
 ABSL_FLAG(double, nll_beta, -1.0,
           "beta of the models' beta-NLL training loss; 0: the plain NLL; negative: the server's "
           "default (0.5).");
+ABSL_FLAG(double, reward_nll_beta, -1.0,
+          "beta of the reward's output in that loss; negative: the server's default.");
 ABSL_FLAG(int, horizon, 0,
           "Planning horizon in control steps (at registration); 0: the scenario's own (15 for "
           "gantry and arm, 30 for bench, whose strike takes 1.5 s to play out).");
@@ -84,6 +86,9 @@ ABSL_FLAG(int, evaluate_every, 0,
           "reward-only plans on the current model, reported separately (0: none; needs a model, "
           "so it waits for the first).");
 ABSL_FLAG(int, evaluation_episodes, 1, "Evaluation episodes in each evaluation round.");
+ABSL_FLAG(int, evaluation_horizon, 0,
+          "Planning horizon of evaluation plans in control steps (a per-request override); 0: "
+          "the robot's horizon.");
 
 namespace {
 
@@ -165,6 +170,9 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
     spec.mutable_training()->set_patience(absl::GetFlag(FLAGS_patience));
   if (absl::GetFlag(FLAGS_nll_beta) >= 0.0) {
     spec.mutable_training()->set_nll_beta(absl::GetFlag(FLAGS_nll_beta));
+  }
+  if (absl::GetFlag(FLAGS_reward_nll_beta) >= 0.0) {
+    spec.mutable_training()->set_reward_nll_beta(absl::GetFlag(FLAGS_reward_nll_beta));
   }
   spec.mutable_planner()->set_horizon(absl::GetFlag(FLAGS_horizon) > 0 ? absl::GetFlag(FLAGS_horizon)
                                                                        : s.plan_horizon());
@@ -262,6 +270,9 @@ bool RunRobot(const std::string& kind, int index) {
     foray::client::PlanChoices choices;
     choices.evaluate = evaluation;
     choices.episode = episode_id;
+    if (evaluation && absl::GetFlag(FLAGS_evaluation_horizon) > 0) {
+      choices.planner.emplace().set_horizon(absl::GetFlag(FLAGS_evaluation_horizon));
+    }
     bool lost = false;
     Eigen::VectorXd state = sim.Reset();
     std::vector<double> previous(action_dim, 0.0);

@@ -341,12 +341,20 @@ Scalar EnsembleT<Scalar>::MemberLossAndGradient(int member, const Matrix& x, con
       kHalfLog2Pi;
 
   // Backward. dL/dmu = w err inv_var / N; dL/dlv = 0.5 w (1 - err^2 inv_var) / N, with the
-  // beta-NLL's weight w = exp(beta lv) held constant (1 for the plain NLL).
+  // beta-NLL's weight w = exp(beta lv) held constant (1 for the plain NLL); beta is
+  // reward_nll_beta in the reward's column, nll_beta in the state deltas'.
   const Scalar inv_n = Scalar(1) / static_cast<Scalar>(elements);
-  const Scalar beta = static_cast<Scalar>(loss_options.nll_beta);
   using Array = Eigen::Array<Scalar, Eigen::Dynamic, Eigen::Dynamic>;
-  const Array scale = beta == Scalar(0) ? Array::Constant(rows, d, inv_n)
-                                        : Array((beta * log_var).exp() * inv_n);
+  Array scale(rows, d);
+  for (int k = 0; k < d; ++k) {
+    const Scalar beta =
+        static_cast<Scalar>(k + 1 == d ? loss_options.reward_nll_beta : loss_options.nll_beta);
+    if (beta == Scalar(0)) {
+      scale.col(k).setConstant(inv_n);
+    } else {
+      scale.col(k) = (beta * log_var.col(k)).exp() * inv_n;
+    }
+  }
   const auto d_lv = (Scalar(0.5) * scale * (Scalar(1) - err.square() * inv_var)).eval();
   const auto sig_u = Sigmoid(u).eval();
   const auto sig_v = Sigmoid(v).eval();

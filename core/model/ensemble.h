@@ -136,7 +136,9 @@ class EnsembleT {
   // (ICLR 2022, "On the pitfalls of heteroscedastic uncertainty estimation with probabilistic
   // neural networks"): each element's NLL term weighted by stop_gradient(exp(beta * lv)), i.e.
   // the predicted variance to the power beta, so that rows the model calls noisy do not stop
-  // their mean from being fitted. The returned L stays the plain NLL.
+  // their mean from being fitted. The reward's column has its own beta, loss.reward_nll_beta:
+  // at 1 its mean's gradient is that of the squared error (the paper's beta = 1 case), so a
+  // rare reward cannot be explained away as noise. The returned L stays the plain NLL.
   // `workspace` holds the layer buffers between calls (one per thread); null: a fresh one.
   struct GradientWorkspace {
     std::vector<Matrix> hidden;  // per hidden layer: act(z_l), the next layer's input
@@ -147,6 +149,7 @@ class EnsembleT {
     double termination_weight = 1.0;  // of the BCE beside the NLL, >= 0
     double pos_weight = 1.0;  // w_pos: weight of the terminal rows, >= 1 (rare terminals count)
     double nll_beta = 0.0;    // beta of the beta-NLL, [0, 1]; 0: the plain NLL
+    double reward_nll_beta = 0.0;  // the same for the reward's column, [0, 1]
   };
   Scalar MemberLossAndGradient(int member, const Matrix& x, const Matrix& y,
                                Scalar* grad_params, Vector* grad_max_log_var,

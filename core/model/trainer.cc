@@ -122,6 +122,10 @@ absl::Status TrainingOptions::Validate() const {
     return absl::InvalidArgumentError(
         absl::StrFormat("nll_beta is %g, expected in [0, 1]", nll_beta));
   }
+  if (!(reward_nll_beta >= 0 && reward_nll_beta <= 1)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("reward_nll_beta is %g, expected in [0, 1]", reward_nll_beta));
+  }
   if (patience < 1 || patience > 10000) {
     return absl::InvalidArgumentError(
         absl::StrFormat("patience is %d, expected 1..10000", patience));
@@ -314,7 +318,8 @@ bool EnsembleTrainer::RunEpoch(const ParallelFor& parallel) {
   member_steps_.resize(members);
   const Ensemble::LossOptions loss{.termination_weight = options_.termination_weight,
                                    .pos_weight = pos_weight_,
-                                   .nll_beta = options_.nll_beta};
+                                   .nll_beta = options_.nll_beta,
+                                   .reward_nll_beta = options_.reward_nll_beta};
   double nll_sum = 0;
   for (int pass = 0; pass < passes; ++pass) {
     for (std::vector<int>& rows : member_rows_) {

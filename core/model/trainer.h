@@ -77,6 +77,12 @@ struct TrainingOptions {
   // Gaussian NLL; the paper recommends 0.5. Range [0, 1]. Early stopping and the report use
   // the plain NLL either way.
   double nll_beta = 0.0;
+  // beta of the reward's column alone. Its variance plays no part in a plan (the objective
+  // reads the expected reward), and with a sparse reward (a few rewarded rows among thousands)
+  // the NLL lets the predicted variance absorb the rare rows: the mean stays near zero where
+  // the reward was earned. At 1 the mean's gradient is that of the squared error (Seitzer et
+  // al. 2022, the beta = 1 case), while the variance is still fitted. Range [0, 1].
+  double reward_nll_beta = 0.0;
   // Fraction of transitions held out for early stopping and the report. Range [0, 0.5].
   double holdout_fraction = 0.1;
   // Stop after this many epochs without a holdout improvement. Range 1..10000.

@@ -287,6 +287,7 @@ absl::StatusOr<robot::RobotConfig> ConfigFromSpec(const v1::RobotSpec& spec) {
   if (t.holdout_fraction() != 0) c.training.holdout_fraction = t.holdout_fraction();
   if (t.patience() != 0) c.training.patience = static_cast<int>(t.patience());
   c.training.nll_beta = t.has_nll_beta() ? t.nll_beta() : kDefaultNllBeta;
+  c.training.reward_nll_beta = t.has_reward_nll_beta() ? t.reward_nll_beta() : c.training.nll_beta;
   if (spec.has_seed()) {
     c.planner.cem.seed = spec.seed();
     c.training.seed = spec.seed();

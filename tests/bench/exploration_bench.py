@@ -115,6 +115,8 @@ def run_one(args, scenario, strategy, seed):
                  f"--evaluate_every={args.evaluate_every}", f"--evaluation_episodes={args.evaluations}",
                  f"--terminal_value={args.terminal_value}", f"--horizon={args.horizon}",
                  f"--nll_beta={args.nll_beta}", f"--min_epoch_steps={args.min_epoch_steps}",
+                 f"--evaluation_horizon={args.evaluation_horizon}",
+                 f"--reward_nll_beta={args.reward_nll_beta}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
             if result.returncode != 0:
@@ -287,6 +289,11 @@ def parse_args(argv=None):
     parser.add_argument("--min_epoch_steps", type=int, default=0,
                         help="fewest minibatch steps in a training epoch (foray-sim --min_epoch_steps); "
                              "0: the server's default")
+    parser.add_argument("--reward_nll_beta", type=float, default=-1.0,
+                        help="beta of the reward's output in the training loss (foray-sim --reward_nll_beta); "
+                             "negative: the server's default")
+    parser.add_argument("--evaluation_horizon", type=int, default=0,
+                        help="plan horizon of evaluation plans (foray-sim --evaluation_horizon); 0: the robot's")
     parser.add_argument("--no-plots", action="store_true")
     return parser.parse_args(argv)
 

@@ -70,15 +70,18 @@ Ensemble FromReference(const Arrays& a) {
 }
 
 // "tanh" runs without a termination head (the layout of models saved before it); "silu_beta"
-// takes the gradients of the beta-NLL with beta 0.5 (Seitzer et al., ICLR 2022).
+// takes the gradients of the beta-NLL with beta 0.5 (Seitzer et al., ICLR 2022);
+// "silu_reward_beta" the same with the reward's column at beta 1.
 class TorchForwardTest : public ::testing::TestWithParam<std::string> {};
 
 TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
   const bool head = GetParam() != "tanh";
-  const bool beta = GetParam() == "silu_beta";
+  const bool reward_beta = GetParam() == "silu_reward_beta";
+  const bool beta = GetParam() == "silu_beta" || reward_beta;
   const std::string activation = beta ? "silu" : GetParam();
   const Arrays a = RunReference("--case forward --activation " + activation +
-                                    (head ? "" : " --no_head") + (beta ? " --nll_beta 0.5" : ""),
+                                    (head ? "" : " --no_head") + (beta ? " --nll_beta 0.5" : "") +
+                                    (reward_beta ? " --reward_nll_beta 1" : ""),
                                 "fwd-" + GetParam());
   ASSERT_FALSE(a.empty());
   const Ensemble e = FromReference(a);
@@ -92,6 +95,7 @@ TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
   Ensemble::LossOptions loss_options;
   loss_options.pos_weight = a.at("pos_weight")(0);
   loss_options.nll_beta = beta ? 0.5 : 0.0;
+  loss_options.reward_nll_beta = reward_beta ? 1.0 : loss_options.nll_beta;
   foray::testing::ForEachSimdTarget([&] {
     Eigen::MatrixXf probability;
     ASSERT_TRUE(e.PredictTermination(a.at("states").cast<float>(), a.at("actions").cast<float>(),
@@ -162,7 +166,8 @@ TEST_P(TorchForwardTest, OutputsAndGradientsMatchTorch) {
 }
 
 INSTANTIATE_TEST_SUITE_P(Activations, TorchForwardTest,
-                         ::testing::Values("silu", "relu", "tanh", "silu_beta"));
+                         ::testing::Values("silu", "relu", "tanh", "silu_beta",
+                                           "silu_reward_beta"));
 
 // Full-batch training without bootstrap, holdout or normaliser refit is exactly AdamW on the
 // summed member NLL plus the bound penalty: each epoch is one step, as in the reference.

@@ -144,10 +144,13 @@ def case_forward(args):
         w.put(f"raw_var_{b}", torch.exp(lv) * out_std ** 2)
         loss = nll(mean, lv, target)
         # The beta-NLL (Seitzer et al., ICLR 2022): each element's term weighted by
-        # var.detach() ** beta; the gradient target. The reported loss stays the plain NLL.
-        total = loss if args.nll_beta == 0 else (
+        # var.detach() ** beta, with the reward's column (the last) at its own beta; the
+        # gradient target. The reported loss stays the plain NLL.
+        reward_beta = args.nll_beta if args.reward_nll_beta is None else args.reward_nll_beta
+        betas = torch.tensor([args.nll_beta] * state_dim + [reward_beta], dtype=torch.float64)
+        total = loss if args.nll_beta == 0 and reward_beta == 0 else (
             0.5 * ((mean - target) ** 2 * torch.exp(-lv) + lv + math.log(2 * math.pi))
-            * torch.exp(lv).detach() ** args.nll_beta).mean()
+            * torch.exp(lv).detach() ** betas).mean()
         if head:
             termination = bce(logit, terminal, pos_weight)
             total = total + termination  # termination weight 1
@@ -208,6 +211,8 @@ def main():
     parser.add_argument("--seed", type=int, default=2026)
     parser.add_argument("--no_head", action="store_true", help="an ensemble without a termination head")
     parser.add_argument("--nll_beta", type=float, default=0.0, help="gradients of the beta-NLL")
+    parser.add_argument("--reward_nll_beta", type=float, default=None,
+                        help="the reward column's beta; default: --nll_beta")
     parser.add_argument("--out", required=True)
     args = parser.parse_args()
     torch.manual_seed(args.seed)

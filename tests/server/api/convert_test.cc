@@ -74,6 +74,9 @@ TEST(ConvertTest, ConfigFromSpecRefusesEachBadFieldByName) {
       {"nll_beta",
        [](v1::RobotSpec* s) { s->mutable_training()->set_nll_beta(1.5); },
        {"spec.training: nll_beta", "1.5", "[0, 1]"}},
+      {"reward_nll_beta",
+       [](v1::RobotSpec* s) { s->mutable_training()->set_reward_nll_beta(-0.5); },
+       {"spec.training: reward_nll_beta", "-0.5", "[0, 1]"}},
       {"min_epoch_steps",
        [](v1::RobotSpec* s) { s->mutable_training()->set_min_epoch_steps(200000); },
        {"spec.training: min_epoch_steps", "200000", "1..100000"}},
@@ -162,6 +165,10 @@ TEST(ConvertTest, ConfigFromSpecFillsTheDocumentedDefaultsAndRoundsLimitsInward)
   spec.mutable_training()->set_nll_beta(0.0);  // present: the plain NLL
   EXPECT_EQ(ConfigFromSpec(spec)->training.nll_beta, 0.0);
   spec.mutable_training()->clear_nll_beta();
+  EXPECT_EQ(config->training.reward_nll_beta, 0.5);  // absent: nll_beta's value
+  spec.mutable_training()->set_reward_nll_beta(1.0);
+  EXPECT_EQ(ConfigFromSpec(spec)->training.reward_nll_beta, 1.0);
+  spec.mutable_training()->clear_reward_nll_beta();
   EXPECT_EQ(config->training.min_epoch_steps, 20);  // documented in types.proto
   spec.mutable_training()->set_min_epoch_steps(1);
   EXPECT_EQ(ConfigFromSpec(spec)->training.min_epoch_steps, 1);
