@@ -120,6 +120,16 @@ def test_evaluation_episodes_are_reward_only_and_counted_apart(forayd):
         # discounted expected reward alone (discount 1 here).
         assert plan.objective == pytest.approx(plan.expected_return, rel=1e-4, abs=1e-4)
         assert explore_plan.objective > explore_plan.expected_return
+        # An evaluation plan may look farther than the robot's horizon (10 steps in this spec):
+        # the request's planner override; a bad one is refused by name and plans nothing.
+        longer = session.plan([0.3, 0.0], evaluate=True, episode=11, wait=10, planner={"horizon": 12})
+        assert longer.actions.shape == (12, 1) and plan.actions.shape == (10, 1)
+        with pytest.raises(ForayError) as refused:
+            session.plan([0.3, 0.0], evaluate=True, episode=11, wait=10, planner={"horizon": 501})
+        assert refused.value.code == grpc.StatusCode.INVALID_ARGUMENT
+        assert "horizon" in refused.value.message and "501" in refused.value.message
+        with pytest.raises(ValueError, match="planner\\['horizon'\\] is 0"):
+            session.plan([0.3, 0.0], planner={"horizon": 0})
         seq = batch[-1].seq
         for k in range(5):
             session.record(11, k, [0.6, 0.0], [0.0], [0.6, 0.0], 1.0)

@@ -136,6 +136,23 @@ def _objective(objective):
     return types_pb2.ObjectiveSettings(**{k: float(v) for k, v in objective.items()})
 
 
+_PLANNER_KEYS = ("horizon", "population", "elites", "iterations", "particles")
+
+
+def _planner(planner):
+    """PlannerSettings from a message, a dict of horizon, population, elites, iterations,
+    particles (any subset, positive integers), or None."""
+    if planner is None or isinstance(planner, types_pb2.PlannerSettings):
+        return planner
+    unknown = sorted(set(planner) - set(_PLANNER_KEYS))
+    if unknown:
+        raise ValueError(f"planner has unknown keys {unknown}; use {list(_PLANNER_KEYS)}")
+    for key, value in planner.items():
+        if not (isinstance(value, int) and not isinstance(value, bool) and value >= 1):
+            raise ValueError(f"planner[{key!r}] is {value!r}; it must be a positive integer")
+    return types_pb2.PlannerSettings(**planner)
+
+
 def _channel(address, credentials, initial_backoff, max_backoff):
     options = [("grpc.initial_reconnect_backoff_ms", max(1, int(initial_backoff * 1000))),
                ("grpc.max_reconnect_backoff_ms", max(1, int(max_backoff * 1000))),
@@ -303,15 +320,19 @@ class RobotSession:
                                  + (f"; last error: {self._last_error}" if self._last_error else ""))
 
     def plan(self, state, previous_action=None, deadline=0.1, wait=1.0, *, evaluate=False, episode=0,
-             objective=None):
+             objective=None, planner=None):
         """A Plan from `state`; the server plans for at most `deadline` s (from its arrival), this waits at most `wait` s.
 
         evaluate=True plans reward only (no information term) on the current model and records
         the episode (`episode`, or else the episode of the next recorded transition) as an
         evaluation episode; the server refuses it (FAILED_PRECONDITION) before the first model.
         objective overrides the robot's objective for this plan only: a dict with any of
-        reward_weight, information_weight, discount, terminal_value, or an ObjectiveSettings."""
+        reward_weight, information_weight, discount, terminal_value, or an ObjectiveSettings.
+        planner overrides the robot's planner settings for this plan only: a dict with any of
+        horizon, population, elites, iterations, particles, or a PlannerSettings (for example
+        a longer horizon for evaluation plans, which need no information term)."""
         settings = _objective(objective)
+        planner_settings = _planner(planner)
         with self._cv:
             s = _vector("state", state, self._state_dim)
             prev = [] if previous_action is None else _vector("previous_action", previous_action,
@@ -326,6 +347,8 @@ class RobotSession:
                 evaluate=bool(evaluate), episode=int(episode))
             if settings is not None:
                 request.objective.CopyFrom(settings)
+            if planner_settings is not None:
+                request.planner.CopyFrom(planner_settings)
             self._plan_requests.append(request)
             waiter = self._waiters[rid] = [False, None]
             self._cv.notify_all()
@@ -337,13 +360,14 @@ class RobotSession:
                 raise waiter[1]
             return Plan.from_message(waiter[1])
 
-    def act(self, state, previous_action, deadline, wait, *, evaluate=False, episode=0, objective=None):
+    def act(self, state, previous_action, deadline, wait, *, evaluate=False, episode=0, objective=None,
+            planner=None):
         """The watchdog: the first action of a plan that comes within `wait` s and is still valid,
-        else the safe action. evaluate, episode and objective as for plan()."""
+        else the safe action. evaluate, episode, objective and planner as for plan()."""
         previous = _vector("previous_action", previous_action)
         try:
             plan = self.plan(state, previous, deadline, wait, evaluate=evaluate, episode=episode,
-                             objective=objective)
+                             objective=objective, planner=planner)
             if plan.actions.shape[0] == 0 or plan.actions.shape[1] != previous.size:
                 why = f"the plan's first step has {plan.actions.shape[1] if plan.actions.size else 0} actions"
             elif plan.valid_until < time.time():
