@@ -255,6 +255,7 @@ bool RunRobot(const std::string& kind, int index) {
 
   const int evaluate_every = absl::GetFlag(FLAGS_evaluate_every);
   const int round_size = std::max(1, absl::GetFlag(FLAGS_evaluation_episodes));
+  const int evaluation_horizon = absl::GetFlag(FLAGS_evaluation_horizon);
   int explored_since_evaluation = 0, evaluated_in_round = 0;
   uint64_t known_model = 0;  // the newest model version a plan came from
   for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
@@ -270,9 +271,8 @@ bool RunRobot(const std::string& kind, int index) {
     foray::client::PlanChoices choices;
     choices.evaluate = evaluation;
     choices.episode = episode_id;
-    if (evaluation && absl::GetFlag(FLAGS_evaluation_horizon) > 0) {
-      choices.planner.emplace().set_horizon(absl::GetFlag(FLAGS_evaluation_horizon));
-    }
+    if (evaluation && evaluation_horizon > 0)
+      choices.planner.emplace().set_horizon(evaluation_horizon);
     bool lost = false;
     Eigen::VectorXd state = sim.Reset();
     std::vector<double> previous(action_dim, 0.0);

@@ -119,21 +119,29 @@ def _vector(name, values, expected=None):
     return v
 
 
+def _override(name, given, message, keys, valid, requirement, convert):
+    """A per-plan override `message` from a message of that type, a dict of `keys` (any subset)
+    whose values pass `valid` (else ValueError naming the key, the value and `requirement`),
+    each passed through `convert`, or None."""
+    if given is None or isinstance(given, message):
+        return given
+    unknown = sorted(set(given) - set(keys))
+    if unknown:
+        raise ValueError(f"{name} has unknown keys {unknown}; use {list(keys)}")
+    for key, value in given.items():
+        if not valid(value):
+            raise ValueError(f"{name}[{key!r}] is {value!r}; it must be {requirement}")
+    return message(**{k: convert(v) for k, v in given.items()})
+
+
 _OBJECTIVE_KEYS = ("reward_weight", "information_weight", "discount", "terminal_value", "observation_noise")
 
 
 def _objective(objective):
     """ObjectiveSettings from a message, a dict of reward_weight, information_weight, discount,
     terminal_value (any subset), or None."""
-    if objective is None or isinstance(objective, types_pb2.ObjectiveSettings):
-        return objective
-    unknown = sorted(set(objective) - set(_OBJECTIVE_KEYS))
-    if unknown:
-        raise ValueError(f"objective has unknown keys {unknown}; use {list(_OBJECTIVE_KEYS)}")
-    for key, value in objective.items():
-        if not (isinstance(value, (int, float)) and math.isfinite(value)):
-            raise ValueError(f"objective[{key!r}] is {value!r}; it must be a finite number")
-    return types_pb2.ObjectiveSettings(**{k: float(v) for k, v in objective.items()})
+    return _override("objective", objective, types_pb2.ObjectiveSettings, _OBJECTIVE_KEYS,
+                     lambda v: isinstance(v, (int, float)) and math.isfinite(v), "a finite number", float)
 
 
 _PLANNER_KEYS = ("horizon", "population", "elites", "iterations", "particles")
@@ -142,15 +150,9 @@ _PLANNER_KEYS = ("horizon", "population", "elites", "iterations", "particles")
 def _planner(planner):
     """PlannerSettings from a message, a dict of horizon, population, elites, iterations,
     particles (any subset, positive integers), or None."""
-    if planner is None or isinstance(planner, types_pb2.PlannerSettings):
-        return planner
-    unknown = sorted(set(planner) - set(_PLANNER_KEYS))
-    if unknown:
-        raise ValueError(f"planner has unknown keys {unknown}; use {list(_PLANNER_KEYS)}")
-    for key, value in planner.items():
-        if not (isinstance(value, int) and not isinstance(value, bool) and value >= 1):
-            raise ValueError(f"planner[{key!r}] is {value!r}; it must be a positive integer")
-    return types_pb2.PlannerSettings(**planner)
+    return _override("planner", planner, types_pb2.PlannerSettings, _PLANNER_KEYS,
+                     lambda v: isinstance(v, int) and not isinstance(v, bool) and v >= 1,
+                     "a positive integer", int)
 
 
 def _channel(address, credentials, initial_backoff, max_backoff):
