@@ -58,6 +58,9 @@ ABSL_FLAG(double, information_weight, 1.0, "Objective weight of the information 
 ABSL_FLAG(double, terminal_value, 0.0,
           "Objective value of ending an episode in a terminal state, e.g. -5 for \"losing the object "
           "costs five steps at the goal\" (at registration).");
+ABSL_FLAG(double, value_weight, 0.0,
+          "Objective weight of the value of the states a plan ends in (what the robot's episodes "
+          "earned after them); 0: plans see reward only within their horizon (at registration).");
 ABSL_FLAG(std::string, strategy, "explore",
           "explore: plans with reward + information gain; reward: information weight 0; "
           "noise: no model, the nominal controller's action plus Gaussian noise; random: no "
@@ -184,6 +187,9 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
       absl::GetFlag(FLAGS_strategy) == "reward" ? 0.0 : absl::GetFlag(FLAGS_information_weight));
   if (absl::GetFlag(FLAGS_terminal_value) != 0.0) {
     spec.mutable_objective()->set_terminal_value(absl::GetFlag(FLAGS_terminal_value));
+  }
+  if (absl::GetFlag(FLAGS_value_weight) != 0.0) {
+    spec.mutable_objective()->set_value_weight(absl::GetFlag(FLAGS_value_weight));
   }
   for (int i : s.coverage_indices()) spec.add_coverage_indices(i);
   for (double v : s.coverage_lower()) spec.add_coverage_lower(v);

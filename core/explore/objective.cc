@@ -157,6 +157,14 @@ absl::Status ObjectiveOptions::Validate(int state_dim, int action_dim) const {
     return absl::InvalidArgumentError(
         absl::StrFormat("terminal_value is %g, must be finite", terminal_value));
   }
+  if (!std::isfinite(value_weight)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("value_weight is %g, must be finite", value_weight));
+  }
+  if (!(value_discount > 0.0 && value_discount < 1.0)) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("value_discount is %g, must be in (0, 1)", value_discount));
+  }
   if (absl::Status s = known_termination.Validate(state_dim); !s.ok()) return s;
   return known_reward.Validate(state_dim, action_dim);
 }

@@ -84,6 +84,11 @@ struct ObjectiveOptions {
   double terminal_value = 0.0;
   // When given, termination comes from this region instead of the model's termination head.
   KnownTermination known_termination;
+  // w_v: weight of the value of the state a rollout ends in (core/plan/value.h), in reward
+  // units per unit of value; 0 (the default) plans on the horizon alone. Finite.
+  double value_weight = 0.0;
+  // gamma_v of the returns the value is fitted to, in (0, 1) (plan::ValueOptions::discount).
+  double value_discount = 0.95;
 
   absl::Status Validate(int state_dim, int action_dim) const;
 };

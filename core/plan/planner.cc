@@ -39,6 +39,11 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& re
   if (absl::Status s = options.rollout.state_bounds.Validate(model.state_dim()); !s.ok()) {
     return s;
   }
+  if (options.rollout.value != nullptr && options.rollout.value->state_dim() != model.state_dim()) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("the state value has %d state dimensions, the model has %d",
+                        options.rollout.value->state_dim(), model.state_dim()));
+  }
   if (limits.dim() != model.action_dim()) {
     return absl::InvalidArgumentError(absl::StrFormat(
         "limits have %d action values, the model has %d", limits.dim(), model.action_dim()));
@@ -113,6 +118,7 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& re
     result.total_information_gain += discount * trace.information_gain[t];
     discount *= objective.discount;
   }
+  result.value_beyond = trace.value_beyond;
   for (const RolloutStats& stats : task_stats) {
     result.model_seconds += stats.model_seconds;
     result.model_flops += stats.model_flops;

@@ -55,6 +55,9 @@ struct PlanResult {
   double objective = 0.0;
   double expected_return = 0.0;
   double total_information_gain = 0.0;
+  // The value of the states the final rollout ended in, E[s_H V(x_H)] (unweighted,
+  // undiscounted; 0 without a value or with value_weight 0): J adds w_v gamma^H times it.
+  double value_beyond = 0.0;
   int iterations = 0;
   int evaluations = 0;
   double seconds = 0.0;          // wall time of Plan

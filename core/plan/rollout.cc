@@ -337,6 +337,25 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
     }
     discount *= objective.discount;
   }
+  // What follows the horizon: gamma^H w_v (1/P) sum_p s_{p,H} V(x_{p,H}).
+  if (options.value != nullptr && objective.value_weight != 0.0) {
+    FORAY_CHECK(options.value->state_dim() == sd,
+                "ScoreSequences: the state value does not fit the model");
+    ws->value.resize(rows);
+    options.value->Evaluate(ws->states.data(), sd, rows, ws->value.data());
+    for (int n = 0; n < candidates; ++n) {
+      double beyond = 0.0;
+      for (int p = 0; p < particles; ++p) {
+        const int r = n * particles + p;
+        beyond += static_cast<double>(ws->survival[r]) * ws->value[r];
+      }
+      beyond /= particles;
+      total[n] += discount * objective.value_weight * beyond;
+      if (trace != nullptr && n == 0) trace->value_beyond = beyond;
+    }
+  } else if (trace != nullptr) {
+    trace->value_beyond = 0.0;
+  }
   for (int n = 0; n < candidates; ++n) scores[n] = static_cast<float>(total[n]);
 }
 

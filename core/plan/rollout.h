@@ -14,7 +14,10 @@
 //                                   + (s_{p,t} - s_{p,t+1}) V_term ],
 // with r_{p,t} the expected reward under the particle's member (or the known reward at the
 // sampled next state) and V_term the objective's terminal_value: an ended episode earns no
-// further reward and no further information, and pays V_term once.
+// further reward and no further information, and pays V_term once. With a state value given
+// (RolloutOptions::value, core/plan/value.h) and the objective's value_weight w_v not 0, a
+// candidate also earns what the data say follows the state it ends in:
+//   + w_v gamma^H (1/P) sum_p s_{p,H} V(x_{p,H}).
 //
 // Models are const and safe from several threads; a RolloutWorkspace belongs to one thread.
 #ifndef FORAY_CORE_PLAN_ROLLOUT_H_
@@ -33,6 +36,7 @@
 #include "core/model/ensemble.h"
 #include "core/model/inference.h"
 #include "core/plan/cem.h"
+#include "core/plan/value.h"
 #include "core/util/parallel.h"
 
 namespace foray::plan {
@@ -186,6 +190,9 @@ struct RolloutOptions {
   int particles = 5;   // particles per candidate; 1..kMaxParticles
   Propagation propagation = Propagation::kTsInf;  // kTsInf or kTs1
   StateBounds state_bounds;  // none by default; checked against the model's state by Plan
+  // The value of the states a rollout ends in (read only when the objective's value_weight is
+  // not 0); none by default; its state_dim is checked against the model's by Plan.
+  std::shared_ptr<const StateValue> value;
   static constexpr int kMaxParticles = 1000;
   absl::Status Validate() const;
 };
@@ -196,9 +203,12 @@ struct RolloutOptions {
 // before the step, so that an ended episode counts as earning nothing).
 // survival: (horizon) the particles' mean probability that the episode has not ended by the
 // end of each step (all 1 when nothing can end it); min_survival: the lowest particle's.
+// value_beyond: the particles' mean of s_{p,H} V(x_{p,H}), undiscounted and unweighted (0
+// without a value or with value_weight 0).
 struct RolloutTrace {
   Eigen::MatrixXf state_mean, state_std;
   Eigen::VectorXf expected_reward, information_gain, survival, min_survival;
+  double value_beyond = 0.0;
 };
 
 // Time spent by a Score call, for the speed report.
@@ -211,7 +221,8 @@ struct RolloutStats {
 // Reused buffers of one thread's rollouts.
 struct RolloutWorkspace {
   MemberPredictions predictions;
-  std::vector<float> states, actions, first_actions, reward, information, noise, survival, ends;
+  std::vector<float> states, actions, first_actions, reward, information, noise, survival, ends,
+      value;
   std::vector<float> observed_log_var;  // the members' log-variances with the sensor floor
   std::vector<float> alive_before;  // the trace's particles' survival before the step
   std::vector<int> member_of;

@@ -177,6 +177,8 @@ absl::Status ApplyObjectiveSettings(const v1::ObjectiveSettings& s, int state_di
   }
   if (s.has_terminal_value()) o->terminal_value = s.terminal_value();
   if (s.has_observation_noise()) o->observation_noise = s.observation_noise();
+  if (s.has_value_weight()) o->value_weight = s.value_weight();
+  if (s.has_value_discount()) o->value_discount = s.value_discount();
   if (s.has_known_termination()) {
     const v1::KnownTermination& k = s.known_termination();
     explore::KnownTermination known;

@@ -33,6 +33,7 @@ void PlanToWire(const robot::PlanOutcome& outcome, const robot::RobotConfig& con
   plan->set_objective(r.objective);
   plan->set_expected_return(r.expected_return);
   plan->set_information_gain(r.total_information_gain);
+  plan->set_value_beyond(r.value_beyond);
   plan->set_model_version(outcome.model_version);
   plan->set_from_prior(outcome.from_prior);
   plan->set_iterations(static_cast<uint32_t>(r.iterations));

@@ -12,6 +12,7 @@ void DatasetMirror::Add(const store::TransitionRecord& t) {
                 static_cast<int>(t.next_state.size()));
   rewards_.push_back(static_cast<float>(t.reward));
   terminals_.push_back(t.terminal ? 1.0f : 0.0f);
+  episodes_.push_back(t.episode);
   if (t.seq > last_seq_) last_seq_ = t.seq;
   if (t.terminal || (last_episode_ != 0 && t.episode != last_episode_ && !last_terminal_)) {
     episode_ended_ = true;
@@ -27,6 +28,7 @@ void DatasetMirror::Clear() {
   next_states_.clear();
   rewards_.clear();
   terminals_.clear();
+  episodes_.clear();
   coverage_ = CoverageGrid();  // the rows come back in seq order: bin them anew
   last_seq_ = 0;
   last_episode_ = 0;
@@ -42,6 +44,18 @@ model::TransitionData DatasetMirror::Snapshot() const {
   d.rewards = Eigen::Map<const Eigen::VectorXf>(rewards_.data(), n);
   d.terminals = Eigen::Map<const Eigen::VectorXf>(terminals_.data(), n);
   return d;
+}
+
+absl::StatusOr<std::shared_ptr<const plan::StateValue>> DatasetMirror::FitValue(
+    const plan::ValueOptions& options) const {
+  if (size() == 0) return absl::FailedPreconditionError("no transitions to value states from");
+  absl::StatusOr<std::vector<double>> returns =
+      plan::ReturnsAfter(rewards_, episodes_, terminals_, options.discount, options.terminal_value);
+  if (!returns.ok()) return returns.status();
+  absl::StatusOr<plan::StateValue> value =
+      plan::StateValue::Fit(next_states_.data(), size(), state_dim_, *returns, options);
+  if (!value.ok()) return value.status();
+  return std::make_shared<const plan::StateValue>(*std::move(value));
 }
 
 CoverageGrid::View DatasetMirror::Coverage(const CoverageGrid::Settings& settings) {

@@ -10,9 +10,12 @@
 #define FORAY_SERVER_ROBOT_DATASET_H_
 
 #include <cstdint>
+#include <memory>
 #include <vector>
 
+#include "absl/status/statusor.h"
 #include "core/model/trainer.h"
+#include "core/plan/value.h"
 #include "server/robot/coverage.h"
 #include "server/store/store.h"
 
@@ -31,6 +34,11 @@ class DatasetMirror {
   uint64_t last_seq() const { return last_seq_; }
   // A copy of every row, for a training round.
   model::TransitionData Snapshot() const;
+  // The value of states from these rows: each row's discounted return after it within its
+  // episode, regressed on its next state (core/plan/value.h). InvalidArgument from the fit
+  // (bad options); FailedPrecondition with no rows.
+  absl::StatusOr<std::shared_ptr<const plan::StateValue>> FitValue(
+      const plan::ValueOptions& options) const;
   // The coverage view's counts over the next states.
   CoverageGrid::View Coverage(const CoverageGrid::Settings& settings);
 
@@ -53,6 +61,7 @@ class DatasetMirror {
   const int state_dim_, action_dim_;
   std::vector<float> states_, actions_, next_states_, rewards_;
   std::vector<float> terminals_;  // 1 where the client's terminal flag was set
+  std::vector<uint64_t> episodes_;  // each row's episode id
   uint64_t last_seq_ = 0;
   uint64_t last_episode_ = 0;
   bool last_terminal_ = false;

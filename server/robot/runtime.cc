@@ -196,6 +196,7 @@ absl::Status RobotRuntime::Load() {
   highest_version_ = listed->empty() ? 0 : listed->front().model_version;
   load_problems_ = std::move(problems);
   published_ = std::move(published);
+  if (published_ != nullptr) RefitValue();
   return absl::OkStatus();
 }
 
@@ -346,6 +347,7 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
   {
     absl::MutexLock lock(&mu_);
     published_ = published;
+    RefitValue();
   }
   store::ProgressRecord record;
   record.robot_id = robot_id_;
@@ -354,6 +356,19 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
   record.payload = checkpoint.report;
   store_->AppendProgress(record).IgnoreError();  // informational, like episode records
   return published;
+}
+
+void RobotRuntime::RefitValue() {
+  if (dataset_.size() == 0) {
+    value_ = nullptr;
+    return;
+  }
+  // O(rows x state_dim) under the lock, once per published version. The options come from a
+  // validated objective, so a failure here is a bug.
+  absl::StatusOr<std::shared_ptr<const plan::StateValue>> value =
+      dataset_.FitValue({.discount = config_.objective.value_discount,
+                         .terminal_value = config_.objective.terminal_value});
+  value_ = value.ok() ? *std::move(value) : nullptr;
 }
 
 absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
@@ -366,6 +381,7 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     absl::MutexLock lock(&mu_);
     model = published_;
     config = config_;
+    input.planner.rollout.value = value_;
     warm = plan_state_.warm_start();
     count = plan_state_.Start();
   }

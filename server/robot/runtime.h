@@ -208,6 +208,9 @@ class RobotRuntime {
   absl::StatusOr<std::shared_ptr<const PublishedModel>> Publish(model::Ensemble ensemble,
                                                                 model::TrainingReport report,
                                                                 double seconds);
+  // Fits value_ to the dataset mirror's rows with the objective's value discount and
+  // terminal value (Publish and Load call it whenever a model is published).
+  void RefitValue() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
   // Counts one transition into the dataset mirror and the episode tracker.
   void AddTransition(const store::TransitionRecord& t) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
   void RecordProgress();  // writes the tracker's finished episodes to the store
@@ -228,6 +231,9 @@ class RobotRuntime {
   PlanState plan_state_ ABSL_GUARDED_BY(mu_);
   // The published model and its checkpoints.
   std::shared_ptr<const PublishedModel> published_ ABSL_GUARDED_BY(mu_);
+  // The value of states beyond a plan's horizon, fitted to the rows there were when the
+  // published model was (null before the first model or when the fit failed).
+  std::shared_ptr<const plan::StateValue> value_ ABSL_GUARDED_BY(mu_);
   // The highest version of every stored checkpoint, readable or not.
   uint64_t highest_version_ ABSL_GUARDED_BY(mu_) = 0;
   std::vector<std::string> load_problems_ ABSL_GUARDED_BY(mu_);

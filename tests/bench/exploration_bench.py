@@ -116,7 +116,7 @@ def run_one(args, scenario, strategy, seed):
                  f"--terminal_value={args.terminal_value}", f"--horizon={args.horizon}",
                  f"--nll_beta={args.nll_beta}", f"--min_epoch_steps={args.min_epoch_steps}",
                  f"--evaluation_horizon={args.evaluation_horizon}",
-                 f"--reward_nll_beta={args.reward_nll_beta}",
+                 f"--reward_nll_beta={args.reward_nll_beta}", f"--value_weight={args.value_weight}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
             if result.returncode != 0:
@@ -159,6 +159,10 @@ def run_one(args, scenario, strategy, seed):
         # Each evaluation episode's outcome (goal reached, lost or time up) and return, in order.
         "evaluation_outcomes": [e.get("outcome") for e in episodes if e.get("evaluation")],
         "evaluation_returns": [e["return"] for e in episodes if e.get("evaluation")],
+        # Where each evaluation episode went: its stored next states in order, to tell how an
+        # evaluation failed.
+        "evaluation_states": [states[episode_ids == e["episode"]].tolist()
+                              for e in episodes if e.get("evaluation")],
         "visits": visit.reshape(GRID, GRID).tolist(),
         # Every stored next state in order: two runs of one seed are the same run when these match.
         "states_sha256": hashlib.sha256(np.ascontiguousarray(states).tobytes()).hexdigest(),
@@ -294,6 +298,8 @@ def parse_args(argv=None):
                              "negative: the server's default")
     parser.add_argument("--evaluation_horizon", type=int, default=0,
                         help="plan horizon of evaluation plans (foray-sim --evaluation_horizon); 0: the robot's")
+    parser.add_argument("--value_weight", type=float, default=0.0,
+                        help="objective weight of the value of the states a plan ends in; 0: none")
     parser.add_argument("--no-plots", action="store_true")
     return parser.parse_args(argv)
 

@@ -151,6 +151,48 @@ def test_evaluation_episodes_are_reward_only_and_counted_apart(forayd):
     assert p.evaluation.episodes == 1 and p.exploration.episodes == explored
 
 
+def test_plans_add_the_value_of_where_they_end(forayd):
+    # The objective's value_weight: a plan also earns the value of the states its rollouts end
+    # in, the robot's own discounted returns after them regressed on the state (core/plan/value.h).
+    c = Client(forayd)
+    walker = spec("valued", 2, 1, min_transitions=100, every_n=100000)
+    walker.objective.value_weight = 1.0
+    walker.objective.terminal_value = -5.0
+    robot = c.register(walker)
+    rid = robot.robot.robot_id
+    with RobotSession(forayd.address, rid, robot.token) as session:
+        session.wait_connected(10)
+        for tr in cliff(1, 12):
+            session.record(tr.episode, tr.step, tr.state, tr.action, tr.next_state, tr.reward, tr.terminal)
+        session.flush(30)
+        c.wait_model(rid, 1)
+        # Reward followed the states short of the zone, so they have value; an evaluation plan
+        # (reward only, discount 1, weight 1) scores J = expected return + value beyond + the
+        # terminal value times the probability of ending within the horizon (rollout.h).
+        plan = session.plan([0.3, 0.0], evaluate=True, episode=13, wait=10)
+        assert plan.value_beyond > 0.1, plan.value_beyond
+        ended = 1.0 - plan.survival[-1]
+        assert plan.objective == pytest.approx(plan.expected_return + plan.value_beyond - 5.0 * ended,
+                                               rel=1e-4, abs=1e-4)
+        # Weight 0 for one request: the horizon alone.
+        flat = session.plan([0.3, 0.0], evaluate=True, episode=13, wait=10, objective={"value_weight": 0.0})
+        assert flat.value_beyond == 0.0
+        assert flat.objective == pytest.approx(flat.expected_return - 5.0 * (1.0 - flat.survival[-1]),
+                                               rel=1e-4, abs=1e-4)
+    # After a restart the value is fitted again to the stored transitions.
+    forayd.restart()
+    c = Client(forayd)
+    again = c.plan(robot, [0.3, 0.0], deadline_ms=500)
+    assert again.value_beyond > 0.1, again.value_beyond
+
+    bad = spec("badly-valued", 2, 1)
+    bad.objective.value_discount = 1.0
+    expect_error(CODE.INVALID_ARGUMENT, "value_discount is 1", c.register, bad)
+    bad = spec("badly-valued", 2, 1)
+    bad.objective.value_weight = math.nan
+    expect_error(CODE.INVALID_ARGUMENT, "value_weight is nan", c.register, bad)
+
+
 def test_bad_termination_settings_are_refused_by_name(forayd):
     c = Client(forayd)
     bad = spec("badly", 2, 1)

@@ -81,6 +81,7 @@ class Plan:
     compute_ms: float
     valid_until: float             # Unix seconds; do not execute after this
     evaluation: bool = False       # planned for evaluation (reward only)
+    value_beyond: float = 0.0      # value of the predicted end states (objective's value_weight)
 
     @staticmethod
     def from_message(p):
@@ -98,7 +99,7 @@ class Plan:
             total_information_gain=p.information_gain, model_version=p.model_version,
             from_prior=p.from_prior, iterations=p.iterations, compute_ms=p.compute_ms,
             valid_until=p.valid_until.seconds + p.valid_until.nanos * 1e-9 if p.HasField("valid_until") else math.inf,
-            evaluation=p.evaluation)
+            evaluation=p.evaluation, value_beyond=p.value_beyond)
 
 
 @dataclasses.dataclass
@@ -134,12 +135,13 @@ def _override(name, given, message, keys, valid, requirement, convert):
     return message(**{k: convert(v) for k, v in given.items()})
 
 
-_OBJECTIVE_KEYS = ("reward_weight", "information_weight", "discount", "terminal_value", "observation_noise")
+_OBJECTIVE_KEYS = ("reward_weight", "information_weight", "discount", "terminal_value", "observation_noise",
+                   "value_weight")
 
 
 def _objective(objective):
     """ObjectiveSettings from a message, a dict of reward_weight, information_weight, discount,
-    terminal_value (any subset), or None."""
+    terminal_value, observation_noise, value_weight (any subset), or None."""
     return _override("objective", objective, types_pb2.ObjectiveSettings, _OBJECTIVE_KEYS,
                      lambda v: isinstance(v, (int, float)) and math.isfinite(v), "a finite number", float)
 
