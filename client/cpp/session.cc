@@ -27,9 +27,12 @@ namespace v1 = foray::v1;
 
 std::shared_ptr<grpc::Channel> MakeChannel(const std::string& address,
                                            std::shared_ptr<grpc::ChannelCredentials> credentials,
-                                           absl::Duration initial_backoff, absl::Duration max_backoff) {
+                                           const std::string& tls_server_name,
+                                           absl::Duration initial_backoff,
+                                           absl::Duration max_backoff) {
   if (credentials == nullptr) credentials = grpc::InsecureChannelCredentials();
   grpc::ChannelArguments args;
+  if (!tls_server_name.empty()) args.SetSslTargetNameOverride(tls_server_name);
   // gRPC's own reconnect backoff (1 s doubling to 120 s by default) would otherwise hold the
   // channel down long after the server is back.
   const int initial_ms = static_cast<int>(absl::ToInt64Milliseconds(initial_backoff));
@@ -108,8 +111,8 @@ absl::Status SessionOptions::Validate() const {
 
 RobotSession::RobotSession(SessionOptions options)
     : options_(std::move(options)),
-      channel_(MakeChannel(options_.address, options_.credentials, options_.initial_backoff,
-                           options_.max_backoff)),
+      channel_(MakeChannel(options_.address, options_.credentials, options_.tls_server_name,
+                           options_.initial_backoff, options_.max_backoff)),
       stub_(v1::RobotSession::NewStub(channel_)) {
   if (absl::Status s = options_.Validate(); !s.ok()) {
     std::fprintf(stderr, "foray::client::RobotSession: %s\n", std::string(s.message()).c_str());
@@ -131,12 +134,11 @@ void RobotSession::Stop() {
   if (watch_thread_.joinable()) watch_thread_.join();
 }
 
-absl::StatusOr<Identity> RobotSession::Register(const std::string& address,
-                                                std::shared_ptr<grpc::ChannelCredentials> credentials,
-                                                const std::string& admin_token,
-                                                const v1::RobotSpec& spec) {
-  if (credentials == nullptr) credentials = grpc::InsecureChannelCredentials();
-  auto registry = v1::RobotRegistry::NewStub(grpc::CreateChannel(address, credentials));
+absl::StatusOr<Identity> RobotSession::Register(
+    const std::string& address, std::shared_ptr<grpc::ChannelCredentials> credentials,
+    const std::string& admin_token, const v1::RobotSpec& spec, const std::string& tls_server_name) {
+  auto registry = v1::RobotRegistry::NewStub(MakeChannel(
+      address, std::move(credentials), tls_server_name, absl::Seconds(1), absl::Seconds(1)));
   grpc::ClientContext context;
   v1::RegisterRobotRequest request;
   *request.mutable_spec() = spec;
@@ -153,7 +155,7 @@ absl::StatusOr<Identity> RobotSession::Register(const std::string& address,
 absl::StatusOr<Identity> RobotSession::LoadOrRegister(
     const std::string& path, const std::string& address,
     std::shared_ptr<grpc::ChannelCredentials> credentials, const std::string& admin_token_file,
-    const v1::RobotSpec& spec, bool* registered) {
+    const v1::RobotSpec& spec, bool* registered, const std::string& tls_server_name) {
   if (registered != nullptr) *registered = false;
   Identity id;
   if (std::ifstream in(path); in >> id.robot_id >> id.token) return id;
@@ -165,8 +167,8 @@ absl::StatusOr<Identity> RobotSession::LoadOrRegister(
         "cannot read the admin token from %s (start forayd first, or give the right file)",
         admin_token_file));
   }
-  absl::StatusOr<Identity> fresh =
-      Register(address, credentials, std::string(absl::StripAsciiWhitespace(admin)), spec);
+  absl::StatusOr<Identity> fresh = Register(
+      address, credentials, std::string(absl::StripAsciiWhitespace(admin)), spec, tls_server_name);
   if (!fresh.ok()) return fresh.status();
   if (absl::Status s = WriteIdentity(path, *fresh, /*exclusive=*/false); !s.ok()) {
     return absl::Status(s.code(), absl::StrFormat("registered robot %s but could not keep its identity: %s",

@@ -78,6 +78,10 @@ struct SessionOptions {
   // Null means an insecure channel (loopback or a closed lab network); pass
   // grpc::SslCredentials(...) for TLS.
   std::shared_ptr<grpc::ChannelCredentials> credentials;
+  // With TLS: the name forayd's certificate is checked against instead of the address's host
+  // (a certificate made for the planner machine's DNS name, reached by its IP address). Empty:
+  // the address's host.
+  std::string tls_server_name;
   Identity identity;
   SafeAction safe_action;
   // Reconnect delays: the first retry after initial_backoff, doubling up to max_backoff.
@@ -161,17 +165,19 @@ class RobotSession {
 
   // Registers a robot with the admin token; returns its id and token. The id is chosen here
   // (random) and sent in the foray-robot header too, so a router places the robot by it.
+  // tls_server_name: as SessionOptions::tls_server_name.
   static absl::StatusOr<Identity> Register(const std::string& address,
                                            std::shared_ptr<grpc::ChannelCredentials> credentials,
                                            const std::string& admin_token,
-                                           const foray::v1::RobotSpec& spec);
+                                           const foray::v1::RobotSpec& spec,
+                                           const std::string& tls_server_name = {});
   // The identity stored in `path` ("ROBOT_ID TOKEN"), or a new registration saved there
   // (mode 0600) when the file does not exist. `registered` tells which happened.
-  static absl::StatusOr<Identity> LoadOrRegister(const std::string& path, const std::string& address,
-                                                 std::shared_ptr<grpc::ChannelCredentials> credentials,
-                                                 const std::string& admin_token_file,
-                                                 const foray::v1::RobotSpec& spec,
-                                                 bool* registered = nullptr);
+  static absl::StatusOr<Identity> LoadOrRegister(
+      const std::string& path, const std::string& address,
+      std::shared_ptr<grpc::ChannelCredentials> credentials, const std::string& admin_token_file,
+      const foray::v1::RobotSpec& spec, bool* registered = nullptr,
+      const std::string& tls_server_name = {});
 
   // Waits until the stream is open and the server has said welcome.
   absl::Status WaitConnected(absl::Duration timeout);

@@ -81,6 +81,9 @@ ABSL_FLAG(int, patience, 0,
           "Epochs without holdout improvement before a round stops; 0: the server's default.");
 ABSL_FLAG(std::string, tls_ca, "",
           "forayd's certificate (PEM): connect over TLS (forayd --tls_cert). Empty: plaintext.");
+ABSL_FLAG(std::string, tls_server_name, "",
+          "With --tls_ca: the name forayd's certificate is checked against, when it is not the "
+          "address's host (e.g. a certificate for the planner's DNS name reached by IP).");
 ABSL_FLAG(std::string, report, "", "Append one JSON line per episode to this file.");
 ABSL_FLAG(int, min_transitions, 200, "Transitions before the first model (at registration).");
 ABSL_FLAG(int, train_every, 500, "Retrain after this many new transitions (at registration).");
@@ -121,6 +124,8 @@ constexpr uint32_t kNeverByCount = 1000000000;
 // How every channel connects: plaintext, or TLS checked against --tls_ca (set once in main,
 // before the robots' threads start).
 std::shared_ptr<grpc::ChannelCredentials> g_credentials = grpc::InsecureChannelCredentials();
+// --tls_server_name (empty: the address's host).
+std::string g_tls_server_name;
 
 // `seed`: the robot's own random streams (its plans and training).
 v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed) {
@@ -214,7 +219,8 @@ bool RunRobot(const std::string& kind, int index) {
   bool registered = false;
   absl::StatusOr<foray::client::Identity> id = foray::client::RobotSession::LoadOrRegister(
       (state_dir / (name + ".token")).string(), absl::GetFlag(FLAGS_address), g_credentials,
-      absl::GetFlag(FLAGS_admin_token_file), SpecFor(sim, name, seed), &registered);
+      absl::GetFlag(FLAGS_admin_token_file), SpecFor(sim, name, seed), &registered,
+      g_tls_server_name);
   if (!id.ok()) {
     Say(absl::StrFormat("%s: %s", name, id.status().message()));
     return false;
@@ -229,6 +235,7 @@ bool RunRobot(const std::string& kind, int index) {
   options.safe_action.kind = foray::client::SafeAction::Kind::kLastAction;
   options.client_name = "foray-sim/0.1";
   options.credentials = g_credentials;
+  options.tls_server_name = g_tls_server_name;
   foray::client::RobotSession session(options);
   if (absl::Status s = session.WaitConnected(absl::Seconds(30)); !s.ok()) {
     Say(absl::StrFormat("%s: %s (delete %s to register anew)", name, s.message(),
@@ -256,8 +263,10 @@ bool RunRobot(const std::string& kind, int index) {
   const absl::Duration wait =
       realtime ? std::max(deadline, absl::Seconds(sim.control_period_s())) : deadline + absl::Seconds(10);
   std::mt19937_64 rng(absl::GetFlag(FLAGS_seed) * 7919 + index);
-  auto models =
-      v1::Models::NewStub(grpc::CreateChannel(absl::GetFlag(FLAGS_address), g_credentials));
+  grpc::ChannelArguments channel_args;
+  if (!g_tls_server_name.empty()) channel_args.SetSslTargetNameOverride(g_tls_server_name);
+  auto models = v1::Models::NewStub(
+      grpc::CreateCustomChannel(absl::GetFlag(FLAGS_address), g_credentials, channel_args));
 
   const int evaluate_every = absl::GetFlag(FLAGS_evaluate_every);
   const int round_size = std::max(1, absl::GetFlag(FLAGS_evaluation_episodes));
@@ -427,6 +436,10 @@ int main(int argc, char** argv) {
     grpc::SslCredentialsOptions tls;
     tls.pem_root_certs = std::move(pem);
     g_credentials = grpc::SslCredentials(tls);
+    g_tls_server_name = absl::GetFlag(FLAGS_tls_server_name);
+  } else if (!absl::GetFlag(FLAGS_tls_server_name).empty()) {
+    std::fprintf(stderr, "foray-sim: --tls_server_name needs --tls_ca\n");
+    return 2;
   }
   for (const std::string& kind : kinds) {
     absl::StatusOr<std::unique_ptr<Scenario>> scenario = foray::sim::MakeScenario(kind, 0);

@@ -142,12 +142,23 @@ def test_sim_over_tls(tmp_path):
     # channel is refused; a CA file that is not PEM is a usage error naming the file.
     from conftest import tls_forayd
 
-    server, cert = tls_forayd(tmp_path)
+    server, cert = tls_forayd(tmp_path, "IP:127.0.0.1,DNS:foray.lab")
     try:
         secure = run_sim(server, f"--tls_ca={cert}", "--robots=gantry", "--episodes=1", "--steps=20",
                          "--name_prefix=tls")
         assert secure.returncode == 0, secure.stdout + secure.stderr
         assert "tls-gantry-1 exploration episode 1" in secure.stdout
+        # The certificate's DNS name instead of the address's host: registration, the session's
+        # stream and Predict all check it; a name the certificate does not hold is refused.
+        named = run_sim(server, f"--tls_ca={cert}", "--tls_server_name=foray.lab", "--robots=gantry",
+                        "--episodes=1", "--steps=20", "--name_prefix=named")
+        assert named.returncode == 0, named.stdout + named.stderr
+        assert "named-gantry-1 exploration episode 1" in named.stdout
+        wrong = run_sim(server, f"--tls_ca={cert}", "--tls_server_name=other.lab", "--robots=gantry",
+                        "--episodes=1", "--steps=5", "--name_prefix=wrong")
+        assert wrong.returncode == 1, wrong.stdout + wrong.stderr
+        alone = run_sim(server, "--tls_server_name=foray.lab", "--robots=gantry", "--episodes=1")
+        assert alone.returncode == 2 and "--tls_server_name needs --tls_ca" in alone.stderr
         plain = run_sim(server, "--robots=gantry", "--episodes=1", "--steps=5", "--name_prefix=plain")
         assert plain.returncode == 1, plain.stdout + plain.stderr
         not_pem = tmp_path / "ca.txt"
