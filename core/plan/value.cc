@@ -88,10 +88,15 @@ absl::StatusOr<StateValue> StateValue::Fit(const float* next_states, int rows, i
     }
   }
   StateValue v;
-  const Eigen::RowVectorXd mean = x.cast<double>().colwise().mean();
-  const Eigen::RowVectorXd var =
-      (x.cast<double>().rowwise() - mean).array().square().colwise().mean();
-  v.mean_ = mean.transpose().cast<float>();
+  // Two passes in double, a row at a time (no copy of the rows: this runs under the robot's lock).
+  Eigen::VectorXd mean = Eigen::VectorXd::Zero(state_dim), var = Eigen::VectorXd::Zero(state_dim);
+  for (int i = 0; i < rows; ++i) mean += x.row(i).transpose().cast<double>();
+  mean /= rows;
+  for (int i = 0; i < rows; ++i) {
+    var += (x.row(i).transpose().cast<double>() - mean).array().square().matrix();
+  }
+  var /= rows;
+  v.mean_ = mean.cast<float>();
   v.inv_std_.resize(state_dim);
   // A dimension that never changed carries no distance (any state matches it).
   for (int k = 0; k < state_dim; ++k) {
