@@ -18,7 +18,8 @@ they have no evaluation. Per run it records the exploration
 episode of first reward (the hidden goal discovered), the state-space coverage after each
 exploration episode (fraction of occupied cells of a 20x20 grid over the robot's two coverage
 dimensions, read from the SQLite store), returns, objects lost (episodes that ended in a
-terminal state), the evaluation success per round, the final model's holdout error, wall time
+terminal state), the evaluation success per round and each evaluation episode's outcome and
+stored states (to tell how it failed), the final model's holdout error, wall time
 and plans, and how many model plans their deadline cut short of their CEM iterations (give a
 deadline long enough for none, and the planners do the same work on any machine: foray-sim
 waits for each plan, the simulation's clock is its own). Writes exploration_bench.json, prints
