@@ -61,6 +61,12 @@ ABSL_FLAG(double, terminal_value, 0.0,
 ABSL_FLAG(double, value_weight, 0.0,
           "Objective weight of the value of the states a plan ends in (what the robot's episodes "
           "earned after them); 0: plans see reward only within their horizon (at registration).");
+ABSL_FLAG(std::string, value_estimate, "average",
+          "average: the value of a state is the average return seen after states near it; best: "
+          "the best one seen (at registration).");
+ABSL_FLAG(double, evaluation_value_weight, 0.0,
+          "Objective weight of the value in evaluation plans only (a per-request override); 0: "
+          "the robot's value_weight.");
 ABSL_FLAG(std::string, strategy, "explore",
           "explore: plans with reward + information gain; reward: information weight 0; "
           "noise: no model, the nominal controller's action plus Gaussian noise; random: no "
@@ -196,6 +202,9 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
   if (absl::GetFlag(FLAGS_value_weight) != 0.0) {
     spec.mutable_objective()->set_value_weight(absl::GetFlag(FLAGS_value_weight));
   }
+  if (absl::GetFlag(FLAGS_value_estimate) == "best") {
+    spec.mutable_objective()->set_value_estimate(v1::VALUE_ESTIMATE_BEST);
+  }
   for (int i : s.coverage_indices()) spec.add_coverage_indices(i);
   for (double v : s.coverage_lower()) spec.add_coverage_lower(v);
   for (double v : s.coverage_upper()) spec.add_coverage_upper(v);
@@ -271,6 +280,7 @@ bool RunRobot(const std::string& kind, int index) {
   const int evaluate_every = absl::GetFlag(FLAGS_evaluate_every);
   const int round_size = std::max(1, absl::GetFlag(FLAGS_evaluation_episodes));
   const int evaluation_horizon = absl::GetFlag(FLAGS_evaluation_horizon);
+  const double evaluation_value_weight = absl::GetFlag(FLAGS_evaluation_value_weight);
   int explored_since_evaluation = 0, evaluated_in_round = 0;
   uint64_t known_model = 0;  // the newest model version a plan came from
   for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
@@ -288,6 +298,8 @@ bool RunRobot(const std::string& kind, int index) {
     choices.episode = episode_id;
     if (evaluation && evaluation_horizon > 0)
       choices.planner.emplace().set_horizon(evaluation_horizon);
+    if (evaluation && evaluation_value_weight != 0.0)
+      choices.objective.emplace().set_value_weight(evaluation_value_weight);
     bool lost = false;
     Eigen::VectorXd state = sim.Reset();
     std::vector<double> previous(action_dim, 0.0);
@@ -420,6 +432,10 @@ int main(int argc, char** argv) {
     return 2;
   }
   const std::string strategy = absl::GetFlag(FLAGS_strategy);
+  if (const std::string e = absl::GetFlag(FLAGS_value_estimate); e != "average" && e != "best") {
+    std::fprintf(stderr, "foray-sim: --value_estimate is \"%s\"; use average or best\n", e.c_str());
+    return 2;
+  }
   if (strategy != "explore" && strategy != "reward" && strategy != "noise" && strategy != "random") {
     std::fprintf(stderr, "foray-sim: --strategy is \"%s\"; use explore, reward, noise or random\n",
                  strategy.c_str());

@@ -165,6 +165,9 @@ absl::Status ObjectiveOptions::Validate(int state_dim, int action_dim) const {
     return absl::InvalidArgumentError(
         absl::StrFormat("value_discount is %g, must be in (0, 1)", value_discount));
   }
+  if (value_estimate != ValueEstimate::kAverage && value_estimate != ValueEstimate::kBest) {
+    return absl::InvalidArgumentError("value_estimate is not a known estimate");
+  }
   if (absl::Status s = known_termination.Validate(state_dim); !s.ok()) return s;
   return known_reward.Validate(state_dim, action_dim);
 }

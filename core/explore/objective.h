@@ -63,6 +63,13 @@ struct KnownTermination {
   void Evaluate(const float* next_states, int state_stride, int rows, float* out) const;
 };
 
+// How the value of a state is estimated from the returns seen after nearby states
+// (core/plan/value.h).
+enum class ValueEstimate {
+  kAverage = 0,  // the average continuation (Nadaraya-Watson): what the data's policy earned
+  kBest = 1,     // the best continuation seen
+};
+
 struct ObjectiveOptions {
   double reward_weight = 1.0;       // w_r, per reward unit
   double information_weight = 1.0;  // w_i, per nat
@@ -89,6 +96,7 @@ struct ObjectiveOptions {
   double value_weight = 0.0;
   // gamma_v of the returns the value is fitted to, in (0, 1) (plan::ValueOptions::discount).
   double value_discount = 0.95;
+  ValueEstimate value_estimate = ValueEstimate::kAverage;
 
   absl::Status Validate(int state_dim, int action_dim) const;
 };

@@ -37,6 +37,9 @@ absl::Status ValueOptions::Validate() const {
     return absl::InvalidArgumentError(
         absl::StrFormat("value prior_weight is %g, must be finite and > 0", prior_weight));
   }
+  if (estimate != ValueEstimate::kAverage && estimate != ValueEstimate::kBest) {
+    return absl::InvalidArgumentError("value estimate is neither average nor best");
+  }
   if (max_points < 1 || max_points > 1000000) {
     return absl::InvalidArgumentError(
         absl::StrFormat("value max_points is %d, must be in 1..1000000", max_points));
@@ -102,14 +105,25 @@ absl::StatusOr<StateValue> StateValue::Fit(const float* next_states, int rows, i
   for (int k = 0; k < state_dim; ++k) {
     v.inv_std_[k] = var[k] > 1e-12 ? static_cast<float>(1.0 / std::sqrt(var[k])) : 0.0f;
   }
-  std::vector<int> moving, still;
-  for (int i = 0; i < rows; ++i) (returns[i] != 0.0 ? moving : still).push_back(i);
   std::vector<int> kept;
   std::vector<float> weights;
-  const int half = options.max_points / 2;
-  const int moving_keep = std::max(half, options.max_points - static_cast<int>(still.size()));
-  KeepEvenly(moving, moving_keep, &kept, &weights);
-  KeepEvenly(still, options.max_points - static_cast<int>(kept.size()), &kept, &weights);
+  if (options.estimate == ValueEstimate::kBest) {
+    // Only a positive return can be the best; the largest first.
+    for (int i = 0; i < rows; ++i) {
+      if (returns[i] > 0.0) kept.push_back(i);
+    }
+    std::stable_sort(kept.begin(), kept.end(),
+                     [&](int a, int b) { return returns[a] > returns[b]; });
+    if (static_cast<int>(kept.size()) > options.max_points) kept.resize(options.max_points);
+    weights.assign(kept.size(), 1.0f);
+  } else {
+    std::vector<int> moving, still;
+    for (int i = 0; i < rows; ++i) (returns[i] != 0.0 ? moving : still).push_back(i);
+    const int half = options.max_points / 2;
+    const int moving_keep = std::max(half, options.max_points - static_cast<int>(still.size()));
+    KeepEvenly(moving, moving_keep, &kept, &weights);
+    KeepEvenly(still, options.max_points - static_cast<int>(kept.size()), &kept, &weights);
+  }
   const int m = static_cast<int>(kept.size());
   v.points_.resize(m, state_dim);
   v.weight_.resize(m);
@@ -122,6 +136,7 @@ absl::StatusOr<StateValue> StateValue::Fit(const float* next_states, int rows, i
   v.bandwidth_ = std::pow(static_cast<double>(rows), -1.0 / (state_dim + 4));
   v.inv_two_h2_ = static_cast<float>(1.0 / (2.0 * v.bandwidth_ * v.bandwidth_));
   v.prior_ = static_cast<float>(options.prior_weight);
+  v.estimate_ = options.estimate;
   return v;
 }
 
@@ -132,7 +147,15 @@ void StateValue::Evaluate(const float* states, int stride, int rows, float* out)
   for (int r = 0; r < rows; ++r) {
     const float* s = states + static_cast<std::ptrdiff_t>(r) * stride;
     for (int j = 0; j < d; ++j) z[j] = (s[j] - mean_[j]) * inv_std_[j];
+    if (points() == 0) {  // kBest with no positive return: nothing seen is worth seeking
+      out[r] = 0.0f;
+      continue;
+    }
     k = ((points_.rowwise() - z).rowwise().squaredNorm() * -inv_two_h2_).array().exp();
+    if (estimate_ == ValueEstimate::kBest) {
+      out[r] = std::max(0.0f, (k.array() * value_.array()).maxCoeff());
+      continue;
+    }
     k.array() *= weight_.array();
     out[r] = k.dot(value_) / (prior_ + k.sum());
   }

@@ -22,6 +22,16 @@
 // G = 0 each keep up to half the points (what one group leaves unused goes to the other), at an
 // even stride, each kept point weighted by the rows it stands for (w_i); below it every w_i is 1.
 //
+// That average is what the policy that gathered the data earned after states near x. Where
+// that policy mostly failed (an exploring robot that loses the object more often than it parks
+// it), the average says "don't go there" even where a success was seen. The best estimate
+// instead takes the best continuation seen near x,
+//   V_best(x) = max(0, max_i K(x, x_i) G_i),
+// (in the spirit of episodic control: Blundell et al. 2016, "Model-Free Episodic Control",
+// which keeps the highest return seen after a state); losses are left to the rollout's own
+// termination within the horizon. Its points are the rows with G > 0 (the largest first when
+// there are more than max_points).
+//
 // Immutable once built; Evaluate is safe from several threads.
 #ifndef FORAY_CORE_PLAN_VALUE_H_
 #define FORAY_CORE_PLAN_VALUE_H_
@@ -31,11 +41,15 @@
 
 #include "Eigen/Core"
 #include "absl/status/statusor.h"
+#include "core/explore/objective.h"
 #include "core/util/matrix.h"
 
 namespace foray::plan {
 
+using ValueEstimate = explore::ValueEstimate;  // kAverage or kBest (objective.h)
+
 struct ValueOptions {
+  ValueEstimate estimate = ValueEstimate::kAverage;
   // gamma_v of the returns, in (0, 1): 0.95 weighs about the next 20 steps (a Foray default,
   // not a published value).
   double discount = 0.95;
@@ -78,6 +92,7 @@ class StateValue {
   Eigen::VectorXf mean_, inv_std_;  // (state_dim)
   RowMatrixXf points_;              // (points, state_dim), standardised
   Eigen::VectorXf weight_, value_;  // (points)
+  ValueEstimate estimate_ = ValueEstimate::kAverage;
   float inv_two_h2_ = 0.0f;
   float prior_ = 1.0f;
   double bandwidth_ = 0.0;

@@ -179,6 +179,19 @@ absl::Status ApplyObjectiveSettings(const v1::ObjectiveSettings& s, int state_di
   if (s.has_observation_noise()) o->observation_noise = s.observation_noise();
   if (s.has_value_weight()) o->value_weight = s.value_weight();
   if (s.has_value_discount()) o->value_discount = s.value_discount();
+  switch (s.value_estimate()) {
+    case v1::VALUE_ESTIMATE_UNSPECIFIED:
+      break;
+    case v1::VALUE_ESTIMATE_AVERAGE:
+      o->value_estimate = explore::ValueEstimate::kAverage;
+      break;
+    case v1::VALUE_ESTIMATE_BEST:
+      o->value_estimate = explore::ValueEstimate::kBest;
+      break;
+    default:
+      return Invalid(absl::StrFormat("objective.value_estimate is %d, not a known value",
+                                     static_cast<int>(s.value_estimate())));
+  }
   if (s.has_known_termination()) {
     const v1::KnownTermination& k = s.known_termination();
     explore::KnownTermination known;

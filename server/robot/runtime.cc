@@ -366,7 +366,8 @@ void RobotRuntime::RefitValue() {
   // O(rows x state_dim) under the lock, once per published version. The options come from a
   // validated objective, so a failure here is a bug.
   absl::StatusOr<std::shared_ptr<const plan::StateValue>> value =
-      dataset_.FitValue({.discount = config_.objective.value_discount,
+      dataset_.FitValue({.estimate = config_.objective.value_estimate,
+                         .discount = config_.objective.value_discount,
                          .terminal_value = config_.objective.terminal_value});
   value_ = value.ok() ? *std::move(value) : nullptr;
 }

@@ -191,6 +191,22 @@ def test_plans_add_the_value_of_where_they_end(forayd):
     bad = spec("badly-valued", 2, 1)
     bad.objective.value_weight = math.nan
     expect_error(CODE.INVALID_ARGUMENT, "value_weight is nan", c.register, bad)
+    bad = spec("badly-valued", 2, 1)
+    bad.objective.value_estimate = 7
+    expect_error(CODE.INVALID_ARGUMENT, "objective.value_estimate is 7", c.register, bad)
+
+    # The best continuation seen: never below 0 (a loss nearby does not count against a state).
+    best = spec("best-valued", 2, 1, min_transitions=100, every_n=100000)
+    best.objective.value_weight = 1.0
+    best.objective.terminal_value = -5.0
+    best.objective.value_estimate = t.VALUE_ESTIMATE_BEST
+    robot = c.register(best)
+    c.append(robot, cliff(1, 12))
+    c.wait_model(robot.robot.robot_id, 1)
+    near_edge = c.plan(robot, [0.85, 0.0], deadline_ms=500, evaluate=True)
+    assert near_edge.value_beyond >= 0.0
+    start = c.plan(robot, [0.3, 0.0], deadline_ms=500, evaluate=True)
+    assert start.value_beyond > 0.1, start.value_beyond
 
 
 def test_bad_termination_settings_are_refused_by_name(forayd):

@@ -112,6 +112,37 @@ TEST(ValueTest, TheSubsampleKeepsRareReturnsAndWeighsTheRest) {
   EXPECT_GT(b[0], 10 * b[2]);  // the value is where the reward followed
 }
 
+TEST(ValueTest, TheBestEstimateTakesTheBestContinuationSeenNearby) {
+  // 1-D states 0, 1, 2 with returns 3, -10, 1 (std sqrt(2/3), h = 3^(-1/5)): the best estimate
+  // is max(0, max_i K(x, x_i) G_i); only the two positive rows are kept.
+  const std::vector<float> x = {0.0f, 1.0f, 2.0f};
+  ValueOptions options;
+  options.estimate = ValueEstimate::kBest;
+  const auto best = StateValue::Fit(x.data(), 3, 1, {3.0, -10.0, 1.0}, options);
+  ASSERT_TRUE(best.ok()) << best.status();
+  EXPECT_EQ(best->points(), 2);
+  const double sd = std::sqrt(2.0 / 3.0), h = std::pow(3.0, -0.2);
+  auto kernel = [&](double d) { return std::exp(-(d / sd) * (d / sd) / (2 * h * h)); };
+  const std::vector<float> queries = {0.0f, 1.0f, 2.0f, 9.0f};
+  std::vector<float> got(4);
+  best->Evaluate(queries.data(), 1, 4, got.data());
+  EXPECT_NEAR(got[0], 3.0, 1e-6);
+  EXPECT_NEAR(got[1], std::max(3.0 * kernel(1.0), 1.0 * kernel(1.0)), 1e-6);  // the loss ignored
+  EXPECT_NEAR(got[2], std::max(3.0 * kernel(2.0), 1.0), 1e-6);
+  EXPECT_NEAR(got[3], 0.0, 1e-6);
+  // The average estimate at the loss's own state is negative: it says "avoid".
+  const auto average = StateValue::Fit(x.data(), 3, 1, {3.0, -10.0, 1.0}, ValueOptions());
+  float at_loss = 0;
+  average->Evaluate(&queries[1], 1, 1, &at_loss);
+  EXPECT_LT(at_loss, -1.0f);
+  // No positive return anywhere: nothing is worth seeking.
+  const auto none = StateValue::Fit(x.data(), 3, 1, {0.0, -10.0, 0.0}, options);
+  ASSERT_TRUE(none.ok());
+  EXPECT_EQ(none->points(), 0);
+  none->Evaluate(queries.data(), 1, 4, got.data());
+  for (float v : got) EXPECT_EQ(v, 0.0f);
+}
+
 TEST(ValueTest, BadInputIsNamed) {
   std::vector<float> x = {0.0f, 1.0f};
   ValueOptions bad;
