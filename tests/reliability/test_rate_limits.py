@@ -94,5 +94,9 @@ def test_a_client_streaming_faster_than_its_limit_loses_nothing(limited):
         session.flush(60)
         stats = session.stats()
         assert stats["durable_seq"] == 4000 and stats["rejected"] == 0
-        assert stats["connects"] >= 2  # refused groups end the session; the client came back
+        # Whether the server refused a group on the way (the session then ends and the client
+        # comes back: connects >= 2) depends on how the transitions arrive: a group that finds
+        # tokens in the bucket passes whole, into debt (the test above), and under load the
+        # client's messages can reach the server as a few large groups. Either way nothing is lost
+        # (above and below).
     assert stored(limited, identity.robot_id) == (4000, 4000, 4000)
