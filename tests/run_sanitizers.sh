@@ -34,7 +34,10 @@ cmake -S . -B build-tsan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo \
 cmake --build build-tsan --parallel "$(nproc)"
 # The server binary must load the TSan Abseil, or every Mutex is invisible and the run means
 # nothing.
-if ! ldd build-tsan/server/forayd | grep -q "libabsl_synchronization.so.* => $PWD/build-tsan-abseil/prefix/lib/"; then
+# (ldd's output is read whole first: grep -q stops at the first match, and under pipefail the
+# SIGPIPE that ldd may then get would fail the check.)
+loaded="$(ldd build-tsan/server/forayd)"
+if ! grep -q "libabsl_synchronization.so.* => $PWD/build-tsan-abseil/prefix/lib/" <<<"$loaded"; then
   echo "build-tsan/server/forayd does not load the TSan Abseil" >&2
   exit 1
 fi
