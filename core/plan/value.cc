@@ -141,16 +141,16 @@ absl::StatusOr<StateValue> StateValue::Fit(const float* next_states, int rows, i
 }
 
 void StateValue::Evaluate(const float* states, int stride, int rows, float* out) const {
+  if (points() == 0) {  // kBest with no positive return: nothing seen is worth seeking
+    std::fill(out, out + rows, 0.0f);
+    return;
+  }
   const int d = state_dim();
   Eigen::RowVectorXf z(d);
   Eigen::VectorXf k(points());
   for (int r = 0; r < rows; ++r) {
     const float* s = states + static_cast<std::ptrdiff_t>(r) * stride;
     for (int j = 0; j < d; ++j) z[j] = (s[j] - mean_[j]) * inv_std_[j];
-    if (points() == 0) {  // kBest with no positive return: nothing seen is worth seeking
-      out[r] = 0.0f;
-      continue;
-    }
     k = ((points_.rowwise() - z).rowwise().squaredNorm() * -inv_two_h2_).array().exp();
     if (estimate_ == ValueEstimate::kBest) {
       out[r] = std::max(0.0f, (k.array() * value_.array()).maxCoeff());

@@ -359,12 +359,8 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
 }
 
 void RobotRuntime::RefitValue() {
-  if (dataset_.size() == 0) {
-    value_ = nullptr;
-    return;
-  }
   // O(rows x state_dim) under the lock, once per published version. The options come from a
-  // validated objective, so a failure here is a bug.
+  // validated objective, so the fit fails only without rows (then there is no value).
   absl::StatusOr<std::shared_ptr<const plan::StateValue>> value =
       dataset_.FitValue({.estimate = config_.objective.value_estimate,
                          .discount = config_.objective.value_discount,
