@@ -38,8 +38,9 @@ enum class Act { kNone, kSilu, kRelu, kTanh };
 
 // y (rows, ldy) = act(x (rows, ldx) * w (k, ldw) + bias (ldw)), all row-major; ldw a multiple of
 // kPadFloats, and y's rows at least ldw wide. Every ldw column of y is written.
-// Silu is z * sigmoid(z) with e^x from a Cody-Waite reduced polynomial (1 ulp) and the
-// reciprocal from the target's estimate refined by one Newton step (relative error about 1e-7).
+// Silu is z * sigmoid(z) with e^-z from a range reduction and a degree-5 polynomial and the
+// reciprocal from the target's estimate refined by one Newton step (error at most about 3e-7
+// max(1, |silu|); see the kernel).
 void Dense(const float* x, int ldx, int rows, int k, const float* w, int ldw, const float* bias,
            float* y, int ldy, Act act);
 
@@ -54,8 +55,9 @@ void Gemm(int m, int n, int k, const float* a, ptrdiff_t a_row, ptrdiff_t a_col,
           ptrdiff_t b_row, ptrdiff_t b_col, const float* row_bias, float* c, int ldc);
 
 // In place over n values: z <- act(z), and slope <- act'(z) at the old z (what back-propagation
-// multiplies by). Silu as in Dense; relu's slope is 1 where z > 0 and 0 elsewhere; tanh's is
-// 1 - tanh(z)^2.
+// multiplies by). Silu from the exponential of simd_math-inl.h and a correctly rounded division
+// (1 - sigmoid multiplies silu(z) in the slope); relu's slope is 1 where z > 0 and 0 elsewhere;
+// tanh's is 1 - tanh(z)^2.
 void ActivateWithSlope(Act act, float* z, float* slope, size_t n);
 
 // The learned log-variance bounds in place, element by element over n values:
