@@ -64,6 +64,9 @@ ABSL_FLAG(double, value_weight, 0.0,
 ABSL_FLAG(std::string, value_estimate, "average",
           "average: the value of a state is the average return seen after states near it; best: "
           "the best one seen (at registration).");
+ABSL_FLAG(std::string, reward_estimate, "model",
+          "model: a plan's expected reward is the ensemble's reward output; nearby: the rewards "
+          "received on arriving near each predicted state (at registration).");
 ABSL_FLAG(double, evaluation_value_weight, 0.0,
           "Objective weight of the value in evaluation plans only (a per-request override); 0: "
           "the robot's value_weight.");
@@ -204,6 +207,9 @@ v1::RobotSpec SpecFor(const Scenario& s, const std::string& name, uint64_t seed)
   }
   if (absl::GetFlag(FLAGS_value_estimate) == "best") {
     spec.mutable_objective()->set_value_estimate(v1::VALUE_ESTIMATE_BEST);
+  }
+  if (absl::GetFlag(FLAGS_reward_estimate) == "nearby") {
+    spec.mutable_objective()->set_reward_estimate(v1::REWARD_ESTIMATE_NEARBY);
   }
   for (int i : s.coverage_indices()) spec.add_coverage_indices(i);
   for (double v : s.coverage_lower()) spec.add_coverage_lower(v);
@@ -434,6 +440,10 @@ int main(int argc, char** argv) {
   const std::string strategy = absl::GetFlag(FLAGS_strategy);
   if (const std::string e = absl::GetFlag(FLAGS_value_estimate); e != "average" && e != "best") {
     std::fprintf(stderr, "foray-sim: --value_estimate is \"%s\"; use average or best\n", e.c_str());
+    return 2;
+  }
+  if (const std::string e = absl::GetFlag(FLAGS_reward_estimate); e != "model" && e != "nearby") {
+    std::fprintf(stderr, "foray-sim: --reward_estimate is \"%s\"; use model or nearby\n", e.c_str());
     return 2;
   }
   if (strategy != "explore" && strategy != "reward" && strategy != "noise" && strategy != "random") {

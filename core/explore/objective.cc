@@ -168,6 +168,9 @@ absl::Status ObjectiveOptions::Validate(int state_dim, int action_dim) const {
   if (value_estimate != ValueEstimate::kAverage && value_estimate != ValueEstimate::kBest) {
     return absl::InvalidArgumentError("value_estimate is not a known estimate");
   }
+  if (reward_estimate != RewardEstimate::kModel && reward_estimate != RewardEstimate::kNearby) {
+    return absl::InvalidArgumentError("reward_estimate is not a known estimate");
+  }
   if (absl::Status s = known_termination.Validate(state_dim); !s.ok()) return s;
   return known_reward.Validate(state_dim, action_dim);
 }

@@ -70,6 +70,12 @@ enum class ValueEstimate {
   kBest = 1,     // the best continuation seen
 };
 
+// Where a plan's expected reward comes from when the reward is learned (no known_reward).
+enum class RewardEstimate {
+  kModel = 0,   // the ensemble's reward output under the particle's member
+  kNearby = 1,  // the rewards observed on arriving near the particle's sampled next state
+};
+
 struct ObjectiveOptions {
   double reward_weight = 1.0;       // w_r, per reward unit
   double information_weight = 1.0;  // w_i, per nat
@@ -97,6 +103,12 @@ struct ObjectiveOptions {
   // gamma_v of the returns the value is fitted to, in (0, 1) (plan::ValueOptions::discount).
   double value_discount = 0.95;
   ValueEstimate value_estimate = ValueEstimate::kAverage;
+  // kNearby: each step's reward is a kernel regression of the rewards the robot received on
+  // arriving at states near the predicted next state (plan::StateValue fitted to the rewards,
+  // core/plan/value.h), instead of the ensemble's reward output. A sparse reward (a zone met a
+  // handful of times in thousands of transitions) is one a network's mean fits poorly; the
+  // regression keeps every rewarded arrival. Ignored with a known_reward.
+  RewardEstimate reward_estimate = RewardEstimate::kModel;
 
   absl::Status Validate(int state_dim, int action_dim) const;
 };

@@ -44,6 +44,12 @@ absl::StatusOr<PlanResult> Plan(const RolloutModel& model, const PlanRequest& re
         absl::StrFormat("the state value has %d state dimensions, the model has %d",
                         options.rollout.value->state_dim(), model.state_dim()));
   }
+  if (options.rollout.nearby_reward != nullptr &&
+      options.rollout.nearby_reward->state_dim() != model.state_dim()) {
+    return absl::InvalidArgumentError(
+        absl::StrFormat("the nearby reward has %d state dimensions, the model has %d",
+                        options.rollout.nearby_reward->state_dim(), model.state_dim()));
+  }
   if (limits.dim() != model.action_dim()) {
     return absl::InvalidArgumentError(absl::StrFormat(
         "limits have %d action values, the model has %d", limits.dim(), model.action_dim()));

@@ -147,6 +147,12 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
   const int rows = candidates * particles;
   const std::ptrdiff_t seq_stride = static_cast<std::ptrdiff_t>(horizon) * ad;
   const bool learned_reward = objective.known_reward.kind == explore::KnownReward::Kind::kLearned;
+  const StateValue* nearby_reward =
+      learned_reward && objective.reward_estimate == explore::RewardEstimate::kNearby
+          ? options.nearby_reward.get()
+          : nullptr;
+  FORAY_CHECK(nearby_reward == nullptr || nearby_reward->state_dim() == sd,
+              "ScoreSequences: the nearby reward does not fit the model");
   const bool want_information = objective.information_weight != 0.0 || trace != nullptr;
   const StateBounds& bounds = options.state_bounds;
   FORAY_CHECK(bounds.Validate(sd).ok(), "ScoreSequences: state bounds do not fit the model");
@@ -278,7 +284,9 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
         ws->ends[r] = 1.0f / (1.0f + std::exp(-z));
       }
     }
-    if (!learned_reward) {
+    if (nearby_reward != nullptr) {
+      nearby_reward->Evaluate(ws->states.data(), sd, rows, ws->reward.data());
+    } else if (!learned_reward) {
       objective.known_reward.Evaluate(ws->states.data(), sd, ws->actions.data(), ad, rows, sd,
                                       ad, ws->reward.data());
     }

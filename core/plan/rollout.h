@@ -13,7 +13,8 @@
 //   J = (1/P) sum_p sum_t gamma^t [ s_{p,t} ( w_r r_{p,t} + w_i I_{p,t} )
 //                                   + (s_{p,t} - s_{p,t+1}) V_term ],
 // with r_{p,t} the expected reward under the particle's member (or the known reward at the
-// sampled next state) and V_term the objective's terminal_value: an ended episode earns no
+// sampled next state, or with the objective's reward_estimate kNearby the rewards received
+// near the sampled next state: RolloutOptions::nearby_reward) and V_term the objective's terminal_value: an ended episode earns no
 // further reward and no further information, and pays V_term once. With a state value given
 // (RolloutOptions::value, core/plan/value.h) and the objective's value_weight w_v not 0, a
 // candidate also earns what the data say follows the state it ends in:
@@ -193,6 +194,10 @@ struct RolloutOptions {
   // The value of the states a rollout ends in (read only when the objective's value_weight is
   // not 0); none by default; its state_dim is checked against the model's by Plan.
   std::shared_ptr<const StateValue> value;
+  // The rewards received on arriving near a state (a StateValue fitted to the rewards on the
+  // next states; read only when the objective's reward_estimate is kNearby and the reward is
+  // learned); none by default, and then the model's reward output stands in.
+  std::shared_ptr<const StateValue> nearby_reward;
   static constexpr int kMaxParticles = 1000;
   absl::Status Validate() const;
 };

@@ -4,6 +4,7 @@
 #include <cmath>
 
 #include "absl/strings/str_format.h"
+#include "core/plan/value_kernels.h"
 
 namespace foray::plan {
 namespace {
@@ -125,9 +126,12 @@ absl::StatusOr<StateValue> StateValue::Fit(const float* next_states, int rows, i
     KeepEvenly(still, options.max_points - static_cast<int>(kept.size()), &kept, &weights);
   }
   const int m = static_cast<int>(kept.size());
-  v.points_.resize(m, state_dim);
-  v.weight_.resize(m);
-  v.value_.resize(m);
+  // Padded to whole vectors of the kernel (value_kernels.h) with points of weight and value 0.
+  const int padded = (m + kPadPoints - 1) / kPadPoints * kPadPoints;
+  v.count_ = m;
+  v.points_ = Eigen::MatrixXf::Zero(padded, state_dim);
+  v.weight_ = Eigen::VectorXf::Zero(padded);
+  v.value_ = Eigen::VectorXf::Zero(padded);
   for (int j = 0; j < m; ++j) {
     v.points_.row(j) = (x.row(kept[j]) - v.mean_.transpose()).cwiseProduct(v.inv_std_.transpose());
     v.weight_[j] = weights[j];
@@ -141,23 +145,22 @@ absl::StatusOr<StateValue> StateValue::Fit(const float* next_states, int rows, i
 }
 
 void StateValue::Evaluate(const float* states, int stride, int rows, float* out) const {
-  if (points() == 0) {  // kBest with no positive return: nothing seen is worth seeking
+  // kBest with no positive return: nothing seen is worth seeking; with every value 0 (a sparse
+  // reward not met yet) the estimate is 0 everywhere.
+  if (points() == 0 || (value_.array() == 0.0f).all()) {
     std::fill(out, out + rows, 0.0f);
     return;
   }
   const int d = state_dim();
-  Eigen::RowVectorXf z(d);
-  Eigen::VectorXf k(points());
+  Eigen::VectorXf z(d);
+  const int padded = static_cast<int>(points_.rows());
   for (int r = 0; r < rows; ++r) {
     const float* s = states + static_cast<std::ptrdiff_t>(r) * stride;
     for (int j = 0; j < d; ++j) z[j] = (s[j] - mean_[j]) * inv_std_[j];
-    k = ((points_.rowwise() - z).rowwise().squaredNorm() * -inv_two_h2_).array().exp();
-    if (estimate_ == ValueEstimate::kBest) {
-      out[r] = std::max(0.0f, (k.array() * value_.array()).maxCoeff());
-      continue;
-    }
-    k.array() *= weight_.array();
-    out[r] = k.dot(value_) / (prior_ + k.sum());
+    float weighted = 0.0f, total = 0.0f, best = 0.0f;
+    simd::KernelSums(points_.data(), static_cast<size_t>(padded), padded, d, z.data(),
+                     inv_two_h2_, weight_.data(), value_.data(), &weighted, &total, &best);
+    out[r] = estimate_ == ValueEstimate::kBest ? best : weighted / (prior_ + total);
   }
 }
 

@@ -80,7 +80,7 @@ class StateValue {
                                         const ValueOptions& options);
 
   int state_dim() const { return static_cast<int>(mean_.size()); }
-  int points() const { return static_cast<int>(points_.rows()); }
+  int points() const { return count_; }
   // h, in standard deviations of the data.
   double bandwidth() const { return bandwidth_; }
   // V at `rows` states (rows, state_dim), row-major with row stride `stride`, robot units.
@@ -90,7 +90,10 @@ class StateValue {
   StateValue() = default;
 
   Eigen::VectorXf mean_, inv_std_;  // (state_dim)
-  RowMatrixXf points_;              // (points, state_dim), standardised
+  // Points padded to a multiple of kPadPoints (weight and value 0 past count_).
+  static constexpr int kPadPoints = 16;
+  int count_ = 0;
+  Eigen::MatrixXf points_;          // (padded points, state_dim), standardised, column-major
   Eigen::VectorXf weight_, value_;  // (points)
   ValueEstimate estimate_ = ValueEstimate::kAverage;
   float inv_two_h2_ = 0.0f;

@@ -192,6 +192,19 @@ absl::Status ApplyObjectiveSettings(const v1::ObjectiveSettings& s, int state_di
       return Invalid(absl::StrFormat("objective.value_estimate is %d, not a known value",
                                      static_cast<int>(s.value_estimate())));
   }
+  switch (s.reward_estimate()) {
+    case v1::REWARD_ESTIMATE_UNSPECIFIED:
+      break;
+    case v1::REWARD_ESTIMATE_MODEL:
+      o->reward_estimate = explore::RewardEstimate::kModel;
+      break;
+    case v1::REWARD_ESTIMATE_NEARBY:
+      o->reward_estimate = explore::RewardEstimate::kNearby;
+      break;
+    default:
+      return Invalid(absl::StrFormat("objective.reward_estimate is %d, not a known value",
+                                     static_cast<int>(s.reward_estimate())));
+  }
   if (s.has_known_termination()) {
     const v1::KnownTermination& k = s.known_termination();
     explore::KnownTermination known;

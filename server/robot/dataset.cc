@@ -58,6 +58,18 @@ absl::StatusOr<std::shared_ptr<const plan::StateValue>> DatasetMirror::FitValue(
   return std::make_shared<const plan::StateValue>(*std::move(value));
 }
 
+absl::StatusOr<std::shared_ptr<const plan::StateValue>> DatasetMirror::FitNearbyReward(
+    const plan::ValueOptions& options) const {
+  if (size() == 0) return absl::FailedPreconditionError("no transitions to learn rewards from");
+  plan::ValueOptions average = options;
+  average.estimate = plan::ValueEstimate::kAverage;
+  const std::vector<double> rewards(rewards_.begin(), rewards_.end());
+  absl::StatusOr<plan::StateValue> fit =
+      plan::StateValue::Fit(next_states_.data(), size(), state_dim_, rewards, average);
+  if (!fit.ok()) return fit.status();
+  return std::make_shared<const plan::StateValue>(*std::move(fit));
+}
+
 CoverageGrid::View DatasetMirror::Coverage(const CoverageGrid::Settings& settings) {
   return coverage_.Read(settings, next_states_, state_dim_);
 }

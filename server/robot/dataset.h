@@ -39,6 +39,11 @@ class DatasetMirror {
   // (bad options); FailedPrecondition with no rows.
   absl::StatusOr<std::shared_ptr<const plan::StateValue>> FitValue(
       const plan::ValueOptions& options) const;
+  // The rewards received on arriving near a state: each row's reward regressed on its next
+  // state (the average estimate of core/plan/value.h; options' estimate and discount are not
+  // used). Errors as FitValue's.
+  absl::StatusOr<std::shared_ptr<const plan::StateValue>> FitNearbyReward(
+      const plan::ValueOptions& options) const;
   // The coverage view's counts over the next states.
   CoverageGrid::View Coverage(const CoverageGrid::Settings& settings);
 

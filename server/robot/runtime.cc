@@ -358,6 +358,11 @@ absl::StatusOr<std::shared_ptr<const PublishedModel>> RobotRuntime::Publish(
   return published;
 }
 
+// Points of the nearby reward: it is evaluated at every step of every rollout (the value only at
+// the last), so it keeps a quarter of the value's 2,048; every rewarded row is kept up to half
+// of them, the unrewarded rows thinned evenly and weighted (core/plan/value.h).
+constexpr int kNearbyRewardPoints = 512;
+
 void RobotRuntime::RefitValue() {
   // O(rows x state_dim) under the lock, once per published version. The options come from a
   // validated objective, so the fit fails only without rows (then there is no value).
@@ -366,6 +371,8 @@ void RobotRuntime::RefitValue() {
                          .discount = config_.objective.value_discount,
                          .terminal_value = config_.objective.terminal_value});
   value_ = value.ok() ? *std::move(value) : nullptr;
+  absl::StatusOr<std::shared_ptr<const plan::StateValue>> reward = dataset_.FitNearbyReward({.max_points = kNearbyRewardPoints});
+  nearby_reward_ = reward.ok() ? *std::move(reward) : nullptr;
 }
 
 absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
@@ -379,6 +386,7 @@ absl::StatusOr<PlanOutcome> RobotRuntime::Plan(PlanInput input) {
     model = published_;
     config = config_;
     input.planner.rollout.value = value_;
+    input.planner.rollout.nearby_reward = nearby_reward_;
     warm = plan_state_.warm_start();
     count = plan_state_.Start();
   }

@@ -209,7 +209,9 @@ class RobotRuntime {
                                                                 model::TrainingReport report,
                                                                 double seconds);
   // Fits value_ to the dataset mirror's rows with the objective's value discount and
-  // terminal value (Publish and Load call it whenever a model is published).
+  // terminal value, and nearby_reward_ to their rewards (Publish and Load call it whenever a
+  // model is published; both are fitted whatever the robot's objective, so that a plan's
+  // override may ask for them).
   void RefitValue() ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
   // Counts one transition into the dataset mirror and the episode tracker.
   void AddTransition(const store::TransitionRecord& t) ABSL_EXCLUSIVE_LOCKS_REQUIRED(mu_);
@@ -234,6 +236,8 @@ class RobotRuntime {
   // The value of states beyond a plan's horizon, fitted to the rows there were when the
   // published model was (null before the first model or when the fit failed).
   std::shared_ptr<const plan::StateValue> value_ ABSL_GUARDED_BY(mu_);
+  // The rewards received near a state (objective reward_estimate kNearby), fitted likewise.
+  std::shared_ptr<const plan::StateValue> nearby_reward_ ABSL_GUARDED_BY(mu_);
   // The highest version of every stored checkpoint, readable or not.
   uint64_t highest_version_ ABSL_GUARDED_BY(mu_) = 0;
   std::vector<std::string> load_problems_ ABSL_GUARDED_BY(mu_);

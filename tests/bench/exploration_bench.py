@@ -119,6 +119,7 @@ def run_one(args, scenario, strategy, seed):
                  f"--evaluation_horizon={args.evaluation_horizon}",
                  f"--reward_nll_beta={args.reward_nll_beta}", f"--value_weight={args.value_weight}",
                  f"--value_estimate={args.value_estimate}",
+                 f"--reward_estimate={args.reward_estimate}",
                  f"--evaluation_value_weight={args.evaluation_value_weight}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
@@ -305,6 +306,8 @@ def parse_args(argv=None):
                         help="objective weight of the value of the states a plan ends in; 0: none")
     parser.add_argument("--value_estimate", default="average", choices=("average", "best"),
                         help="how the value is estimated (foray-sim --value_estimate)")
+    parser.add_argument("--reward_estimate", default="model", choices=("model", "nearby"),
+                        help="where a plan's expected reward comes from (foray-sim --reward_estimate)")
     parser.add_argument("--evaluation_value_weight", type=float, default=0.0,
                         help="the value's weight in evaluation plans only; 0: the robot's")
     parser.add_argument("--no-plots", action="store_true")
