@@ -209,6 +209,38 @@ def test_plans_add_the_value_of_where_they_end(forayd):
     assert start.value_beyond > 0.1, start.value_beyond
 
 
+def test_plans_can_take_rewards_from_where_the_robot_received_them(forayd):
+    # The objective's reward_estimate NEARBY: a plan's expected reward is the rewards received
+    # on arriving near each predicted state (a kernel regression refitted with every model),
+    # not the model's reward output.
+    c = Client(forayd)
+    walker = spec("rewarded-nearby", 2, 1, min_transitions=100, every_n=100000)
+    walker.objective.reward_estimate = t.REWARD_ESTIMATE_NEARBY
+    robot = c.register(walker)
+    rid = robot.robot.robot_id
+    c.append(robot, cliff(1, 12))
+    c.wait_model(rid, 1)
+    # Just short of the zone [0.5, 0.8]: plans that walk in see the rewards received there.
+    nearby = c.plan(robot, [0.45, 0.5], deadline_ms=500, evaluate=True)
+    assert nearby.expected_return > 1.0, nearby.expected_return
+    # Far past the edge no transition ever arrived: nothing nearby was rewarded.
+    away = c.plan(robot, [5.0, 0.0], deadline_ms=500, evaluate=True)
+    assert abs(away.expected_return) < 0.05, away.expected_return
+    # A plan's override can ask for the model's reward instead: a different estimate.
+    model = c.plan(robot, [0.45, 0.5], deadline_ms=500, evaluate=True,
+                   objective=t.ObjectiveSettings(reward_estimate=t.REWARD_ESTIMATE_MODEL))
+    assert model.expected_return != pytest.approx(nearby.expected_return, rel=1e-3)
+    # After a restart the nearby reward is fitted again to the stored transitions.
+    forayd.restart()
+    c = Client(forayd)
+    again = c.plan(robot, [0.45, 0.5], deadline_ms=500, evaluate=True)
+    assert again.expected_return > 1.0, again.expected_return
+
+    bad = spec("badly-rewarded", 2, 1)
+    bad.objective.reward_estimate = 7
+    expect_error(CODE.INVALID_ARGUMENT, "objective.reward_estimate is 7", c.register, bad)
+
+
 def test_bad_termination_settings_are_refused_by_name(forayd):
     c = Client(forayd)
     bad = spec("badly", 2, 1)

@@ -2,7 +2,8 @@
 // hand from their definition), the Nadaraya-Watson regression (Wasserman, "All of
 // Nonparametric Statistics", 2006, eq. 5.52, computed here directly in double precision),
 // Scott's bandwidth factor n^(-1/(d+4)) (Scott 1992, eq. 6.42; the factor scipy's gaussian_kde
-// uses by default), the subsample's weights, and the rollout's term w_v gamma^H E[s_H V(x_H)].
+// uses by default), the subsample's weights, and the rollout's term w_v gamma^H E[s_H V(x_H)];
+// the same regression of the rewards as a plan's nearby reward, summed over the horizon.
 #include "core/plan/value.h"
 
 #include <cmath>
@@ -11,6 +12,7 @@
 #include "core/plan/planner.h"
 #include "core/plan/rollout.h"
 #include "gtest/gtest.h"
+#include "tests/testing/simd_targets.h"
 
 namespace foray::plan {
 namespace {
@@ -68,22 +70,62 @@ TEST(ValueTest, MatchesTheNadarayaWatsonEstimateWithScottsBandwidth) {
   }
   const std::vector<float> queries = {0.2f, -0.5f, 1.1f, 3.0f, 0.6f, 1.0f, 5.0f, 20.0f};
   std::vector<float> got(4);
-  value->Evaluate(queries.data(), d, 4, got.data());
-  for (int q = 0; q < 4; ++q) {
-    double num = 0, den = 0.25;
-    for (int i = 0; i < n; ++i) {
-      double dist2 = 0;
-      for (int k = 0; k < d; ++k) {
-        dist2 += std::pow((queries[q * d + k] - x[i * d + k]) / sd[k], 2);
+  testing::ForEachSimdTarget([&] {
+    value->Evaluate(queries.data(), d, 4, got.data());
+    for (int q = 0; q < 4; ++q) {
+      double num = 0, den = 0.25;
+      for (int i = 0; i < n; ++i) {
+        double dist2 = 0;
+        for (int k = 0; k < d; ++k) {
+          dist2 += std::pow((queries[q * d + k] - x[i * d + k]) / sd[k], 2);
+        }
+        const double kernel = std::exp(-dist2 / (2 * h * h));
+        num += kernel * g[i];
+        den += kernel;
       }
-      const double kernel = std::exp(-dist2 / (2 * h * h));
-      num += kernel * g[i];
-      den += kernel;
+      EXPECT_NEAR(got[q], num / den, 1e-5 * (1 + std::abs(num / den))) << "query " << q;
     }
-    EXPECT_NEAR(got[q], num / den, 1e-5 * (1 + std::abs(num / den))) << "query " << q;
+    // Far from every state the pseudo-observation wins: the value falls to 0.
+    EXPECT_NEAR(got[3], 0.0, 1e-6);
+  });
+}
+
+// Points not filling whole vectors (13 of them): the padding counts for nothing, on every target.
+TEST(ValueTest, ThePaddingPointsCountForNothing) {
+  const int n = 13;
+  std::vector<float> x(n);
+  std::vector<double> g(n);
+  for (int i = 0; i < n; ++i) {
+    x[i] = static_cast<float>(0.1 * i);
+    g[i] = i % 3 == 0 ? 2.0 : -1.0;
   }
-  // Far from every state the pseudo-observation wins: the value falls to 0.
-  EXPECT_NEAR(got[3], 0.0, 1e-6);
+  ValueOptions average;
+  const auto value = StateValue::Fit(x.data(), n, 1, g, average);
+  ValueOptions best_options;
+  best_options.estimate = ValueEstimate::kBest;
+  const auto best = StateValue::Fit(x.data(), n, 1, g, best_options);
+  ASSERT_TRUE(value.ok() && best.ok());
+  double mean = 0, var = 0;
+  for (float v : x) mean += v / n;
+  for (float v : x) var += (v - mean) * (v - mean) / n;
+  const double h = std::pow(n, -1.0 / 5.0), sd = std::sqrt(var);
+  const std::vector<float> queries = {-0.3f, 0.0f, 0.55f, 1.2f, 3.0f};
+  testing::ForEachSimdTarget([&] {
+    std::vector<float> got(queries.size()), got_best(queries.size());
+    value->Evaluate(queries.data(), 1, static_cast<int>(queries.size()), got.data());
+    best->Evaluate(queries.data(), 1, static_cast<int>(queries.size()), got_best.data());
+    for (size_t q = 0; q < queries.size(); ++q) {
+      double num = 0, den = 1.0, top = 0.0;
+      for (int i = 0; i < n; ++i) {
+        const double k = std::exp(-std::pow((queries[q] - x[i]) / sd, 2) / (2 * h * h));
+        num += k * g[i];
+        den += k;
+        top = std::max(top, k * g[i]);
+      }
+      EXPECT_NEAR(got[q], num / den, 1e-5 * (1 + std::abs(num / den))) << "query " << q;
+      EXPECT_NEAR(got_best[q], top, 1e-5 * (1 + top)) << "query " << q;
+    }
+  });
 }
 
 TEST(ValueTest, TheSubsampleKeepsRareReturnsAndWeighsTheRest) {
@@ -230,6 +272,76 @@ TEST(ValueTest, TheRolloutAddsTheDiscountedValueOfWhereItEnds) {
   const auto plan = Plan(model, request);
   ASSERT_FALSE(plan.ok());
   EXPECT_NE(plan.status().message().find("state value has 3 state dimensions, the model has 2"),
+            std::string::npos)
+      << plan.status();
+}
+
+// The nearby reward: with the objective's reward_estimate kNearby, each step's reward is the
+// regression of the rewards received on the next states, evaluated at the rollout's state.
+TEST(ValueTest, TheNearbyRewardIsTheRewardsRegressedOnWhereEachStepArrives) {
+  const LinearRolloutModel model = DoubleIntegrator();  // predicts a reward of 0 everywhere
+  // Rewards of 1 on arriving in [0.25, 0.35] at rest, 0 elsewhere on a grid of positions.
+  std::vector<float> x;
+  std::vector<double> r;
+  for (int i = 0; i < 300; ++i) {
+    x.push_back(0.002f * i);
+    x.push_back(0.0f);
+    r.push_back(0.25 <= 0.002 * i && 0.002 * i <= 0.35 ? 1.0 : 0.0);
+  }
+  auto nearby = StateValue::Fit(x.data(), 300, 2, r, ValueOptions());
+  ASSERT_TRUE(nearby.ok());
+  explore::ObjectiveOptions objective;
+  objective.information_weight = 0.0;
+  objective.discount = 0.9;
+  RolloutOptions options;
+  options.horizon = 5;
+  options.particles = 2;
+  options.nearby_reward = std::make_shared<const StateValue>(*nearby);
+  const std::vector<float> sequence = {1.0f, 1.0f, 0.0f, -1.0f, -1.0f};
+  const float initial[2] = {0.25f, 0.0f};
+  RolloutWorkspace ws;
+  RolloutTrace trace;
+  float model_score = 1, nearby_score = 0;
+  ScoreSequences(model, objective, options, initial, sequence.data(), 1, 5, &model_score, &ws);
+  EXPECT_EQ(model_score, 0.0f);  // the model's reward output: 0
+  objective.reward_estimate = explore::RewardEstimate::kNearby;
+  ScoreSequences(model, objective, options, initial, sequence.data(), 1, 5, &nearby_score, &ws,
+                 &trace);
+  // By hand: x_{t+1} = x_t + 0.1 v_t + 0.005 u_t, v_{t+1} = v_t + 0.1 u_t; J = sum 0.9^t
+  // R(s_{t+1}).
+  float s[2] = {0.25f, 0.0f};
+  double expected = 0.0, discount = 1.0;
+  for (int t = 0; t < 5; ++t) {
+    s[0] = s[0] + 0.1f * s[1] + 0.005f * sequence[t];
+    s[1] = s[1] + 0.1f * sequence[t];
+    float reward = 0;
+    nearby->Evaluate(s, 2, 1, &reward);
+    EXPECT_NEAR(trace.expected_reward[t], reward, 1e-5) << "step " << t;
+    if (t == 0) EXPECT_GT(reward, 0.1f);
+    expected += discount * reward;
+    discount *= 0.9;
+  }
+  EXPECT_NEAR(nearby_score, expected, 1e-5 * (1 + expected));
+
+  // A known reward wins over either estimate: r = -|x'|^2 is never positive.
+  objective.known_reward.kind = explore::KnownReward::Kind::kQuadratic;
+  objective.known_reward.target = {0.0, 0.0};
+  ScoreSequences(model, objective, options, initial, sequence.data(), 1, 5, &nearby_score, &ws);
+  EXPECT_LT(nearby_score, 0.0f);
+
+  // Plan refuses a nearby reward of another robot's state.
+  std::vector<float> three = {0, 0, 0, 1, 1, 1};
+  auto other = StateValue::Fit(three.data(), 2, 3, {0.0, 1.0}, ValueOptions());
+  ASSERT_TRUE(other.ok());
+  PlanRequest request;
+  request.state = Eigen::Vector2f(0.2f, 0.0f);
+  request.limits.lower = Eigen::VectorXf::Constant(1, -1.0f);
+  request.limits.upper = Eigen::VectorXf::Constant(1, 1.0f);
+  request.options.set_horizon(5);
+  request.options.rollout.nearby_reward = std::make_shared<const StateValue>(*other);
+  const auto plan = Plan(model, request);
+  ASSERT_FALSE(plan.ok());
+  EXPECT_NE(plan.status().message().find("nearby reward has 3 state dimensions, the model has 2"),
             std::string::npos)
       << plan.status();
 }
