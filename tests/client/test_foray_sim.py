@@ -12,6 +12,7 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "server"))
 from conftest import forayd  # noqa: F401,E402  (the fixture)
 from foray.v1 import registry_pb2 as reg  # noqa: E402
 from foray.v1 import registry_pb2_grpc  # noqa: E402
+from foray.v1 import types_pb2  # noqa: E402
 
 
 # Under the sanitizers a plan takes about a second (one CEM iteration always runs, whatever the
@@ -134,6 +135,19 @@ def test_table_robot_runs_and_records_its_eight_dimensional_states(forayd):  # n
     assert [(a.min, a.max) for a in table.action_limits] == [(-0.8, 0.8), (-0.8, 0.8)]
     # The stage's travel stops, given as state limits (plans hold predicted states inside them).
     assert [(l.index, l.min, l.max) for l in table.state_limits] == [(0, -0.28, 0.28), (1, -0.28, 0.28)]
+
+
+def test_sim_registers_the_reward_estimate_it_is_given(forayd):  # noqa: F811
+    bad = run_sim(forayd, "--robots=gantry", "--reward_estimate=best")
+    assert bad.returncode == 2 and '--reward_estimate is "best"' in bad.stderr, bad.stderr
+    result = run_sim(forayd, "--robots=gantry", "--episodes=1", "--steps=5", "--min_transitions=100000",
+                     "--reward_estimate=nearby", "--name_prefix=near")
+    assert result.returncode == 0, result.stdout + result.stderr
+    channel = grpc.insecure_channel(forayd.address)
+    robots = registry_pb2_grpc.RobotRegistryStub(channel).ListRobots(
+        reg.ListRobotsRequest(), metadata=[("authorization", f"Bearer {forayd.admin_token}")]).robots
+    gantry = [r for r in robots if r.spec.name == "near-gantry-1"][0].spec
+    assert gantry.objective.reward_estimate == types_pb2.REWARD_ESTIMATE_NEARBY
 
 
 def test_sim_over_tls(tmp_path):
