@@ -443,7 +443,8 @@ int main(int argc, char** argv) {
     return 2;
   }
   if (const std::string e = absl::GetFlag(FLAGS_reward_estimate); e != "model" && e != "nearby") {
-    std::fprintf(stderr, "foray-sim: --reward_estimate is \"%s\"; use model or nearby\n", e.c_str());
+    std::fprintf(stderr, "foray-sim: --reward_estimate is \"%s\"; use model or nearby\n",
+                 e.c_str());
     return 2;
   }
   if (strategy != "explore" && strategy != "reward" && strategy != "noise" && strategy != "random") {

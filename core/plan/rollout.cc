@@ -278,7 +278,9 @@ void ScoreSequences(const RolloutModel& model, const explore::ObjectiveOptions& 
         s[k] += (mu[k] + std::exp(0.5f * lv[k]) * eps[k]) * pred.scale[k] + pred.offset[k];
       }
       for (int k : bounded_dims) s[k] = std::clamp(s[k], bounds.lower[k], bounds.upper[k]);
-      if (learned_reward) ws->reward[r] = mu[sd] * pred.scale[sd] + pred.offset[sd];
+      if (learned_reward && nearby_reward == nullptr) {
+        ws->reward[r] = mu[sd] * pred.scale[sd] + pred.offset[sd];
+      }
       if (!known_termination && !pred.term_logit.empty()) {
         const float z = pred.term_logit[static_cast<size_t>(m) * evaluated + source];
         ws->ends[r] = 1.0f / (1.0f + std::exp(-z));

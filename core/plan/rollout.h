@@ -14,10 +14,11 @@
 //                                   + (s_{p,t} - s_{p,t+1}) V_term ],
 // with r_{p,t} the expected reward under the particle's member (or the known reward at the
 // sampled next state, or with the objective's reward_estimate kNearby the rewards received
-// near the sampled next state: RolloutOptions::nearby_reward) and V_term the objective's terminal_value: an ended episode earns no
-// further reward and no further information, and pays V_term once. With a state value given
-// (RolloutOptions::value, core/plan/value.h) and the objective's value_weight w_v not 0, a
-// candidate also earns what the data say follows the state it ends in:
+// near the sampled next state: RolloutOptions::nearby_reward) and V_term the objective's
+// terminal_value: an ended episode earns no further reward and no further information, and pays
+// V_term once. With a state value given (RolloutOptions::value, core/plan/value.h) and the
+// objective's value_weight w_v not 0, a candidate also earns what the data say follows the state
+// it ends in:
 //   + w_v gamma^H (1/P) sum_p s_{p,H} V(x_{p,H}).
 //
 // Models are const and safe from several threads; a RolloutWorkspace belongs to one thread.

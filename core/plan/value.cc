@@ -137,6 +137,7 @@ absl::StatusOr<StateValue> StateValue::Fit(const float* next_states, int rows, i
     v.weight_[j] = weights[j];
     v.value_[j] = static_cast<float>(returns[kept[j]]);
   }
+  v.all_zero_ = (v.value_.array() == 0.0f).all();
   v.bandwidth_ = std::pow(static_cast<double>(rows), -1.0 / (state_dim + 4));
   v.inv_two_h2_ = static_cast<float>(1.0 / (2.0 * v.bandwidth_ * v.bandwidth_));
   v.prior_ = static_cast<float>(options.prior_weight);
@@ -145,9 +146,7 @@ absl::StatusOr<StateValue> StateValue::Fit(const float* next_states, int rows, i
 }
 
 void StateValue::Evaluate(const float* states, int stride, int rows, float* out) const {
-  // kBest with no positive return: nothing seen is worth seeking; with every value 0 (a sparse
-  // reward not met yet) the estimate is 0 everywhere.
-  if (points() == 0 || (value_.array() == 0.0f).all()) {
+  if (all_zero_) {
     std::fill(out, out + rows, 0.0f);
     return;
   }
@@ -158,8 +157,8 @@ void StateValue::Evaluate(const float* states, int stride, int rows, float* out)
     const float* s = states + static_cast<std::ptrdiff_t>(r) * stride;
     for (int j = 0; j < d; ++j) z[j] = (s[j] - mean_[j]) * inv_std_[j];
     float weighted = 0.0f, total = 0.0f, best = 0.0f;
-    simd::KernelSums(points_.data(), static_cast<size_t>(padded), padded, d, z.data(),
-                     inv_two_h2_, weight_.data(), value_.data(), &weighted, &total, &best);
+    simd::KernelSums(points_.data(), static_cast<size_t>(padded), padded, d, z.data(), inv_two_h2_,
+                     weight_.data(), value_.data(), &weighted, &total, &best);
     out[r] = estimate_ == ValueEstimate::kBest ? best : weighted / (prior_ + total);
   }
 }

@@ -94,7 +94,10 @@ class StateValue {
   static constexpr int kPadPoints = 16;
   int count_ = 0;
   Eigen::MatrixXf points_;          // (padded points, state_dim), standardised, column-major
-  Eigen::VectorXf weight_, value_;  // (points)
+  Eigen::VectorXf weight_, value_;  // (padded points)
+  // No point with a value other than 0 (kBest with no positive return, a sparse reward not met
+  // yet): the estimate is 0 everywhere.
+  bool all_zero_ = true;
   ValueEstimate estimate_ = ValueEstimate::kAverage;
   float inv_two_h2_ = 0.0f;
   float prior_ = 1.0f;

@@ -371,7 +371,8 @@ void RobotRuntime::RefitValue() {
                          .discount = config_.objective.value_discount,
                          .terminal_value = config_.objective.terminal_value});
   value_ = value.ok() ? *std::move(value) : nullptr;
-  absl::StatusOr<std::shared_ptr<const plan::StateValue>> reward = dataset_.FitNearbyReward({.max_points = kNearbyRewardPoints});
+  absl::StatusOr<std::shared_ptr<const plan::StateValue>> reward =
+      dataset_.FitNearbyReward({.max_points = kNearbyRewardPoints});
   nearby_reward_ = reward.ok() ? *std::move(reward) : nullptr;
 }
 

@@ -209,6 +209,25 @@ LinearRolloutModel DoubleIntegrator() {
   return LinearRolloutModel(a, b, Eigen::VectorXf::Zero(2));
 }
 
+// The status of a plan on `model` (a 2-D state, a 1-D action) whose rollout options carry, in
+// `field`, a fit of another robot's 3-D state.
+absl::Status PlanWithAnotherRobotsFit(const RolloutModel& model,
+                                      const explore::ObjectiveOptions& objective,
+                                      std::shared_ptr<const StateValue> RolloutOptions::*field) {
+  std::vector<float> three = {0, 0, 0, 1, 1, 1};
+  auto other = StateValue::Fit(three.data(), 2, 3, {0.0, 1.0}, ValueOptions());
+  EXPECT_TRUE(other.ok());
+  if (!other.ok()) return other.status();
+  PlanRequest request;
+  request.state = Eigen::Vector2f(0.2f, 0.0f);
+  request.limits.lower = Eigen::VectorXf::Constant(1, -1.0f);
+  request.limits.upper = Eigen::VectorXf::Constant(1, 1.0f);
+  request.objective = objective;
+  request.options.set_horizon(5);
+  request.options.rollout.*field = std::make_shared<const StateValue>(*std::move(other));
+  return Plan(model, request).status();
+}
+
 TEST(ValueTest, TheRolloutAddsTheDiscountedValueOfWhereItEnds) {
   const LinearRolloutModel model = DoubleIntegrator();
   // Returns that grow with the position: the value pays for ending farther along.
@@ -259,21 +278,11 @@ TEST(ValueTest, TheRolloutAddsTheDiscountedValueOfWhereItEnds) {
   EXPECT_EQ(trace.value_beyond, 0.0);
 
   // Plan refuses a value of another robot's state.
-  std::vector<float> three = {0, 0, 0, 1, 1, 1};
-  auto other = StateValue::Fit(three.data(), 2, 3, {0.0, 1.0}, ValueOptions());
-  ASSERT_TRUE(other.ok());
-  PlanRequest request;
-  request.state = Eigen::Vector2f(0.2f, 0.0f);
-  request.limits.lower = Eigen::VectorXf::Constant(1, -1.0f);
-  request.limits.upper = Eigen::VectorXf::Constant(1, 1.0f);
-  request.objective = objective;
-  request.options.set_horizon(5);
-  request.options.rollout.value = std::make_shared<const StateValue>(*other);
-  const auto plan = Plan(model, request);
+  const absl::Status plan = PlanWithAnotherRobotsFit(model, objective, &RolloutOptions::value);
   ASSERT_FALSE(plan.ok());
-  EXPECT_NE(plan.status().message().find("state value has 3 state dimensions, the model has 2"),
+  EXPECT_NE(plan.message().find("state value has 3 state dimensions, the model has 2"),
             std::string::npos)
-      << plan.status();
+      << plan;
 }
 
 // The nearby reward: with the objective's reward_estimate kNearby, each step's reward is the
@@ -330,20 +339,12 @@ TEST(ValueTest, TheNearbyRewardIsTheRewardsRegressedOnWhereEachStepArrives) {
   EXPECT_LT(nearby_score, 0.0f);
 
   // Plan refuses a nearby reward of another robot's state.
-  std::vector<float> three = {0, 0, 0, 1, 1, 1};
-  auto other = StateValue::Fit(three.data(), 2, 3, {0.0, 1.0}, ValueOptions());
-  ASSERT_TRUE(other.ok());
-  PlanRequest request;
-  request.state = Eigen::Vector2f(0.2f, 0.0f);
-  request.limits.lower = Eigen::VectorXf::Constant(1, -1.0f);
-  request.limits.upper = Eigen::VectorXf::Constant(1, 1.0f);
-  request.options.set_horizon(5);
-  request.options.rollout.nearby_reward = std::make_shared<const StateValue>(*other);
-  const auto plan = Plan(model, request);
+  const absl::Status plan =
+      PlanWithAnotherRobotsFit(model, explore::ObjectiveOptions(), &RolloutOptions::nearby_reward);
   ASSERT_FALSE(plan.ok());
-  EXPECT_NE(plan.status().message().find("nearby reward has 3 state dimensions, the model has 2"),
+  EXPECT_NE(plan.message().find("nearby reward has 3 state dimensions, the model has 2"),
             std::string::npos)
-      << plan.status();
+      << plan;
 }
 
 }  // namespace
