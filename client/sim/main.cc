@@ -70,6 +70,9 @@ ABSL_FLAG(std::string, reward_estimate, "model",
 ABSL_FLAG(double, evaluation_value_weight, 0.0,
           "Objective weight of the value in evaluation plans only (a per-request override); 0: "
           "the robot's value_weight.");
+ABSL_FLAG(std::string, evaluation_reward_estimate, "",
+          "model or nearby: where evaluation plans only take their expected reward from (a "
+          "per-request override); empty: the robot's reward_estimate.");
 ABSL_FLAG(std::string, strategy, "explore",
           "explore: plans with reward + information gain; reward: information weight 0; "
           "noise: no model, the nominal controller's action plus Gaussian noise; random: no "
@@ -287,6 +290,7 @@ bool RunRobot(const std::string& kind, int index) {
   const int round_size = std::max(1, absl::GetFlag(FLAGS_evaluation_episodes));
   const int evaluation_horizon = absl::GetFlag(FLAGS_evaluation_horizon);
   const double evaluation_value_weight = absl::GetFlag(FLAGS_evaluation_value_weight);
+  const std::string evaluation_reward_estimate = absl::GetFlag(FLAGS_evaluation_reward_estimate);
   int explored_since_evaluation = 0, evaluated_in_round = 0;
   uint64_t known_model = 0;  // the newest model version a plan came from
   for (int e = 0; (episodes == 0 || e < episodes) && !g_stop; ++e, ++episode_id) {
@@ -304,8 +308,16 @@ bool RunRobot(const std::string& kind, int index) {
     choices.episode = episode_id;
     if (evaluation && evaluation_horizon > 0)
       choices.planner.emplace().set_horizon(evaluation_horizon);
-    if (evaluation && evaluation_value_weight != 0.0)
-      choices.objective.emplace().set_value_weight(evaluation_value_weight);
+    if (evaluation && evaluation_value_weight != 0.0) {
+      if (!choices.objective) choices.objective.emplace();
+      choices.objective->set_value_weight(evaluation_value_weight);
+    }
+    if (evaluation && !evaluation_reward_estimate.empty()) {
+      if (!choices.objective) choices.objective.emplace();
+      choices.objective->set_reward_estimate(evaluation_reward_estimate == "nearby"
+                                                 ? v1::REWARD_ESTIMATE_NEARBY
+                                                 : v1::REWARD_ESTIMATE_MODEL);
+    }
     bool lost = false;
     Eigen::VectorXd state = sim.Reset();
     std::vector<double> previous(action_dim, 0.0);
@@ -444,6 +456,14 @@ int main(int argc, char** argv) {
   }
   if (const std::string e = absl::GetFlag(FLAGS_reward_estimate); e != "model" && e != "nearby") {
     std::fprintf(stderr, "foray-sim: --reward_estimate is \"%s\"; use model or nearby\n",
+                 e.c_str());
+    return 2;
+  }
+  if (const std::string e = absl::GetFlag(FLAGS_evaluation_reward_estimate);
+      !e.empty() && e != "model" && e != "nearby") {
+    std::fprintf(stderr,
+                 "foray-sim: --evaluation_reward_estimate is \"%s\"; use model, nearby or leave it "
+                 "empty\n",
                  e.c_str());
     return 2;
   }

@@ -121,6 +121,7 @@ def run_one(args, scenario, strategy, seed):
                  f"--value_estimate={args.value_estimate}",
                  f"--reward_estimate={args.reward_estimate}",
                  f"--evaluation_value_weight={args.evaluation_value_weight}",
+                 f"--evaluation_reward_estimate={args.evaluation_reward_estimate}",
                  f"--name_prefix=bench-{strategy}-s{seed}"],
                 capture_output=True, text=True, timeout=3600)
             if result.returncode != 0:
@@ -310,6 +311,8 @@ def parse_args(argv=None):
                         help="where a plan's expected reward comes from (foray-sim --reward_estimate)")
     parser.add_argument("--evaluation_value_weight", type=float, default=0.0,
                         help="the value's weight in evaluation plans only; 0: the robot's")
+    parser.add_argument("--evaluation_reward_estimate", default="", choices=("", "model", "nearby"),
+                        help="where evaluation plans only take their expected reward from; empty: the robot's")
     parser.add_argument("--no-plots", action="store_true")
     return parser.parse_args(argv)
 

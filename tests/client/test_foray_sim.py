@@ -150,6 +150,24 @@ def test_sim_registers_the_reward_estimate_it_is_given(forayd):  # noqa: F811
     assert gantry.objective.reward_estimate == types_pb2.REWARD_ESTIMATE_NEARBY
 
 
+def test_sim_evaluates_with_the_reward_estimate_it_is_given(forayd):  # noqa: F811
+    bad = run_sim(forayd, "--robots=gantry", "--evaluation_reward_estimate=best")
+    assert bad.returncode == 2 and '--evaluation_reward_estimate is "best"' in bad.stderr, bad.stderr
+    # Evaluation plans carry the override (with a value weight in the same objective override);
+    # the robot itself stays on the model's reward.
+    result = run_sim(forayd, "--robots=gantry", "--episodes=3", "--steps=20", "--min_transitions=20",
+                     "--train_each_episode", "--evaluate_every=2", "--deadline_ms=20",
+                     "--evaluation_reward_estimate=nearby", "--evaluation_value_weight=0.5",
+                     "--name_prefix=evalnear")
+    assert result.returncode == 0, result.stdout + result.stderr
+    assert "evalnear-gantry-1 evaluation episode 3:" in result.stdout, result.stdout
+    channel = grpc.insecure_channel(forayd.address)
+    robots = registry_pb2_grpc.RobotRegistryStub(channel).ListRobots(
+        reg.ListRobotsRequest(), metadata=[("authorization", f"Bearer {forayd.admin_token}")]).robots
+    gantry = [r for r in robots if r.spec.name == "evalnear-gantry-1"][0].spec
+    assert gantry.objective.reward_estimate == types_pb2.REWARD_ESTIMATE_UNSPECIFIED
+
+
 def test_sim_over_tls(tmp_path):
     # A TLS-only forayd with an openssl certificate made at test time (as the CLI's TLS test):
     # with --tls_ca foray-sim registers, streams and plans over TLS; without it the plaintext
