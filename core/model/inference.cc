@@ -58,6 +58,11 @@ PackedEnsemble::PackedEnsemble(const Ensemble& e)
   }
   max_log_var_ = e.max_log_var();
   min_log_var_ = e.min_log_var();
+  // The one-step form needs the bounds well inside the range where it clamps v (see
+  // simd::BoundLogVarFromExp); learned bounds are a few units in normalised outputs.
+  constexpr float kExpBoundLimit = 60.0f;
+  bounds_exp_ = max_log_var_.size() > 0 && max_log_var_.cwiseAbs().maxCoeff() <= kExpBoundLimit &&
+                min_log_var_.cwiseAbs().maxCoeff() <= kExpBoundLimit;
 }
 
 void PackedEnsemble::ForwardMember(int member, const float* x, int rows, float* mean,
@@ -94,11 +99,21 @@ void PackedEnsemble::ForwardMember(int member, const float* x, int rows, float* 
   // lv = min + softplus(lv - min), softplus(x) = max(x, 0) + ln(1 + e^-|x|).
   const size_t n = static_cast<size_t>(rows) * d;
   if (ws->bounds_of != id_ || ws->bound_max.size() != static_cast<Eigen::Index>(n)) {
-    ws->bound_max = max_log_var_.replicate(rows, 1).array();
-    ws->bound_min = min_log_var_.replicate(rows, 1).array();
+    ws->bounds_exp = bounds_exp_;
+    if (bounds_exp_) {
+      ws->bound_max = (-max_log_var_.array()).exp().replicate(rows, 1);
+      ws->bound_min = min_log_var_.array().exp().replicate(rows, 1);
+    } else {
+      ws->bound_max = max_log_var_.replicate(rows, 1).array();
+      ws->bound_min = min_log_var_.replicate(rows, 1).array();
+    }
     ws->bounds_of = id_;
   }
-  simd::BoundLogVar(log_var, ws->bound_max.data(), ws->bound_min.data(), n);
+  if (ws->bounds_exp) {
+    simd::BoundLogVarFromExp(log_var, ws->bound_max.data(), ws->bound_min.data(), n);
+  } else {
+    simd::BoundLogVar(log_var, ws->bound_max.data(), ws->bound_min.data(), n);
+  }
 }
 
 void PackedEnsemble::ForwardAll(const float* x, int rows, float* mean, float* log_var,

@@ -28,9 +28,11 @@ class PackedEnsemble {
   // Per-thread scratch buffers; grow on first use and are reused afterwards.
   struct Workspace {
     Eigen::ArrayXf a, b;  // layer outputs, alternating (not zero-filled when they grow)
-    // Log-variance bounds repeated over the rows of the last call; bounds_of: the id of the
-    // ensemble whose bounds they are (a workspace may outlive it).
+    // Log-variance bounds repeated over the rows of the last call, as e^-max and e^min when
+    // the ensemble's bounds allow the one-step form (bounds_exp), else as they are; bounds_of:
+    // the id of the ensemble whose bounds they are (a workspace may outlive it).
     Eigen::ArrayXf bound_max, bound_min;
+    bool bounds_exp = false;
     uint64_t bounds_of = 0;
   };
 
@@ -80,6 +82,9 @@ class PackedEnsemble {
   // Learned log-variance bounds, (output_dim) each, normalised units.
   Eigen::VectorXf max_log_var_;
   Eigen::VectorXf min_log_var_;
+  // Every bound within [-60, 60]: the bounds run in their one-step form
+  // (simd::BoundLogVarFromExp).
+  bool bounds_exp_ = false;
 };
 
 }  // namespace foray::model

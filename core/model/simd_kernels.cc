@@ -27,6 +27,7 @@ namespace foray::model::simd {
 namespace HWY_NAMESPACE {
 namespace hn = hwy::HWY_NAMESPACE;
 using foray::simd_math::HWY_NAMESPACE::ExpClamped;
+using foray::simd_math::HWY_NAMESPACE::ExpInRange;
 
 using D = hn::ScalableTag<float>;
 using V = hn::Vec<D>;
@@ -361,6 +362,42 @@ void BoundKernel(float* v, const float* hi, const float* lo, size_t count) {
   std::memcpy(v + i, tv, left * sizeof(float));
 }
 
+// The same two bounds in one step from e^-hi and e^lo: hi - softplus(hi - v) = -ln(e^-hi + e^-v)
+// and lo + softplus(u - lo) = ln(e^lo + e^u), so the pair is ln(e^lo + 1 / (e^-hi + e^-v)): one
+// exponential, one reciprocal (estimate and a Newton step) and one logarithm instead of two
+// exponentials and two logarithms. v is clamped to [-86, 87] first (e^-v then stays a normal
+// float, and so does 1 / (e^-hi + e^-v)); with hi and lo within [-60, 60] that moves the result
+// by at most e^-26 relative, since the bounds pull any v beyond it to lo or hi.
+HWY_INLINE V BoundFromExp(D d, V v, V exp_neg_hi, V exp_lo) {
+  const V e = ExpInRange(d, hn::Neg(hn::Min(hn::Max(v, hn::Set(d, -86.0f)), hn::Set(d, 87.0f))));
+  const V den = hn::Add(exp_neg_hi, e);
+  V r = hn::ApproximateReciprocal(den);
+  r = hn::Mul(r, hn::NegMulAdd(den, r, hn::Set(d, 2.0f)));
+  return hn::Log(d, hn::Add(exp_lo, r));
+}
+
+void BoundFromExpKernel(float* v, const float* exp_neg_hi, const float* exp_lo, size_t count) {
+  const D d;
+  const size_t n = hn::Lanes(d);
+  size_t i = 0;
+  for (; i + n <= count; i += n) {
+    hn::StoreU(BoundFromExp(d, hn::LoadU(d, v + i), hn::LoadU(d, exp_neg_hi + i),
+                            hn::LoadU(d, exp_lo + i)),
+               d, v + i);
+  }
+  if (i == count) return;
+  // The tail through the same vector code, padded with ones (e^0: harmless).
+  HWY_ALIGN float tv[hn::MaxLanes(d)] = {}, th[hn::MaxLanes(d)], tl[hn::MaxLanes(d)];
+  std::fill(th, th + hn::MaxLanes(d), 1.0f);
+  std::fill(tl, tl + hn::MaxLanes(d), 1.0f);
+  const size_t left = count - i;
+  std::memcpy(tv, v + i, left * sizeof(float));
+  std::memcpy(th, exp_neg_hi + i, left * sizeof(float));
+  std::memcpy(tl, exp_lo + i, left * sizeof(float));
+  hn::Store(BoundFromExp(d, hn::Load(d, tv), hn::Load(d, th), hn::Load(d, tl)), d, tv);
+  std::memcpy(v + i, tv, left * sizeof(float));
+}
+
 int64_t CurrentTarget() { return HWY_TARGET; }
 
 }  // namespace HWY_NAMESPACE
@@ -372,6 +409,7 @@ namespace foray::model::simd {
 
 HWY_EXPORT(DenseKernel);
 HWY_EXPORT(BoundKernel);
+HWY_EXPORT(BoundFromExpKernel);
 HWY_EXPORT(GemmKernel);
 HWY_EXPORT(ActivateSlopeKernel);
 HWY_EXPORT(CurrentTarget);
@@ -392,6 +430,10 @@ void ActivateWithSlope(Act act, float* z, float* slope, size_t n) {
 
 void BoundLogVar(float* v, const float* hi, const float* lo, size_t n) {
   HWY_DYNAMIC_DISPATCH(BoundKernel)(v, hi, lo, n);
+}
+
+void BoundLogVarFromExp(float* v, const float* exp_neg_hi, const float* exp_lo, size_t n) {
+  HWY_DYNAMIC_DISPATCH(BoundFromExpKernel)(v, exp_neg_hi, exp_lo, n);
 }
 
 const char* TargetName() { return hwy::TargetName(HWY_DYNAMIC_DISPATCH(CurrentTarget)()); }

@@ -10,14 +10,15 @@
 #include <cmath>
 #include <cstring>
 #include <functional>
+#include <limits>
 #include <thread>
 #include <tuple>
 #include <vector>
 
 #include "core/model/simd_kernels.h"
-#include "tests/testing/simd_targets.h"
 #include "core/util/random.h"
 #include "gtest/gtest.h"
+#include "tests/testing/simd_targets.h"
 
 namespace foray::model {
 namespace {
@@ -97,6 +98,26 @@ TEST(InferenceExtremeTest, SiluSaturatesLikeReference) {
     for (int j = 0; j < x.cols(); ++j) x(i, j) = static_cast<float>((i - rows / 2) * (j + 1)) * 2.0f;
   }
   ForEachTarget([&] { ExpectMatchesReference(*e, x, 1e-4, /*require_finite=*/true); });
+}
+
+// Bounds beyond the one-step form's range ([-60, 60]) run the two-step softplus chain: the
+// packed forward still matches the reference, at inputs that reach both bounds.
+TEST(InferenceExtremeTest, BoundsBeyondTheOneStepRangeMatchReference) {
+  EnsembleOptions options;
+  options.ensemble_size = 2;
+  options.hidden_widths = {32};
+  auto e = Ensemble::Create(3, 1, options, 5);
+  ASSERT_TRUE(e.ok());
+  e->mutable_max_log_var().setConstant(95.0f);
+  e->mutable_min_log_var().setConstant(-90.0f);
+  e->mutable_params() *= 30.0f;
+  const int rows = 60;
+  Eigen::MatrixXf x(rows, e->input_dim());
+  for (int i = 0; i < rows; ++i) {
+    for (int j = 0; j < x.cols(); ++j)
+      x(i, j) = static_cast<float>((i - rows / 2) * (j + 1)) * 0.5f;
+  }
+  ForEachTarget([&] { ExpectMatchesReference(*e, x, 1e-4 * 95, /*require_finite=*/true); });
 }
 
 // A workspace kept across model versions (as a trainer's threads keep theirs from epoch to
@@ -206,6 +227,28 @@ TEST(SimdKernelTest, ElementwiseFunctionsMatchTheCLibrary) {
       const double upper = 0.5 - softplus(0.5 - z[i]);
       const double expect = -10.0 + softplus(upper + 10.0);
       ASSERT_NEAR(v[i], expect, 2e-6 * std::max(1.0, std::abs(expect))) << "bounds at " << z[i];
+    }
+    // The one-step form ln(e^lo + 1 / (e^-hi + e^-v)) against the same softplus chain in double,
+    // at the edges of the bounds it accepts ([-60, 60]) and with inputs far beyond them (the
+    // chain's limits there are lo and hi); same tolerance, and an odd count for the padded tail.
+    struct Bounds {
+      float hi, lo;
+    };
+    for (const Bounds b : {Bounds{0.5f, -10.0f}, Bounds{60.0f, -60.0f}, Bounds{-3.0f, -5.0f},
+                           Bounds{10.0f, 9.5f}, Bounds{-59.0f, -60.0f}, Bounds{60.0f, 59.0f}}) {
+      std::vector<float> x = z;
+      for (float extra : {-1e4f, 1e4f, -87.5f, 87.5f, -std::numeric_limits<float>::infinity(),
+                          std::numeric_limits<float>::infinity()})
+        x.push_back(extra);
+      const size_t n = x.size();
+      std::vector<float> y = x, exp_neg_hi(n, std::exp(-b.hi)), exp_lo(n, std::exp(b.lo));
+      simd::BoundLogVarFromExp(y.data(), exp_neg_hi.data(), exp_lo.data(), n);
+      for (size_t i = 0; i < n; ++i) {
+        const double upper = b.hi - softplus(static_cast<double>(b.hi) - x[i]);
+        const double expect = b.lo + softplus(upper - b.lo);
+        ASSERT_NEAR(y[i], expect, 2e-6 * std::max(1.0, std::abs(expect)))
+            << "one-step bounds " << b.hi << ", " << b.lo << " at " << x[i];
+      }
     }
   });
 }
