@@ -96,10 +96,10 @@ void PackedEnsemble::ForwardMember(int member, const float* x, int rows, float* 
   }
   // Chua et al. 2018 bounds, over the contiguous (rows, d) block rather than per padded row
   // (every SIMD lane does useful work): lv = max - softplus(max - raw);
-  // lv = min + softplus(lv - min), softplus(x) = max(x, 0) + ln(1 + e^-|x|).
+  // lv = min + softplus(lv - min), softplus(x) = max(x, 0) + ln(1 + e^-|x|); in one step from
+  // e^-max and e^min where the bounds allow it (simd::BoundLogVarFromExp).
   const size_t n = static_cast<size_t>(rows) * d;
   if (ws->bounds_of != id_ || ws->bound_max.size() != static_cast<Eigen::Index>(n)) {
-    ws->bounds_exp = bounds_exp_;
     if (bounds_exp_) {
       ws->bound_max = (-max_log_var_.array()).exp().replicate(rows, 1);
       ws->bound_min = min_log_var_.array().exp().replicate(rows, 1);
@@ -109,7 +109,7 @@ void PackedEnsemble::ForwardMember(int member, const float* x, int rows, float* 
     }
     ws->bounds_of = id_;
   }
-  if (ws->bounds_exp) {
+  if (bounds_exp_) {
     simd::BoundLogVarFromExp(log_var, ws->bound_max.data(), ws->bound_min.data(), n);
   } else {
     simd::BoundLogVar(log_var, ws->bound_max.data(), ws->bound_min.data(), n);

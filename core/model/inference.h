@@ -29,10 +29,9 @@ class PackedEnsemble {
   struct Workspace {
     Eigen::ArrayXf a, b;  // layer outputs, alternating (not zero-filled when they grow)
     // Log-variance bounds repeated over the rows of the last call, as e^-max and e^min when
-    // the ensemble's bounds allow the one-step form (bounds_exp), else as they are; bounds_of:
-    // the id of the ensemble whose bounds they are (a workspace may outlive it).
+    // the ensemble's bounds allow the one-step form, else as they are; bounds_of: the id of the
+    // ensemble whose bounds they are (a workspace may outlive it).
     Eigen::ArrayXf bound_max, bound_min;
-    bool bounds_exp = false;
     uint64_t bounds_of = 0;
   };
 

@@ -78,7 +78,16 @@ HWY_INLINE V Silu(D d, V z) {
   return hn::Mul(z, r);
 }
 
+// AVX2 and AVX-512 (8 and 16 lanes) take SiluTable, the other targets Silu (set anew for each
+// target's pass through this file).
+#undef FORAY_SILU_TABLE
 #if HWY_TARGET == HWY_AVX3 || HWY_TARGET == HWY_AVX3_DL || HWY_TARGET == HWY_AVX2
+#define FORAY_SILU_TABLE 1
+#else
+#define FORAY_SILU_TABLE 0
+#endif
+
+#if FORAY_SILU_TABLE
 // 2^(j/16) and 2^(j/8), rounded to float.
 alignas(64) constexpr float kExp2Sixteenths[16] = {
     1.000000000e+00f, 1.044273734e+00f, 1.090507746e+00f, 1.138788581e+00f,
@@ -136,7 +145,7 @@ HWY_INLINE V SiluTable(D d, V z) {
 template <Act A>
 HWY_INLINE V Activate(D d, V z) {
   if constexpr (A == Act::kSilu) {
-#if HWY_TARGET == HWY_AVX3 || HWY_TARGET == HWY_AVX3_DL || HWY_TARGET == HWY_AVX2
+#if FORAY_SILU_TABLE
     return SiluTable(d, z);
 #else
     return Silu(d, z);
@@ -404,22 +413,30 @@ HWY_INLINE V Bound(D d, V v, V hi, V lo) {
   return hn::Add(lo, Softplus(d, hn::Sub(v, lo)));
 }
 
-void BoundKernel(float* v, const float* hi, const float* lo, size_t count) {
+// v[i] = f(v[i], a[i], b[i]) over count values, the tail through the same vector code with a
+// and b padded with ones (harmless for both bound forms; the padded lanes are not stored).
+template <class F>
+HWY_INLINE void OverBoundArrays(float* v, const float* a, const float* b, size_t count, F f) {
   const D d;
   const size_t n = hn::Lanes(d);
   size_t i = 0;
   for (; i + n <= count; i += n) {
-    hn::StoreU(Bound(d, hn::LoadU(d, v + i), hn::LoadU(d, hi + i), hn::LoadU(d, lo + i)), d, v + i);
+    hn::StoreU(f(d, hn::LoadU(d, v + i), hn::LoadU(d, a + i), hn::LoadU(d, b + i)), d, v + i);
   }
   if (i == count) return;
-  // The tail through the same vector code, padded with zeros (bounds of 0 are harmless).
-  HWY_ALIGN float tv[hn::MaxLanes(d)] = {}, th[hn::MaxLanes(d)] = {}, tl[hn::MaxLanes(d)] = {};
+  HWY_ALIGN float tv[hn::MaxLanes(d)] = {}, ta[hn::MaxLanes(d)], tb[hn::MaxLanes(d)];
+  std::fill(ta, ta + hn::MaxLanes(d), 1.0f);
+  std::fill(tb, tb + hn::MaxLanes(d), 1.0f);
   const size_t left = count - i;
   std::memcpy(tv, v + i, left * sizeof(float));
-  std::memcpy(th, hi + i, left * sizeof(float));
-  std::memcpy(tl, lo + i, left * sizeof(float));
-  hn::Store(Bound(d, hn::Load(d, tv), hn::Load(d, th), hn::Load(d, tl)), d, tv);
+  std::memcpy(ta, a + i, left * sizeof(float));
+  std::memcpy(tb, b + i, left * sizeof(float));
+  hn::Store(f(d, hn::Load(d, tv), hn::Load(d, ta), hn::Load(d, tb)), d, tv);
   std::memcpy(v + i, tv, left * sizeof(float));
+}
+
+void BoundKernel(float* v, const float* hi, const float* lo, size_t count) {
+  OverBoundArrays(v, hi, lo, count, [](D d, V x, V h, V l) { return Bound(d, x, h, l); });
 }
 
 // The same two bounds in one step from e^-hi and e^lo: hi - softplus(hi - v) = -ln(e^-hi + e^-v)
@@ -437,25 +454,8 @@ HWY_INLINE V BoundFromExp(D d, V v, V exp_neg_hi, V exp_lo) {
 }
 
 void BoundFromExpKernel(float* v, const float* exp_neg_hi, const float* exp_lo, size_t count) {
-  const D d;
-  const size_t n = hn::Lanes(d);
-  size_t i = 0;
-  for (; i + n <= count; i += n) {
-    hn::StoreU(BoundFromExp(d, hn::LoadU(d, v + i), hn::LoadU(d, exp_neg_hi + i),
-                            hn::LoadU(d, exp_lo + i)),
-               d, v + i);
-  }
-  if (i == count) return;
-  // The tail through the same vector code, padded with ones (e^0: harmless).
-  HWY_ALIGN float tv[hn::MaxLanes(d)] = {}, th[hn::MaxLanes(d)], tl[hn::MaxLanes(d)];
-  std::fill(th, th + hn::MaxLanes(d), 1.0f);
-  std::fill(tl, tl + hn::MaxLanes(d), 1.0f);
-  const size_t left = count - i;
-  std::memcpy(tv, v + i, left * sizeof(float));
-  std::memcpy(th, exp_neg_hi + i, left * sizeof(float));
-  std::memcpy(tl, exp_lo + i, left * sizeof(float));
-  hn::Store(BoundFromExp(d, hn::Load(d, tv), hn::Load(d, th), hn::Load(d, tl)), d, tv);
-  std::memcpy(v + i, tv, left * sizeof(float));
+  OverBoundArrays(v, exp_neg_hi, exp_lo, count,
+                  [](D d, V x, V h, V l) { return BoundFromExp(d, x, h, l); });
 }
 
 int64_t CurrentTarget() { return HWY_TARGET; }
